@@ -1,0 +1,29 @@
+# Everything a new machine needs, from Python 3 and make alone.
+PYTHON ?= python3
+VENV ?= .venv
+PY := $(VENV)/bin/python
+STAMP := $(VENV)/.installed-stamp
+
+.PHONY: demo test test-fast bench clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[dev]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(VENV)/bin/walktune demo
+
+test: $(STAMP)
+	$(PY) -m pytest -q
+
+test-fast: $(STAMP)
+	$(PY) -m pytest -q -m "not slow"
+
+bench: $(STAMP)
+	$(PY) benchmarks/bench_core.py
+	$(PY) benchmarks/bench_tuning.py
+
+clean:
+	rm -rf $(VENV) walktune-demo .pytest_cache

@@ -1,0 +1,16 @@
+import numpy as np
+import pytest
+from scipy.signal import lfilter
+
+
+def ar1(phi: float, chains: int, n: int, seed: int) -> np.ndarray:
+    """Stationary AR(1) chains x_t = phi x_{t-1} + e_t, e_t ~ N(0, 1); shape (chains, n)."""
+    rng = np.random.default_rng(seed)
+    e = rng.standard_normal((chains, n))
+    e[:, 0] /= np.sqrt(1 - phi**2)  # start in the stationary distribution
+    return lfilter([1.0], [1.0, -phi], e, axis=1)
+
+
+@pytest.fixture
+def ar1_factory():
+    return ar1

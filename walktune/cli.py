@@ -1,0 +1,236 @@
+"""Command line: a thin typer + rich layer over the library API."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+from typing import List, Optional
+
+import numpy as np
+import typer
+from rich.console import Console
+
+from . import __version__
+from .errors import WalktuneError
+
+app = typer.Typer(
+    add_completion=False,
+    no_args_is_help=True,
+    help="Tune random-walk Metropolis proposals from the geometry of your posterior, and prove the gain.",
+)
+
+DEMO_MODEL = Path(__file__).resolve().parent.parent / "demo_models" / "sensor_calibration.py"
+
+
+def _console(stderr: bool = False) -> Console:
+    return Console(stderr=stderr, no_color="NO_COLOR" in os.environ or None)
+
+
+def _fail(message: str, code: int = 2) -> None:
+    _console(stderr=True).print(f"[bold red]error:[/bold red] {message}", highlight=False, soft_wrap=True)
+    raise typer.Exit(code)
+
+
+def _version(value: bool):
+    if value:
+        typer.echo(f"walktune {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def main_callback(
+    version: bool = typer.Option(False, "--version", callback=_version, is_eager=True, help="Print the version and exit."),
+):
+    """walktune: tune random-walk Metropolis samplers and diagnose their chains."""
+
+
+def _split_list(text: Optional[str], what: str) -> Optional[list]:
+    if text is None:
+        return None
+    parts = [p.strip() for p in text.replace(";", ",").split(",") if p.strip()]
+    if not parts:
+        raise WalktuneError(f"--{what} is empty; give comma-separated values.")
+    return parts
+
+
+def _parse_bound(text: str) -> tuple:
+    name, sep, rng = text.partition("=")
+    low, colon, high = rng.partition(":")
+    if not sep or not colon or not name.strip():
+        raise WalktuneError(f"--bound {text!r} must look like NAME=LOW:HIGH (use -inf or inf for an open side).")
+    try:
+        lo = float(low) if low.strip() else -np.inf
+        hi = float(high) if high.strip() else np.inf
+    except ValueError:
+        raise WalktuneError(f"--bound {text!r}: LOW and HIGH must be numbers, -inf or inf.") from None
+    return name.strip(), (lo, hi)
+
+
+def _read_proposal(path: Path) -> np.ndarray:
+    if not path.exists():
+        raise WalktuneError(f"current proposal file {path} does not exist.")
+    try:
+        if path.suffix == ".npy":
+            return np.load(path, allow_pickle=False)
+        if path.suffix == ".json":
+            payload = json.loads(path.read_text())
+            if isinstance(payload, dict):
+                for key in ("proposal_covariance", "covariance", "step_sizes"):
+                    if key in payload:
+                        return np.asarray(payload[key], dtype=float)
+                raise WalktuneError(
+                    f"{path} must hold a list, or an object with 'proposal_covariance', 'covariance' or 'step_sizes'."
+                )
+            return np.asarray(payload, dtype=float)
+        if path.suffix in (".csv", ".txt", ".tsv"):
+            delimiter = "\t" if path.suffix == ".tsv" else ","
+            lines = path.read_text().strip().splitlines()
+            try:
+                [float(v) for v in lines[0].split(delimiter)]
+                skip = 0
+            except ValueError:
+                skip = 1  # a header row of names
+            return np.loadtxt(path, delimiter=delimiter, skiprows=skip, ndmin=1)
+    except (ValueError, OSError) as error:
+        raise WalktuneError(f"cannot read the current proposal from {path}: {error}") from None
+    raise WalktuneError(f"current proposal {path} must be a .npy, .csv or .json file.")
+
+
+def _run_tune(
+    target: str,
+    names: Optional[str],
+    start: Optional[str],
+    bounds: List[str],
+    budget: Optional[int],
+    chains: Optional[int],
+    seed: Optional[int],
+    out: Path,
+    current_proposal: Optional[Path],
+    target_ess: int,
+    as_json: bool,
+    quiet: bool,
+) -> None:
+    from .console import StageProgress, render
+    from .target import load_target
+    from .tune import tune
+
+    console = _console()
+    spec = load_target(target)
+    names_list = _split_list(names, "names") or spec.names
+    if start is not None:
+        try:
+            start_values = np.asarray([float(v) for v in _split_list(start, "start")])
+        except ValueError:
+            raise WalktuneError(f"--start {start!r} must be comma-separated numbers.") from None
+    else:
+        start_values = spec.start
+    if start_values is None:
+        raise WalktuneError(
+            "no start values: give --start 1.0,2.0,... or declare PARAMETERS/START in the model file (see docs/models.md)."
+        )
+    if names_list is not None and len(names_list) != len(start_values):
+        raise WalktuneError(
+            f"{len(start_values)} start values for {len(names_list)} parameters ({', '.join(names_list)}); "
+            "give one start value per parameter."
+        )
+    bound_map = dict(spec.bounds)
+    for text in bounds:
+        key, pair = _parse_bound(text)
+        bound_map[key] = pair
+    if names_list is not None:
+        unknown = [k for k in bound_map if isinstance(k, str) and k not in names_list]
+        if unknown:
+            raise WalktuneError(f"bounds name unknown parameter {unknown[0]!r}; known: {', '.join(names_list)}.")
+    proposal = _read_proposal(current_proposal) if current_proposal is not None else None
+    if out.exists() and not out.is_dir():
+        raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
+
+    with StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
+        result = tune(
+            spec.function, start_values, names=names_list, bounds=bound_map or None,
+            current_proposal=proposal, budget=budget, chains=chains, seed=seed,
+            vectorized=spec.vectorized, target_ess=target_ess, progress=progress,
+        )
+    result.save(out)
+    if as_json:
+        typer.echo(json.dumps(result.to_dict(), indent=2))
+    elif not quiet:
+        render(console, result, target, str(out))
+    else:
+        console.print(f"advice written to {out}")
+
+
+@app.command("tune")
+def tune_command(
+    target: str = typer.Argument(..., help="The log-density: path/to/model.py:function or package.module:function."),
+    names: Optional[str] = typer.Option(None, "--names", help="Comma-separated parameter names (overrides PARAMETERS)."),
+    start: Optional[str] = typer.Option(None, "--start", help="Comma-separated start values (overrides START)."),
+    bound: List[str] = typer.Option([], "--bound", help="NAME=LOW:HIGH, repeatable; -inf/inf or empty for an open side."),
+    budget: Optional[int] = typer.Option(None, "--budget", help="Cap on log-density evaluations for the whole job."),
+    chains: Optional[int] = typer.Option(None, "--chains", help="Number of chains (default 4)."),
+    seed: Optional[int] = typer.Option(None, "--seed", help="Seed for a reproducible run."),
+    out: Path = typer.Option(Path("walktune-output"), "--out", "-o", help="Output folder."),
+    current_proposal: Optional[Path] = typer.Option(
+        None, "--current-proposal", help="Your proposal today: covariance or step sizes in .npy, .csv or .json."
+    ),
+    target_ess: int = typer.Option(400, "--target-ess", help="ESS you need, for the evaluations-needed advice."),
+    as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress; write the output folder only."),
+):
+    """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison."""
+    try:
+        _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet)
+    except WalktuneError as error:
+        _fail(str(error))
+    except OSError as error:
+        _fail(f"cannot write outputs: {error.strerror or error} ({error.filename or out})")
+
+
+@app.command("demo")
+def demo_command(
+    out: Path = typer.Option(Path("walktune-demo"), "--out", "-o", help="Output folder for the demo."),
+    seed: int = typer.Option(2026, "--seed", help="Seed of the demo run."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress."),
+):
+    """Run the whole job on a bundled demo model (a sensor calibration with correlated parameters)."""
+    try:
+        if not DEMO_MODEL.exists():
+            raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune from its repository.")
+        _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet)
+    except WalktuneError as error:
+        _fail(str(error))
+
+
+@app.command("export")
+def export_command(
+    source: Path = typer.Argument(..., help="A walktune output folder or its advice.json."),
+    to: Path = typer.Option(..., "--to", help="File to write."),
+    fmt: Optional[str] = typer.Option(
+        None, "--format", help="npy, csv, json or python (default: from the --to file's ending)."
+    ),
+):
+    """Convert the tuned proposal in advice.json to .npy, .csv, a small .json or a Python module."""
+    from .export import EXPORT_FORMATS, export_advice
+
+    try:
+        chosen = fmt or {".npy": "npy", ".csv": "csv", ".json": "json", ".py": "python"}.get(to.suffix)
+        if chosen is None:
+            raise WalktuneError(f"cannot tell the format from {to.name!r}; give --format ({', '.join(EXPORT_FORMATS)}).")
+        path = export_advice(source, to, chosen)
+        _console().print(f"wrote {path}")
+    except WalktuneError as error:
+        _fail(str(error))
+
+
+def main() -> None:
+    try:
+        app()
+    except KeyboardInterrupt:
+        _console(stderr=True).print("interrupted")
+        sys.exit(130)
+
+
+if __name__ == "__main__":
+    main()

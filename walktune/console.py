@@ -1,0 +1,207 @@
+"""Terminal presentation of a tuning result with rich: tables and progress, nothing else.
+
+Only the command-line layer imports this module; the library never prints.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from rich.console import Console, Group
+from rich.panel import Panel
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
+from rich.table import Table
+from rich.text import Text
+
+from . import theory
+from .tune import CAUTION, TuneResult
+
+SEVERITY_STYLE = {"info": "cyan", "warn": "yellow", "critical": "bold red"}
+STAGE_LABELS = {
+    "mode": "finding the mode",
+    "pilot": "pilot (adaptive stages)",
+    "current": "proof: your proposal",
+    "single-step": "proof: one step size",
+    "step-sizes": "proof: per-parameter steps",
+    "tuned-covariance": "proof: tuned covariance",
+}
+
+
+class StageProgress:
+    """A rich progress display fed by the library's ``progress(stage, done, total)`` callback."""
+
+    def __init__(self, console: Console, enabled: bool = True):
+        self.enabled = enabled
+        self.progress = Progress(
+            TextColumn("{task.description:<30}"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            TextColumn("eta"),
+            TimeRemainingColumn(),
+            TimeElapsedColumn(),
+            console=console,
+            transient=False,
+            disable=not enabled,
+        )
+        self.tasks: dict = {}
+        self._last = 0.0
+
+    def __enter__(self):
+        self.progress.__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        return self.progress.__exit__(*exc)
+
+    def __call__(self, stage: str, done: float, total: float) -> None:
+        if stage not in self.tasks:
+            self.tasks[stage] = self.progress.add_task(STAGE_LABELS.get(stage, stage), total=total)
+        self.progress.update(self.tasks[stage], completed=min(done, total), total=total)
+
+
+def _fmt(x: float, digits: int = 3) -> str:
+    if x is None or not np.isfinite(x):
+        return "n/a"
+    return f"{x:.{digits}g}"
+
+
+def _hours(evaluations: float, seconds_per_evaluation: float) -> str:
+    seconds = evaluations * seconds_per_evaluation
+    if not np.isfinite(seconds):
+        return "n/a"
+    if seconds < 120:
+        return f"{seconds:.1f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.1f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def posterior_table(result: TuneResult) -> Table:
+    table = Table(title="Posterior (from the tuned fixed-proposal run)", title_justify="left")
+    for column, justify in [
+        ("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"),
+        ("step size", "right"), ("R^2 by others", "right"),
+    ]:
+        table.add_column(column, justify=justify)
+    sd = result.structure.sd
+    for i, name in enumerate(result.parameter_names):
+        table.add_row(
+            name, _fmt(result.posterior_mean[i], 5), _fmt(result.posterior_mean_mcse[i], 2), _fmt(sd[i]),
+            _fmt(result.step_sizes[i]), f"{result.structure.determined_by_others[i]:.3f}",
+        )
+    return table
+
+
+def geometry_table(result: TuneResult, max_rows: int = 5) -> Table:
+    s = result.structure
+    names = result.parameter_names
+    table = Table(title="Geometry", title_justify="left", show_header=False)
+    table.add_column("what", style="bold")
+    table.add_column("value")
+    table.add_row("effective dimension", f"{s.effective_dimension:.2f} of {len(names)} (participation ratio)")
+    table.add_row("spectrum", f"correlation eigenvalues span {s.decades:.1f} decades")
+    for i, j, rho in s.strongest_pairs[:max_rows]:
+        if abs(rho) < 0.5:
+            break
+        table.add_row("correlated pair", f"{names[i]} ~ {names[j]}: {rho:+.3f}")
+    for direction in s.directions[: min(max_rows, len(names))]:
+        if direction.eigenvalue > 0.1:
+            break
+        table.add_row("pinned combination", f"{direction.describe(names)} = const +/- {direction.spread:.3g}")
+    widest = s.directions[-1]
+    table.add_row("widest combination", f"{widest.describe(names)} spreads +/- {widest.spread:.3g}")
+    return table
+
+
+def advice_table(result: TuneResult, output_folder: str | None) -> Table:
+    table = Table(title="Advice", title_justify="left", show_header=False)
+    table.add_column("what", style="bold")
+    table.add_column("advice")
+    where = f" (saved in {output_folder}/proposal_covariance.csv and .npy)" if output_folder else ""
+    scale = theory.optimal_scale(len(result.parameter_names))
+    table.add_row(
+        "proposal covariance",
+        f"propose theta + N(0, C), C = ({result.pilot.scale_factor:.3g} x {scale:.3g})^2 x posterior covariance{where}",
+    )
+    table.add_row("expected acceptance", f"{result.expected_acceptance:.2f}")
+    steps = result.slowdowns["step_sizes"]
+    table.add_row(
+        "step sizes only",
+        f"per-parameter sds in the posterior table; predicted {steps['slowest']:.1f}x slower in the slowest "
+        f"direction, {steps['mean']:.1f}x on average",
+    )
+    single = result.slowdowns["single_step"]
+    table.add_row("one step size", f"{result.single_step:.3g}; predicted {single['slowest']:.1f}x slower (slowest direction)")
+    if "current" in result.slowdowns:
+        cur, res = result.slowdowns["current"], result.slowdowns["current_rescaled"]
+        table.add_row(
+            "your proposal",
+            f"predicted {cur['slowest']:.1f}x slower as it is; {res['slowest']:.1f}x if only its overall scale were tuned",
+        )
+    table.add_row("rotated basis", "z = W^-1 (theta - mean), W = Cholesky factor of the posterior covariance (advice.json: rotation)")
+    table.add_row("warm-up", f"about {result.warmup_steps} steps per chain from a start near the mode (10 x slowest IACT)")
+    table.add_row(
+        "thinning",
+        "keep every draw; thinning adds no information"
+        + (f" (to save storage, every {result.thinning}th draw loses little)" if result.thinning > 1 else ""),
+    )
+    needed = result.evaluations_needed()
+    for row in result.comparison:
+        n = needed[row.proposal]
+        table.add_row(
+            f"for ESS {result.target_ess}",
+            f"{row.proposal}: {_fmt(n, 3)} evaluations (~{_hours(n, result.seconds_per_evaluation)} at the measured cost)",
+        )
+    return table
+
+
+def comparison_table(result: TuneResult) -> Table:
+    table = Table(title="Measured: fixed-proposal runs on equal budgets from the pilot's end states", title_justify="left")
+    for column, justify in [
+        ("proposal", "left"), ("accept", "right"), ("min ESS /1k eval", "right"),
+        ("median ESS /1k eval", "right"), ("evals", "right"), ("speed-up", "right"), ("max R-hat", "right"),
+    ]:
+        table.add_column(column, justify=justify)
+    for row in result.comparison:
+        speedup = _fmt(row.speedup, 3) + "x"
+        if row.speedup_is_lower_bound:
+            speedup = ">= " + speedup
+        elif not row.ess_reliable:
+            speedup = "~" + speedup + " (rough)"
+        table.add_row(
+            row.proposal + ("" if row.ess_reliable else " *"), f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
+            str(row.evaluations), speedup, f"{row.max_rhat:.3f}",
+        )
+    return table
+
+
+def findings_table(result: TuneResult) -> Table | Text:
+    if not result.findings:
+        return Text("No findings: nothing unusual was seen (which does not prove there is nothing).")
+    table = Table(title="Findings", title_justify="left")
+    table.add_column("severity")
+    table.add_column("kind")
+    table.add_column("what it means", ratio=1)
+    for finding in result.findings:
+        style = SEVERITY_STYLE[finding.severity]
+        table.add_row(Text(finding.severity.upper(), style=style), finding.kind, finding.message)
+    return table
+
+
+def render(console: Console, result: TuneResult, label: str, output_folder: str | None) -> None:
+    d = len(result.parameter_names)
+    header = (
+        f"{label}: {d} parameters, {result.total_evaluations} evaluations "
+        f"({result.pilot_evaluations} for the mode and pilot), "
+        f"{result.seconds_per_evaluation * 1e3:.3g} ms per evaluation"
+    )
+    if result.partial:
+        header += " [PARTIAL: interrupted]"
+    console.print(Panel(header, title="walktune", expand=False))
+    console.print(advice_table(result, output_folder))
+    console.print(comparison_table(result))
+    console.print(posterior_table(result))
+    console.print(geometry_table(result))
+    console.print(findings_table(result))
+    if output_folder:
+        console.print(f"Outputs in [bold]{output_folder}[/bold]: advice.json, proposal_covariance.npy/.csv, step_sizes.csv, draws.npz")
+    console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))

@@ -1,0 +1,96 @@
+"""Files a user's own sampler can read: advice.json and the proposal covariance.
+
+Output folder of a tuning run:
+
+* ``advice.json``: everything, schema ``walktune.advice/1`` (docs/advice-schema.md);
+* ``proposal_covariance.npy`` and ``proposal_covariance.csv`` (header row of names);
+* ``step_sizes.csv``: one row of per-parameter proposal sds, header of names;
+* ``draws.npz``: the proof runs' draws, one array per proposal shaped (chains, steps, d),
+  plus ``parameter_names``.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .errors import WalktuneError
+from .io import csv_bytes, json_bytes, npy_bytes, npz_bytes, write_folder
+
+SUPPORTED_SCHEMAS = ("walktune.advice/1",)
+
+
+def result_files(result) -> dict:
+    names = result.parameter_names
+    arrays = {name.replace("-", "_"): run.draws for name, run in result.runs.items()}
+    arrays["parameter_names"] = np.array(names)
+    return {
+        "advice.json": json_bytes(result.to_dict()),
+        "proposal_covariance.npy": npy_bytes(result.proposal_covariance),
+        "proposal_covariance.csv": csv_bytes(result.proposal_covariance, names),
+        "step_sizes.csv": csv_bytes(result.step_sizes[None, :], names),
+        "draws.npz": npz_bytes(arrays),
+    }
+
+
+def load_advice(path) -> dict:
+    """Read an advice.json (or the folder holding one) and check its schema."""
+    path = Path(path)
+    if path.is_dir():
+        path = path / "advice.json"
+    if not path.exists():
+        raise WalktuneError(f"no advice file at {path}; point at a walktune output folder or its advice.json.")
+    try:
+        payload = json.loads(path.read_text())
+    except (json.JSONDecodeError, UnicodeDecodeError) as error:
+        raise WalktuneError(f"{path} is not valid JSON ({error.msg if hasattr(error, 'msg') else error}).") from None
+    schema = payload.get("schema") if isinstance(payload, dict) else None
+    if schema not in SUPPORTED_SCHEMAS:
+        raise WalktuneError(
+            f"{path} has schema {schema!r}; this walktune reads {', '.join(SUPPORTED_SCHEMAS)}. "
+            "Re-run `walktune tune` with this version."
+        )
+    return payload
+
+
+EXPORT_FORMATS = ("npy", "csv", "json", "python")
+
+
+def export_advice(source, destination, fmt: str) -> Path:
+    """Convert the proposal covariance in an advice.json to another format.
+
+    Parameters
+    ----------
+    source : path
+        advice.json or its folder.
+    destination : path
+        The file to write (atomically).
+    fmt : {"npy", "csv", "json", "python"}
+        ``json`` writes a small file with names, step sizes and covariance only;
+        ``python`` writes a module defining ``PARAMETER_NAMES``, ``PROPOSAL_COVARIANCE``
+        and ``STEP_SIZES`` as plain lists.
+    """
+    if fmt not in EXPORT_FORMATS:
+        raise WalktuneError(f"unknown export format {fmt!r}; choose one of {', '.join(EXPORT_FORMATS)}.")
+    payload = load_advice(source)
+    names = payload["parameter_names"]
+    cov = np.asarray(payload["proposal_covariance"], dtype=float)
+    steps = payload.get("step_sizes")
+    if fmt == "npy":
+        data = npy_bytes(cov)
+    elif fmt == "csv":
+        data = csv_bytes(cov, names)
+    elif fmt == "json":
+        data = json_bytes({"parameter_names": names, "proposal_covariance": cov.tolist(), "step_sizes": steps})
+    else:
+        data = (
+            '"""Proposal tuned by walktune: propose theta + N(0, PROPOSAL_COVARIANCE)."""\n\n'
+            f"PARAMETER_NAMES = {names!r}\n"
+            f"PROPOSAL_COVARIANCE = {cov.tolist()!r}\n"
+            f"STEP_SIZES = {steps!r}\n"
+        ).encode()
+    destination = Path(destination)
+    write_folder(destination.parent, {destination.name: data})
+    return destination

@@ -1,0 +1,149 @@
+"""Findings: what the analysis noticed, each with a stable kind, severity and message.
+
+Kinds and the rules that raise them (thresholds are common practice unless a
+source is named):
+
+* ``strong-correlation``: ``|rho| >= 0.9`` between two parameters (critical at 0.99).
+* ``ill-conditioned``: the correlation matrix's eigenvalues span >= 2 decades
+  (critical at 4): a diagonal or isotropic proposal will crawl along the long axes.
+* ``not-converged``: rank-normalised split R-hat > 1.01 on the measured chains
+  (critical above 1.1); Vehtari et al. (2021) recommend below 1.01.
+* ``weakly-identified``: posterior sd above 20% of the width of a finite bound
+  interval (a uniform distribution over it has 29%): the data hardly constrain it.
+* ``poor-acceptance``: a measured acceptance rate below 0.1 or above 0.7
+  (optimal is 0.234-0.44 by dimension; Gelman, Roberts and Gilks 1996).
+* ``short-chains``: an ESS rests on fewer than 50 autocorrelation times per chain.
+* ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+SEVERITIES = ("info", "warn", "critical")
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One observation about the posterior or the chains.
+
+    Attributes
+    ----------
+    kind : str
+        Stable machine-readable kind, e.g. ``strong-correlation``.
+    severity : str
+        ``info``, ``warn`` or ``critical``.
+    parameters : list of str
+        The parameters involved.
+    message : str
+        Plain-language explanation with what to do.
+    evidence : dict
+        The numbers behind it.
+    """
+
+    kind: str
+    severity: str
+    parameters: list
+    message: str
+    evidence: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        if self.severity not in SEVERITIES:
+            raise ValueError(f"severity must be one of {SEVERITIES}; got {self.severity!r}")
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+def correlation_findings(structure, names, max_listed: int = 5) -> list:
+    pairs = [(i, j, rho) for i, j, rho in structure.strongest_pairs if abs(rho) >= 0.9]
+    if not pairs:
+        return []
+    involved = sorted({k for i, j, _ in pairs for k in (i, j)})
+    listed = ", ".join(f"{names[i]} ~ {names[j]} ({rho:+.3f})" for i, j, rho in pairs[:max_listed])
+    more = f" and {len(pairs) - max_listed} more" if len(pairs) > max_listed else ""
+    return [
+        Finding(
+            "strong-correlation",
+            "critical" if abs(pairs[0][2]) >= 0.99 else "warn",
+            [names[k] for k in involved],
+            f"strongly correlated pairs: {listed}{more}. A proposal without these correlations must take "
+            "small steps along the ridges; use the tuned covariance, or sample in the rotated basis.",
+            {"pairs": [[names[i], names[j], rho] for i, j, rho in pairs]},
+        )
+    ]
+
+
+def conditioning_findings(structure, names) -> list:
+    if structure.decades < 2:
+        return []
+    tight = structure.directions[0]
+    return [
+        Finding(
+            "ill-conditioned",
+            "critical" if structure.decades >= 4 else "warn",
+            [names[i] for i in range(len(names)) if abs(tight.weights[i]) >= 0.1],
+            f"the posterior's principal spreads span {structure.decades:.1f} decades (correlation "
+            f"eigenvalues); the tightest combination {tight.describe(names)} is pinned to "
+            f"+/- {tight.spread:.3g}. Diagonal step sizes cannot follow this; use the full covariance.",
+            {"decades": structure.decades, "smallest_eigenvalue": float(structure.eigenvalues[0])},
+        )
+    ]
+
+
+def convergence_findings(rhat, names, run_name: str) -> list:
+    bad = [i for i, r in enumerate(rhat) if not r <= 1.01]
+    if not bad:
+        return []
+    worst = max(float(rhat[i]) for i in bad)
+    return [
+        Finding(
+            "not-converged",
+            "critical" if worst > 1.1 else "warn",
+            [names[i] for i in bad],
+            f"the chains of the {run_name} run disagree (R-hat up to {worst:.3f}; below 1.01 is wanted): "
+            "they have not mixed, or the posterior has separated regions. Run longer or from other "
+            "starts before trusting any estimate.",
+            {"rhat": {names[i]: float(rhat[i]) for i in bad}},
+        )
+    ]
+
+
+def identification_findings(sd, bounds, names) -> list:
+    out = []
+    for i, (lo, hi) in enumerate(bounds):
+        width = hi - lo
+        if not (width < float("inf")):
+            continue
+        share = sd[i] / width
+        if share > 0.2:
+            out.append(
+                Finding(
+                    "weakly-identified",
+                    "warn",
+                    [names[i]],
+                    f"{names[i]} has posterior sd {sd[i]:.3g}, {share:.0%} of its allowed range "
+                    f"[{lo:g}, {hi:g}] (a flat spread over it would be 29%): the data say little about it, "
+                    "and results for it mostly reflect the bounds or prior.",
+                    {"sd": float(sd[i]), "bound_width": float(width)},
+                )
+            )
+    return out
+
+
+def acceptance_findings(rows) -> list:
+    out = []
+    for row in rows:
+        if row.acceptance < 0.1 or row.acceptance > 0.7:
+            direction = "too large" if row.acceptance < 0.1 else "too small"
+            out.append(
+                Finding(
+                    "poor-acceptance",
+                    "warn",
+                    [],
+                    f"the {row.proposal} proposal accepts {row.acceptance:.1%} of moves: its steps are "
+                    f"{direction}. The best acceptance is about 0.23 (0.44 for one parameter).",
+                    {"proposal": row.proposal, "acceptance": row.acceptance},
+                )
+            )
+    return out

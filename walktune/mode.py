@@ -1,0 +1,166 @@
+"""Find the mode of the log-density and the Laplace covariance there.
+
+The Laplace approximation of a posterior at its mode ``m`` is ``N(m, H^{-1})``
+with ``H = -grad^2 log p(m)``, estimated here by central finite differences.
+The optimizer is scipy.optimize.minimize: L-BFGS-B (which honours bounds)
+first, then Nelder-Mead and Powell as fallbacks when it fails or stalls.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize
+
+#: Relative step of the finite differences, about the cube root of machine epsilon.
+FD_STEP = 1e-4
+
+
+@dataclass(frozen=True)
+class ModeFit:
+    """Result of the search for the mode.
+
+    Attributes
+    ----------
+    mode : ndarray of shape (d,)
+    log_density : float
+        The log-density at ``mode``.
+    hessian : ndarray of shape (d, d) or None
+        Finite-difference Hessian of the log-density (negative definite at a mode).
+    laplace_covariance : ndarray of shape (d, d) or None
+        ``(-hessian)^{-1}`` when it is positive definite, else None.
+    method : str
+        The optimizer that gave the mode ("start" if all failed to improve).
+    message : str
+        What happened, for the report.
+    """
+
+    mode: np.ndarray
+    log_density: float
+    hessian: np.ndarray | None
+    laplace_covariance: np.ndarray | None
+    method: str
+    message: str
+
+
+class _Objective:
+    """Negative log-density that maps non-finite values to a large penalty."""
+
+    def __init__(self, evaluate, penalty: float):
+        self.evaluate = evaluate
+        self.penalty = penalty
+
+    def __call__(self, x: np.ndarray) -> float:
+        value = self.evaluate(x)
+        return -value if np.isfinite(value) else self.penalty
+
+
+def _steps(point: np.ndarray, scales: np.ndarray) -> np.ndarray:
+    return FD_STEP * np.maximum(np.abs(point), scales)
+
+
+def finite_difference_hessian(evaluate, point: np.ndarray, scales: np.ndarray, bounds=None) -> np.ndarray | None:
+    """Central-difference Hessian of ``evaluate`` at ``point`` (2 d^2 + 1 evaluations).
+
+    Steps are ``1e-4 * max(|x_i|, scale_i)``, kept inside ``bounds``. Returns
+    None if any evaluation is not finite.
+    """
+    d = point.shape[0]
+    h = _steps(point, scales)
+    if bounds is not None:
+        room = np.minimum(point - bounds[:, 0], bounds[:, 1] - point)
+        h = np.minimum(h, 0.5 * room)
+        if np.any(h <= 0):
+            return None
+    f0 = evaluate(point)
+    if not np.isfinite(f0):
+        return None
+    hess = np.empty((d, d))
+    cache = {}
+
+    def f(shift: tuple) -> float:
+        if shift not in cache:
+            x = point.copy()
+            for i, s in shift:
+                x[i] += s * h[i]
+            cache[shift] = evaluate(x)
+        return cache[shift]
+
+    for i in range(d):
+        plus, minus = f(((i, 1),)), f(((i, -1),))
+        hess[i, i] = (plus - 2 * f0 + minus) / h[i] ** 2
+        for j in range(i):
+            value = (
+                f(((i, 1), (j, 1))) - f(((i, 1), (j, -1))) - f(((i, -1), (j, 1))) + f(((i, -1), (j, -1)))
+            ) / (4 * h[i] * h[j])
+            hess[i, j] = hess[j, i] = value
+    if not np.all(np.isfinite(hess)):
+        return None
+    return hess
+
+
+def laplace_covariance(hessian: np.ndarray | None) -> np.ndarray | None:
+    """``(-H)^{-1}`` when ``-H`` is positive definite, else None."""
+    if hessian is None:
+        return None
+    precision = -0.5 * (hessian + hessian.T)
+    try:
+        chol = np.linalg.cholesky(precision)
+    except np.linalg.LinAlgError:
+        return None
+    inverse = np.linalg.inv(chol)
+    cov = inverse.T @ inverse
+    return 0.5 * (cov + cov.T)
+
+
+def find_mode(evaluate, start: np.ndarray, bounds: np.ndarray, scales: np.ndarray, max_evaluations: int) -> ModeFit:
+    """Maximise ``evaluate`` from ``start`` and estimate the Hessian there.
+
+    Parameters
+    ----------
+    evaluate : callable
+        ``evaluate(theta) -> float`` log-density (may return -inf).
+    start : ndarray of shape (d,)
+    bounds : ndarray of shape (d, 2)
+        Lower and upper bounds; infinite where unbounded.
+    scales : ndarray of shape (d,)
+        A rough scale per parameter, for step sizes.
+    max_evaluations : int
+        Evaluations the optimizers may spend (the Hessian comes on top).
+    """
+    start_value = evaluate(start)
+    penalty = abs(start_value) * 10 + 1e10
+    objective = _Objective(evaluate, penalty)
+    finite_bounds = [(None if np.isinf(lo) else lo, None if np.isinf(hi) else hi) for lo, hi in bounds]
+    best_x, best_f, method, notes = start.copy(), -start_value, "start", []
+    # The optimizers work on theta / scales so that every parameter is of order one.
+    scaled_bounds = [
+        (None if lo is None else lo / s, None if hi is None else hi / s) for (lo, hi), s in zip(finite_bounds, scales)
+    ]
+    attempts = [
+        ("L-BFGS-B", {"maxfun": max_evaluations, "eps": 1e-7}),
+        ("Nelder-Mead", {"maxfev": max_evaluations, "xatol": 1e-8, "fatol": 1e-10}),
+        ("Powell", {"maxfev": max_evaluations}),
+    ]
+    for name, options in attempts:
+        try:
+            result = optimize.minimize(
+                lambda z: objective(z * scales), best_x / scales, method=name, bounds=scaled_bounds, options=options
+            )
+            x = result.x * scales
+            f = objective(x)
+        except (ValueError, ArithmeticError, np.linalg.LinAlgError) as error:
+            notes.append(f"{name} failed: {error}")
+            continue
+        if f < best_f:
+            best_x, best_f, method = x, f, name
+        if result.success and name == "L-BFGS-B":
+            break
+        notes.append(f"{name}: {result.message}")
+    hessian = finite_difference_hessian(evaluate, best_x, scales, bounds) if start.shape[0] <= 200 else None
+    cov = laplace_covariance(hessian)
+    message = f"mode by {method}" + (f" ({'; '.join(notes)})" if notes else "")
+    if cov is None:
+        message += "; the Hessian there is not negative definite, so no Laplace covariance"
+    return ModeFit(best_x, -best_f, hessian, cov, method, message)

@@ -1,0 +1,196 @@
+"""Adaptive pilot: fixed-proposal stages in growing windows, adapted between stages.
+
+Each stage is an ordinary random-walk Metropolis run with a fixed proposal
+``c^2 * scale(d)^2 * C``; between stages
+
+* ``C`` is re-estimated from pooled stage draws with Ledoit-Wolf shrinkage
+  (Ledoit and Wolf 2004) done in the coordinates whitened by the current
+  ``C``, so the estimate shrinks towards the current shape and respects each
+  parameter's scale (a full-matrix version of "standardise, shrink, rescale");
+* the global factor ``c`` is steered towards the optimal acceptance rate
+  (Andrieu and Thoms 2008), using the diffusion-limit relation
+  ``a = 2 Phi(-c sqrt(J) / 2)`` (Roberts, Gelman and Gilks 1997) to take one
+  well-sized step per stage.
+
+Adaptation happens only between stages; nothing measured after the pilot comes
+from an adapting chain.
+
+References
+----------
+Haario, H., Saksman, E. and Tamminen, J. (2001). An adaptive Metropolis algorithm. Bernoulli, 7(2), 223-242.
+Andrieu, C. and Thoms, J. (2008). A tutorial on adaptive MCMC. Statistics and Computing, 18, 343-373.
+Ledoit, O. and Wolf, M. (2004). A well-conditioned estimator for large-dimensional
+covariance matrices. Journal of Multivariate Analysis, 88(2), 365-411.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+from sklearn.covariance import ledoit_wolf_shrinkage
+
+from . import theory
+from .diagnostics import iact
+from .engine import Chains, sample
+
+
+@dataclass
+class PilotStage:
+    """What one fixed-proposal stage did."""
+
+    steps: int
+    proposal_cov: np.ndarray
+    acceptance_rate: float
+    evaluations: int
+    shrinkage: float
+    change: float
+
+
+@dataclass
+class PilotResult:
+    """Outcome of the pilot.
+
+    Attributes
+    ----------
+    covariance : ndarray of shape (d, d)
+        Shrinkage estimate of the posterior covariance from pooled stage draws.
+    scale_factor : float
+        Global factor ``c`` found for the proposal ``c^2 scale(d)^2 C``.
+    states : ndarray of shape (chains, d)
+        The chains' final states.
+    stages : list of PilotStage
+    draws : ndarray of shape (chains, n, d)
+        The draws pooled for the last covariance estimate.
+    evaluations : int
+    converged : bool
+        Whether the covariance and acceptance settled before the budget ran out.
+    """
+
+    covariance: np.ndarray
+    scale_factor: float
+    states: np.ndarray
+    stages: list = field(default_factory=list)
+    draws: np.ndarray | None = None
+    all_draws: list = field(default_factory=list)
+    evaluations: int = 0
+    converged: bool = False
+
+
+def shrunk_covariance(draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndarray, float]:
+    """Covariance of ``draws`` (chains, n, d), shrunk towards the shape of ``reference``.
+
+    The draws are whitened by the Cholesky factor of ``reference``; the
+    Ledoit-Wolf intensity is estimated on draws thinned to about one per
+    autocorrelation time (the estimator assumes independent rows), and the
+    shrunk matrix ``(1 - s) S + s (tr S / d) I`` is mapped back.
+
+    Returns the covariance and the shrinkage intensity ``s``.
+    """
+    m, n, d = draws.shape
+    chol = np.linalg.cholesky(reference)
+    flat = draws.reshape(-1, d)
+    white = np.linalg.solve(chol, (flat - flat.mean(axis=0)).T).T
+    sample_cov = np.atleast_2d(np.cov(white, rowvar=False))
+    tau = float(np.max(iact(white.reshape(m, n, d)))) if n >= 20 else 1.0
+    step = max(1, int(np.ceil(tau)))
+    thinned = white.reshape(m, n, d)[:, ::step].reshape(-1, d)
+    shrinkage = float(ledoit_wolf_shrinkage(thinned, assume_centered=True)) if thinned.shape[0] > 1 else 1.0
+    target = np.trace(sample_cov) / d * np.eye(d)
+    shrunk = (1 - shrinkage) * sample_cov + shrinkage * target
+    cov = chol @ shrunk @ chol.T
+    return 0.5 * (cov + cov.T), shrinkage
+
+
+def _scale_step(factor: float, acceptance: float, target: float) -> float:
+    """New global factor so that the diffusion-limit acceptance hits ``target``."""
+    acceptance = min(max(acceptance, 0.01), 0.95)
+    ratio = stats.norm.ppf(target / 2) / stats.norm.ppf(acceptance / 2)
+    return factor * float(np.clip(ratio, 0.25, 4.0))
+
+
+def run_pilot(
+    log_density,
+    states: np.ndarray,
+    covariance: np.ndarray,
+    budget: int,
+    seed: np.random.SeedSequence,
+    *,
+    evaluator=None,
+    vectorized: bool = False,
+    first_window: int | None = None,
+    progress=None,
+) -> PilotResult:
+    """Adapt the proposal in stages of doubling length until it settles or the budget ends.
+
+    Parameters
+    ----------
+    log_density : callable
+    states : ndarray of shape (chains, d)
+        Start points (overdispersed around the mode).
+    covariance : ndarray of shape (d, d)
+        First guess of the posterior covariance (Laplace or diagonal).
+    budget : int
+        Evaluations the pilot may spend.
+    seed : SeedSequence
+        Each stage gets its own spawned child.
+    """
+    n_chains, dim = states.shape
+    target = theory.target_acceptance(dim)
+    scale = theory.optimal_scale(dim)
+    window = first_window or max(50, 10 * dim)
+    factor = 1.0
+    result = PilotResult(covariance=covariance, scale_factor=factor, states=states)
+    history: list[np.ndarray] = []
+    spent = 0
+    stage_index = 0
+    settled = 0
+    while True:
+        steps = window * 2 ** min(stage_index, 6)
+        remaining = budget - spent
+        if remaining < n_chains * min(steps, window):
+            break
+        steps = min(steps, remaining // n_chains)
+        proposal = (factor * scale) ** 2 * result.covariance
+        chains: Chains = sample(
+            log_density, result.states, proposal, steps,
+            seed=seed.spawn(1)[0], vectorized=vectorized, evaluator=evaluator,
+        )
+        spent += chains.evaluations - n_chains  # start points were evaluated before
+        result.states = chains.last
+        history.append(chains.draws)
+        result.all_draws.append(chains.draws)
+        # Pool the newest draws: this stage and the later half of the one before;
+        # in the first stage only its later half (the early part is warm-up).
+        if stage_index == 0:
+            pooled_draws = chains.draws[:, steps // 2 :]
+        else:
+            previous = history[-2]
+            pooled_draws = np.concatenate([previous[:, previous.shape[1] // 2 :], chains.draws], axis=1)
+        try:
+            new_cov, shrinkage = shrunk_covariance(pooled_draws, result.covariance)
+            np.linalg.cholesky(new_cov)
+        except np.linalg.LinAlgError:
+            new_cov, shrinkage = result.covariance, 1.0
+        change = theory.slowdown(new_cov, result.covariance).slowest
+        acceptance = chains.acceptance_rate
+        result.stages.append(PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change))
+        if acceptance > 0:
+            result.covariance = new_cov
+        else:
+            result.covariance = result.covariance / 10.0  # nothing moved: try much smaller steps
+        # A new shape moves the optimal factor; adjust the factor for the stage just seen.
+        factor = _scale_step(factor, acceptance, target)
+        result.draws = pooled_draws
+        good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
+        settled = settled + 1 if (change < 1.05 and good_acceptance and stage_index >= 1) else 0
+        stage_index += 1
+        if progress is not None:
+            progress(spent, budget)
+        if settled >= 2:
+            result.converged = True
+            break
+    result.scale_factor = factor
+    result.evaluations = spent
+    return result

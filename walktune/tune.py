@@ -1,0 +1,614 @@
+"""The tuning job: mode, pilot, structure, advice, proof of gain.
+
+``tune`` runs, in order:
+
+1. the mode and the Laplace covariance there (:mod:`walktune.mode`);
+2. overdispersed chains around the mode and an adaptive pilot in fixed-proposal
+   stages (:mod:`walktune.pilot`);
+3. the structure of the posterior from the pilot covariance (:mod:`walktune.analysis`);
+4. advice from optimal-scaling theory (:mod:`walktune.theory`);
+5. the proof: fixed-proposal runs from the pilot's end states, on equal
+   evaluation budgets, of a baseline (the user's proposal or one tuned step
+   size), tuned per-parameter step sizes and the tuned covariance;
+6. findings.
+
+Every figure in the comparison comes from fixed-proposal chains.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from . import theory
+from ._validation import as_covariance, as_float_array, check_finite
+from .analysis import Structure, analyse
+from .diagnostics import bulk_ess, iact, mcse_mean, rhat
+from .engine import sample
+from .errors import SamplingError, TargetError, WalktuneError
+from .evaluators import BatchResult, InProcessEvaluator
+from .findings import (
+    Finding,
+    acceptance_findings,
+    conditioning_findings,
+    convergence_findings,
+    correlation_findings,
+    identification_findings,
+)
+from .mode import ModeFit, find_mode
+from .pilot import PilotResult, run_pilot
+
+#: Default ESS the user wants, for the "evaluations needed" advice; 400 over
+#: all chains is common practice (Vehtari et al. 2021 suggest 100 per chain).
+DEFAULT_TARGET_ESS = 400
+SCHEMA = "walktune.advice/1"
+
+CAUTION = (
+    "Diagnostics can show that chains have not converged; they can never prove that they have. "
+    "A pilot can miss modes or regions it never reached. Confirm results with independent runs "
+    "from different starting points before relying on them."
+)
+
+
+# --------------------------------------------------------------------------- inputs
+
+
+def pilot_budget_default(dim: int) -> int:
+    """Default pilot evaluations: ``20 d^2 + 2000`` (mode search included)."""
+    return 20 * dim * dim + 2000
+
+
+def proof_steps_default(dim: int) -> int:
+    """Steps per chain of each proof run: enough for about 80 IACTs of the tuned chain (IACT ~ 3 d)."""
+    return max(2000, 250 * dim)
+
+
+def minimum_budget(dim: int, chains: int) -> int:
+    """Smallest budget that can do anything useful: the mode, two pilot stages, three short proofs."""
+    return (2 * dim * dim + 50 * dim + 200) + 2 * chains * max(50, 10 * dim) + 3 * chains * 200
+
+
+def _names(names, dim: int) -> list:
+    if names is None:
+        return [f"theta[{i}]" for i in range(dim)]
+    names = [str(n) for n in names]
+    if len(names) != dim:
+        raise WalktuneError(f"got {len(names)} parameter names for {dim} start values; give one name per parameter.")
+    if len(set(names)) != len(names):
+        raise WalktuneError("parameter names must be unique; some name is repeated.")
+    return names
+
+
+def _bounds(bounds, names: list, start: np.ndarray) -> np.ndarray:
+    dim = len(names)
+    out = np.tile([-np.inf, np.inf], (dim, 1))
+    if bounds is None:
+        return out
+    if not isinstance(bounds, dict):
+        bounds = {i: b for i, b in enumerate(bounds)}
+    for key, pair in bounds.items():
+        if isinstance(key, (int, np.integer)) and not isinstance(key, bool):
+            if not 0 <= key < dim:
+                raise WalktuneError(f"bound index {key} is out of range for {dim} parameters.")
+            index = int(key)
+        elif key in names:
+            index = names.index(key)
+        else:
+            raise WalktuneError(f"bounds name unknown parameter {key!r}; known parameters: {', '.join(names)}.")
+        try:
+            lo, hi = (float(-np.inf if pair[0] is None else pair[0]), float(np.inf if pair[1] is None else pair[1]))
+        except (TypeError, ValueError, IndexError):
+            raise WalktuneError(f"bounds for {names[index]} must be a pair (low, high); got {pair!r}.") from None
+        if not lo < hi:
+            raise WalktuneError(f"bounds for {names[index]} must have low < high; got ({lo:g}, {hi:g}).")
+        if not lo < start[index] < hi:
+            raise WalktuneError(
+                f"start value {start[index]:g} of {names[index]} is outside its bounds ({lo:g}, {hi:g}); "
+                "choose a start strictly inside."
+            )
+        out[index] = (lo, hi)
+    return out
+
+
+def _current_proposal(value, dim: int) -> np.ndarray | None:
+    """A covariance (d, d), or per-parameter step sizes (d,) as standard deviations."""
+    if value is None:
+        return None
+    array = as_float_array(value, "current_proposal")
+    if array.ndim == 1:
+        if array.shape[0] != dim:
+            raise WalktuneError(
+                f"current proposal step sizes must have {dim} values (one per parameter); got {array.shape[0]}."
+            )
+        check_finite(array, "current_proposal")
+        if np.any(array <= 0):
+            raise WalktuneError("current proposal step sizes must all be positive.")
+        return np.diag(array**2)
+    return as_covariance(array, dim, "current_proposal")
+
+
+class _Counted:
+    """Wraps an evaluator: enforces bounds, counts evaluations, times them."""
+
+    def __init__(self, evaluator, bounds: np.ndarray):
+        self.evaluator = evaluator
+        self.bounds = bounds
+        self.count = 0
+        self.seconds = 0.0
+        self.bounded = bool(np.any(np.isfinite(bounds)))
+
+    def __call__(self, points: np.ndarray) -> BatchResult:
+        points = np.atleast_2d(points)
+        self.count += points.shape[0]
+        if self.bounded:
+            inside = np.all((points > self.bounds[:, 0]) & (points < self.bounds[:, 1]), axis=1)
+            if not inside.all():
+                values = np.full(points.shape[0], -np.inf)
+                errors = {}
+                if inside.any():
+                    index = np.flatnonzero(inside)
+                    inner = self._timed(points[index])
+                    values[index] = inner.values
+                    errors = {int(index[k]): v for k, v in inner.errors.items()}
+                return BatchResult(values, errors)
+        return self._timed(points)
+
+    def _timed(self, points):
+        t0 = time.perf_counter()
+        result = self.evaluator(points)
+        self.seconds += time.perf_counter() - t0
+        return result
+
+    def scalar(self, theta: np.ndarray) -> float:
+        """One point, for the optimizer: exceptions and NaN become -inf."""
+        result = self(np.asarray(theta, dtype=float)[None, :])
+        value = float(result.values[0])
+        return value if np.isfinite(value) or value == -np.inf else -np.inf
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class ComparisonRow:
+    """One fixed-proposal run of the proof.
+
+    ``ess_per_1000`` is the smallest bulk ESS over parameters per 1000
+    evaluations; ``speedup`` its ratio to the baseline's. When the baseline
+    chain was too short to estimate its ESS, the speed-up is a lower bound.
+    """
+
+    proposal: str
+    description: str
+    acceptance: float
+    ess_per_1000: float
+    median_ess_per_1000: float
+    evaluations: int
+    speedup: float
+    speedup_is_lower_bound: bool
+    ess_reliable: bool
+    predicted_slowdown: float
+    max_rhat: float
+    iact_max: float
+
+    def to_dict(self) -> dict:
+        return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in self.__dict__.items()}
+
+
+@dataclass
+class TuneResult:
+    """Everything the tuning job found and advises.
+
+    Attributes
+    ----------
+    parameter_names : list of str
+    proposal_covariance : ndarray of shape (d, d)
+        Ready to use: propose ``theta + N(0, proposal_covariance)``.
+    posterior_mean : ndarray of shape (d,)
+        From the tuned fixed-proposal run, with ``posterior_mean_mcse``.
+    posterior_covariance : ndarray of shape (d, d)
+        The pilot's shrinkage estimate from pooled fixed-proposal stages.
+    step_sizes : ndarray of shape (d,)
+        Per-parameter proposal standard deviations for samplers that take only those.
+    single_step : float
+        The best one step size for all parameters.
+    expected_acceptance : float
+        Of the proposal covariance on the Gaussian with the posterior covariance.
+    comparison : list of ComparisonRow
+    findings : list of Finding
+    pilot_evaluations : int
+        Evaluations spent on the mode search and the pilot.
+    """
+
+    parameter_names: list
+    bounds: np.ndarray
+    mode_fit: ModeFit
+    proposal_covariance: np.ndarray
+    posterior_mean: np.ndarray
+    posterior_mean_mcse: np.ndarray
+    posterior_covariance: np.ndarray
+    step_sizes: np.ndarray
+    single_step: float
+    expected_acceptance: float
+    structure: Structure
+    comparison: list
+    findings: list
+    pilot_evaluations: int
+    total_evaluations: int
+    seconds_per_evaluation: float
+    target_ess: int
+    warmup_steps: int
+    thinning: int
+    pilot: PilotResult
+    slowdowns: dict
+    runs: dict = field(repr=False, default_factory=dict)
+    current_proposal: np.ndarray | None = None
+    seed: object = None
+    partial: bool = False
+
+    @property
+    def effective_dimension(self) -> float:
+        return self.structure.effective_dimension
+
+    @property
+    def rotation(self) -> np.ndarray:
+        """``W`` with ``W W^T = posterior_covariance`` (lower Cholesky): ``z = W^{-1} (theta - mean)``."""
+        return np.linalg.cholesky(self.posterior_covariance)
+
+    def evaluations_needed(self) -> dict:
+        """Evaluations each proposal needs for ``target_ess`` (from its measured min ESS)."""
+        out = {}
+        for row in self.comparison:
+            rate = row.ess_per_1000 / 1000
+            out[row.proposal] = float(np.ceil(self.target_ess / rate)) if rate > 0 else float("inf")
+        return out
+
+    def to_dict(self) -> dict:
+        """The advice.json payload (schema ``walktune.advice/1``; see docs/advice-schema.md)."""
+        from . import __version__
+
+        names = self.parameter_names
+        needed = self.evaluations_needed()
+        return {
+            "schema": SCHEMA,
+            "walktune_version": __version__,
+            "source": "pilot",
+            "partial": self.partial,
+            "seed": self.seed if isinstance(self.seed, (int, type(None))) else str(self.seed),
+            "parameter_names": names,
+            "bounds": [[_json_float(lo), _json_float(hi)] for lo, hi in self.bounds],
+            "mode": self.mode_fit.mode.tolist(),
+            "mode_message": self.mode_fit.message,
+            "posterior_mean": self.posterior_mean.tolist(),
+            "posterior_mean_mcse": self.posterior_mean_mcse.tolist(),
+            "posterior_sd": np.sqrt(np.diag(self.posterior_covariance)).tolist(),
+            "posterior_covariance": self.posterior_covariance.tolist(),
+            "proposal_covariance": self.proposal_covariance.tolist(),
+            "step_sizes": self.step_sizes.tolist(),
+            "single_step": self.single_step,
+            "expected_acceptance": self.expected_acceptance,
+            "rotation": self.rotation.tolist(),
+            "effective_dimension": self.structure.effective_dimension,
+            "spectrum_decades": self.structure.decades,
+            "correlation_eigenvalues": self.structure.eigenvalues.tolist(),
+            "principal_directions": [
+                {"combination": d.describe(names), "coefficients": d.coefficients.tolist(), "spread": d.spread}
+                for d in self.structure.directions
+            ],
+            "variance_inflation": dict(zip(names, self.structure.vif.tolist())),
+            "predicted_slowdown": self.slowdowns,
+            "warmup_steps": self.warmup_steps,
+            "thinning": self.thinning,
+            "target_ess": self.target_ess,
+            "evaluations_needed": {k: _json_float(v) for k, v in needed.items()},
+            "seconds_per_evaluation": self.seconds_per_evaluation,
+            "pilot_evaluations": self.pilot_evaluations,
+            "total_evaluations": self.total_evaluations,
+            "pilot_converged": self.pilot.converged,
+            "comparison": [row.to_dict() for row in self.comparison],
+            "findings": [f.to_dict() for f in self.findings],
+            "caution": CAUTION,
+        }
+
+    def save(self, directory) -> Path:
+        """Write advice.json, the proposal covariance (.npy, .csv) and the draws (.npz) atomically."""
+        from .export import result_files
+        from .io import write_folder
+
+        return write_folder(Path(directory), result_files(self))
+
+
+def _json_float(value: float):
+    return float(value) if np.isfinite(value) else (None if np.isnan(value) else ("inf" if value > 0 else "-inf"))
+
+
+# --------------------------------------------------------------------------- the job
+
+
+def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> np.ndarray:
+    if fit.laplace_covariance is not None:
+        return fit.laplace_covariance
+    width = bounds[:, 1] - bounds[:, 0]
+    guess = np.where(np.isfinite(width), width / 6.0, 0.1 * np.maximum(np.abs(start), 1.0))
+    return np.diag(guess**2)
+
+
+def _overdispersed_starts(counted: _Counted, centre, cov, chains: int, rng) -> np.ndarray:
+    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite."""
+    chol = np.linalg.cholesky(cov)
+    points = np.empty((chains, centre.shape[0]))
+    for c in range(chains):
+        z = rng.standard_normal(centre.shape[0])
+        for spread in (2.0, 1.0, 0.5, 0.25, 0.1, 0.0):
+            candidate = centre + spread * (chol @ z)
+            if np.isfinite(counted.scalar(candidate)):
+                break
+        points[c] = candidate
+    return points
+
+
+def _proof_run(name, description, proposal, counted, states, steps, seed, progress):
+    t0 = time.perf_counter()
+    chains = sample(
+        None, states, proposal, steps, seed=seed, evaluator=counted,
+        progress=(lambda done, total: progress(name, done, total)) if progress else None,
+    )
+    return chains, time.perf_counter() - t0
+
+
+def _row_from_run(name, description, chains, predicted, baseline=None):
+    ess = bulk_ess(chains.draws)
+    evaluations = chains.evaluations - chains.n_chains  # start points were evaluated in the pilot
+    ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
+    if not np.isfinite(ess_min):
+        # A chain that never moved: its ESS is at most the number of distinct states.
+        ess_min = float(np.sum(chains.accepted) + chains.n_chains)
+    per_1000 = 1000 * ess_min / evaluations
+    median = 1000 * float(np.nanmedian(np.where(np.isfinite(ess), ess, ess_min))) / evaluations
+    reliable = not ess.any_too_short
+    tau = iact(chains.draws)
+    row = dict(
+        proposal=name,
+        description=description,
+        acceptance=chains.acceptance_rate,
+        ess_per_1000=per_1000,
+        median_ess_per_1000=median,
+        evaluations=evaluations,
+        ess_reliable=reliable,
+        predicted_slowdown=predicted,
+        max_rhat=float(np.nanmax(rhat(chains.draws))),
+        iact_max=float(np.nanmax(tau)),
+    )
+    if baseline is None:
+        row.update(speedup=1.0, speedup_is_lower_bound=False)
+    else:
+        row.update(
+            speedup=per_1000 / baseline.ess_per_1000 if baseline.ess_per_1000 > 0 else float("inf"),
+            # An unreliable baseline ESS is an overestimate (its IACT is underestimated),
+            # so the true speed-up is at least the printed one.
+            # (This run's own ESS must be trustworthy for that to hold.)
+            speedup_is_lower_bound=(not baseline.ess_reliable) and reliable,
+        )
+    return ComparisonRow(**row)
+
+
+def tune(
+    log_density: Callable,
+    start,
+    *,
+    names=None,
+    bounds=None,
+    current_proposal=None,
+    budget: int | None = None,
+    chains: int | None = None,
+    seed=None,
+    vectorized: bool = False,
+    target_ess: int = DEFAULT_TARGET_ESS,
+    evaluator=None,
+    progress: Callable[[str, float, float], None] | None = None,
+) -> TuneResult:
+    """Tune a random-walk Metropolis proposal for ``log_density`` and prove the gain.
+
+    Parameters
+    ----------
+    log_density : callable
+        Log-likelihood plus log-prior, ``log_density(theta) -> float`` with
+        ``theta`` of shape (d,) (or a batch (n, d) -> (n,) when ``vectorized``).
+    start : array-like of shape (d,)
+        A point where the log-density is finite.
+    names : list of str, optional
+        Parameter names; default ``theta[i]``.
+    bounds : dict, optional
+        ``{name or index: (low, high)}``; either side may be infinite or None.
+        Outside the bounds the log-density is taken as ``-inf``.
+    current_proposal : array-like, optional
+        The proposal used today: a (d, d) covariance or (d,) step sizes (sds).
+    budget : int, optional
+        Cap on log-density evaluations for the whole job. Default: ``20 d^2 +
+        2000`` for the pilot plus three proof runs of ``chains x max(2000, 250 d)``.
+    chains : int, default=4
+    seed : int or None
+        Makes the whole job reproducible.
+    vectorized : bool, default=False
+    target_ess : int, default=400
+        The ESS the user wants, for the evaluations-needed advice.
+    evaluator : callable, optional
+        Batch evaluator (see :mod:`walktune.evaluators`); default in-process.
+    progress : callable, optional
+        ``progress(stage, done, total)``, called as stages advance.
+
+    Returns
+    -------
+    TuneResult
+    """
+    start = as_float_array(start, "start")
+    if start.ndim == 0:
+        start = start.reshape(1)
+    if start.ndim != 1:
+        raise WalktuneError(f"`start` must be one point of shape (d,); got shape {start.shape}.")
+    check_finite(start, "start")
+    dim = start.shape[0]
+    names = _names(names, dim)
+    bound_array = _bounds(bounds, names, start)
+    current = _current_proposal(current_proposal, dim)
+    n_chains = 4 if chains is None else int(chains)
+    if n_chains < 2:
+        raise WalktuneError("`chains` must be at least 2, so that chains can disagree when they have not mixed.")
+    if budget is not None:
+        low = minimum_budget(dim, n_chains)
+        if budget < low:
+            raise WalktuneError(
+                f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
+                f"give at least {low}."
+            )
+    if not callable(log_density) and evaluator is None:
+        raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
+    seed_seq = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
+    mode_seed, pilot_seed, proof_seed = seed_seq.spawn(3)
+    base = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
+    counted = _Counted(base, bound_array)
+    report = progress or (lambda *args: None)
+
+    first = counted(start[None, :])
+    if first.errors or not np.isfinite(first.values[0]):
+        detail = first.errors[0].strip().splitlines()[-1] if first.errors else f"value {first.values[0]}"
+        raise TargetError(f"the log-density at the start point is not finite ({detail}); choose a start inside the support.")
+
+    # Budgets.
+    if budget is None:
+        pilot_budget = pilot_budget_default(dim)
+        proof_steps = proof_steps_default(dim)
+    else:
+        pilot_budget = max(int(0.4 * budget), minimum_budget(dim, n_chains) - 3 * n_chains * 200)
+        proof_steps = max(200, (budget - pilot_budget) // (3 * n_chains))
+
+    # 1. Mode and Laplace covariance.
+    report("mode", 0, 1)
+    scales = np.where(np.isfinite(bound_array).all(axis=1), (bound_array[:, 1] - bound_array[:, 0]) / 10, 1.0)
+    scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
+    mode_budget = max(20 * (dim + 1), pilot_budget // 3 - 2 * dim * dim)
+    fit = find_mode(counted.scalar, start, bound_array, scales, mode_budget)
+    report("mode", 1, 1)
+    initial_cov = _initial_covariance(fit, bound_array, start)
+
+    # 2. Pilot from overdispersed starts.
+    rng = np.random.default_rng(mode_seed)
+    states = _overdispersed_starts(counted, fit.mode, initial_cov, n_chains, rng)
+    used = counted.count
+    pilot = run_pilot(
+        None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
+        pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
+    )
+    pilot_evaluations = counted.count
+    covariance = pilot.covariance
+
+    # 3-4. Structure and advice.
+    structure = analyse(covariance)
+    proposal = (pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * covariance
+    step_sizes = theory.best_step_sizes(covariance) * pilot.scale_factor
+    single = theory.best_isotropic_step(covariance) * pilot.scale_factor
+    expected_acc = theory.expected_acceptance(proposal, covariance)
+    slowdowns = {
+        "step_sizes": theory.slowdown(np.diag(step_sizes**2), covariance).__dict__,
+        "single_step": theory.slowdown(single**2 * np.eye(dim), covariance).__dict__,
+    }
+    if current is not None:
+        slowdowns["current"] = theory.slowdown(current, covariance, rescaled=False).__dict__
+        slowdowns["current_rescaled"] = theory.slowdown(current, covariance).__dict__
+
+    # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
+    if current is not None:
+        baseline_name, baseline_cov, baseline_text = "current", current, "the proposal you use now"
+        baseline_predicted = slowdowns["current"]["slowest"]
+    else:
+        baseline_name, baseline_cov = "single-step", single**2 * np.eye(dim)
+        baseline_text = f"one tuned step size {single:.3g} for all parameters"
+        baseline_predicted = slowdowns["single_step"]["slowest"]
+    plan = [
+        (baseline_name, baseline_text, baseline_cov, baseline_predicted),
+        ("step-sizes", "tuned per-parameter step sizes", np.diag(step_sizes**2), slowdowns["step_sizes"]["slowest"]),
+        ("tuned-covariance", "the tuned full proposal covariance", proposal, 1.0),
+    ]
+    rows, runs, seconds = [], {}, 0.0
+    proof_seeds = proof_seed.spawn(len(plan))
+    for (name, text, cov, predicted), child in zip(plan, proof_seeds):
+        run, elapsed = _proof_run(name, text, cov, counted, pilot.states, proof_steps, child, report)
+        seconds += elapsed
+        runs[name] = run
+        rows.append(_row_from_run(name, text, run, predicted, rows[0] if rows else None))
+
+    tuned = runs["tuned-covariance"]
+    posterior_mean = tuned.draws.reshape(-1, dim).mean(axis=0)
+    mcse = np.asarray(mcse_mean(tuned.draws))
+    tuned_rhat = rhat(tuned.draws)
+    tau_max = rows[-1].iact_max
+
+    # 6. Findings.
+    findings: list[Finding] = []
+    findings += correlation_findings(structure, names)
+    findings += conditioning_findings(structure, names)
+    findings += convergence_findings(tuned_rhat, names, "tuned-covariance")
+    findings += identification_findings(np.sqrt(np.diag(covariance)), bound_array, names)
+    findings += acceptance_findings(rows)
+    if not rows[-1].ess_reliable:
+        findings.append(
+            Finding(
+                "short-chains", "warn", [],
+                "the tuned run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
+                "chain); its ESS and the speed-ups are rough. Raise the budget.",
+                {"iact_max": tau_max, "steps": proof_steps},
+            )
+        )
+    if not pilot.converged:
+        findings.append(
+            Finding(
+                "pilot-unsettled", "info", [],
+                "the pilot's covariance was still changing when its budget ran out; the advice may improve "
+                "with a larger budget.",
+                {"pilot_evaluations": pilot_evaluations},
+            )
+        )
+    for name, run in runs.items():
+        if run.error_count or run.nan_count:
+            findings.append(
+                Finding(
+                    "failed-evaluations", "warn", [],
+                    f"in the {name} run the log-density raised {run.error_count} times and returned NaN "
+                    f"{run.nan_count} times; those proposals were rejected. First: "
+                    f"{(run.first_error or '').strip().splitlines()[-1] if run.first_error else 'NaN'}",
+                    {"errors": run.error_count, "nans": run.nan_count},
+                )
+            )
+
+    total = counted.count
+    return TuneResult(
+        parameter_names=names,
+        bounds=bound_array,
+        mode_fit=fit,
+        proposal_covariance=proposal,
+        posterior_mean=posterior_mean,
+        posterior_mean_mcse=mcse,
+        posterior_covariance=covariance,
+        step_sizes=step_sizes,
+        single_step=single,
+        expected_acceptance=expected_acc,
+        structure=structure,
+        comparison=rows,
+        findings=findings,
+        pilot_evaluations=pilot_evaluations,
+        total_evaluations=total,
+        seconds_per_evaluation=counted.seconds / max(total, 1),
+        target_ess=int(target_ess),
+        # Common practice: discard about ten of the slowest autocorrelation times.
+        warmup_steps=int(np.ceil(10 * tau_max)),
+        thinning=max(1, int(np.floor(tau_max / 2))),
+        pilot=pilot,
+        slowdowns=slowdowns,
+        runs=runs,
+        current_proposal=current,
+        seed=seed_seq.entropy,
+    )
