@@ -135,7 +135,13 @@ def _run_tune(
             f"{len(start_values)} start values for {len(names_list)} parameters ({', '.join(names_list)}); "
             "give one start value per parameter."
         )
-    bound_map = dict(spec.bounds)
+    # Bounds declared in the model file follow the model's own names; key them by
+    # position so that --names can rename the parameters.
+    bound_map = {}
+    for key, pair in spec.bounds.items():
+        if spec.names is not None and key in spec.names:
+            key = spec.names.index(key)
+        bound_map[key] = pair
     for text in bounds:
         key, pair = _parse_bound(text)
         bound_map[key] = pair

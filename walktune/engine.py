@@ -44,7 +44,8 @@ class Chains:
     accepted : ndarray of shape (chains, steps), bool
         Whether the proposal at each step was accepted.
     evaluations : int
-        Log-density evaluations, counted per point, including the start points.
+        Log-density evaluations, counted per point, including the start points
+        unless their values were passed in.
     seed : int or SeedSequence
         The entropy of the seed sequence (or the spawned sequence itself):
         passing it back as ``seed`` repeats the run bit for bit.
@@ -173,6 +174,7 @@ def sample(
     evaluator: Callable | None = None,
     progress: Callable[[int, int], None] | None = None,
     max_failure_share: float = MAX_FAILURE_SHARE,
+    start_log_density=None,
 ) -> Chains:
     """Run random-walk Metropolis chains with a fixed Gaussian proposal.
 
@@ -203,6 +205,9 @@ def sample(
     max_failure_share : float, default=0.5
         Stop with :class:`~walktune.errors.SamplingError` when more than this
         share of evaluations raised or returned NaN.
+    start_log_density : array-like of shape (chains,), optional
+        The log-density at the start points when already known (continuing
+        chains); they are then not evaluated again or counted.
 
     Returns
     -------
@@ -220,16 +225,23 @@ def sample(
     evaluate = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
     failures = _FailureLog(max_failure_share)
 
-    first = evaluate(points)
-    current_lp = np.asarray(first.values, dtype=float)
-    if first.errors or not np.all(np.isfinite(current_lp)):
+    if start_log_density is not None:
+        current_lp = np.array(start_log_density, dtype=float).reshape(-1)
+        if current_lp.shape[0] != n_chains or not np.all(np.isfinite(current_lp)):
+            raise WalktuneError(f"`start_log_density` must hold {n_chains} finite values, one per chain.")
+        first = None
+        evaluations = 0
+    else:
+        first = evaluate(points)
+        current_lp = np.asarray(first.values, dtype=float)
+        evaluations = n_chains
+    if first is not None and (first.errors or not np.all(np.isfinite(current_lp))):
         i = min(first.errors) if first.errors else int(np.flatnonzero(~np.isfinite(current_lp))[0])
         detail = first.errors[i].strip().splitlines()[-1] if i in first.errors else f"value {current_lp[i]}"
         raise TargetError(
             f"the log-density at start point {np.array2string(points[i], precision=6)} is not finite ({detail}); "
             "choose a start inside the support."
         )
-    evaluations = n_chains
 
     chol = np.linalg.cholesky(cov)
     streams = [np.random.Generator(np.random.PCG64(s)) for s in seed_seq.spawn(n_chains)]
@@ -262,7 +274,7 @@ def sample(
         evaluations += block * n_chains
         done += block
         if failures.nan_count or failures.error_count:
-            failures.check(evaluations - n_chains)
+            failures.check(done * n_chains)
         if progress is not None:
             progress(done, steps)
 

@@ -6,7 +6,11 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
 * ``C`` is re-estimated from pooled stage draws with Ledoit-Wolf shrinkage
   (Ledoit and Wolf 2004) done in the coordinates whitened by the current
   ``C``, so the estimate shrinks towards the current shape and respects each
-  parameter's scale (a full-matrix version of "standardise, shrink, rescale");
+  parameter's scale (a full-matrix version of "standardise, shrink, rescale").
+  The new estimate is adopted only when it differs from ``C`` by more than
+  estimates from as many independent draws of a target of shape ``C`` would
+  by chance (:func:`noise_slowdown`): a good start such as an exact Laplace
+  covariance is not replaced by a noisier one;
 * the global factor ``c`` is steered towards the optimal acceptance rate
   (Andrieu and Thoms 2008), using the diffusion-limit relation
   ``a = 2 Phi(-c sqrt(J) / 2)`` (Roberts, Gelman and Gilks 1997) to take one
@@ -46,6 +50,8 @@ class PilotStage:
     evaluations: int
     shrinkage: float
     change: float
+    noise_level: float
+    adopted: bool
 
 
 @dataclass
@@ -71,6 +77,7 @@ class PilotResult:
     covariance: np.ndarray
     scale_factor: float
     states: np.ndarray
+    state_log_density: np.ndarray | None = None
     stages: list = field(default_factory=list)
     draws: np.ndarray | None = None
     all_draws: list = field(default_factory=list)
@@ -86,7 +93,8 @@ def shrunk_covariance(draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndar
     autocorrelation time (the estimator assumes independent rows), and the
     shrunk matrix ``(1 - s) S + s (tr S / d) I`` is mapped back.
 
-    Returns the covariance and the shrinkage intensity ``s``.
+    Returns the covariance, the shrinkage intensity ``s`` and the number of
+    thinned (about independent) draws it rests on.
     """
     m, n, d = draws.shape
     chol = np.linalg.cholesky(reference)
@@ -97,10 +105,37 @@ def shrunk_covariance(draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndar
     step = max(1, int(np.ceil(tau)))
     thinned = white.reshape(m, n, d)[:, ::step].reshape(-1, d)
     shrinkage = float(ledoit_wolf_shrinkage(thinned, assume_centered=True)) if thinned.shape[0] > 1 else 1.0
+    shrinkage = min(max(shrinkage, 0.0), 1.0)
     target = np.trace(sample_cov) / d * np.eye(d)
     shrunk = (1 - shrinkage) * sample_cov + shrinkage * target
     cov = chol @ shrunk @ chol.T
-    return 0.5 * (cov + cov.T), shrinkage
+    return 0.5 * (cov + cov.T), shrinkage, thinned.shape[0]
+
+
+def _lw_estimate(white: np.ndarray) -> np.ndarray:
+    sample_cov = np.atleast_2d(np.cov(white, rowvar=False))
+    s = float(ledoit_wolf_shrinkage(white, assume_centered=True))
+    d = white.shape[1]
+    return (1 - s) * sample_cov + s * np.trace(sample_cov) / d * np.eye(d)
+
+
+def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates: int = 40, quantile: float = 0.9) -> float:
+    """How far a shrinkage estimate from ``n_draws`` independent draws strays by chance.
+
+    The ``quantile`` of ``slowdown(estimate, truth)`` when the truth is the
+    identity and the estimate is the Ledoit-Wolf covariance of ``n_draws``
+    standard normal draws (a parametric bootstrap under "the current shape is
+    right"). A pilot estimate that differs from the current shape by less than
+    this is noise and is not adopted.
+    """
+    if n_draws < 2:
+        return np.inf
+    values = []
+    for _ in range(replicates):
+        white = rng.standard_normal((n_draws, dim))
+        estimate = _lw_estimate(white - white.mean(axis=0))
+        values.append(theory.slowdown(estimate, np.eye(dim)).slowest)
+    return float(np.quantile(values, quantile))
 
 
 def _scale_step(factor: float, acceptance: float, target: float) -> float:
@@ -121,6 +156,7 @@ def run_pilot(
     vectorized: bool = False,
     first_window: int | None = None,
     progress=None,
+    state_log_density: np.ndarray | None = None,
 ) -> PilotResult:
     """Adapt the proposal in stages of doubling length until it settles or the budget ends.
 
@@ -135,14 +171,17 @@ def run_pilot(
         Evaluations the pilot may spend.
     seed : SeedSequence
         Each stage gets its own spawned child.
+    state_log_density : ndarray of shape (chains,), optional
+        The log-density at ``states``, when known.
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
     scale = theory.optimal_scale(dim)
     window = first_window or max(50, 10 * dim)
     factor = 1.0
-    result = PilotResult(covariance=covariance, scale_factor=factor, states=states)
+    result = PilotResult(covariance=covariance, scale_factor=factor, states=states, state_log_density=state_log_density)
     history: list[np.ndarray] = []
+    noise_rng = np.random.default_rng(seed.spawn(1)[0])
     spent = 0
     stage_index = 0
     settled = 0
@@ -156,9 +195,11 @@ def run_pilot(
         chains: Chains = sample(
             log_density, result.states, proposal, steps,
             seed=seed.spawn(1)[0], vectorized=vectorized, evaluator=evaluator,
+            start_log_density=result.state_log_density,
         )
-        spent += chains.evaluations - n_chains  # start points were evaluated before
+        spent += chains.evaluations
         result.states = chains.last
+        result.state_log_density = chains.log_density[:, -1]
         history.append(chains.draws)
         result.all_draws.append(chains.draws)
         # Pool the newest draws: this stage and the later half of the one before;
@@ -169,22 +210,26 @@ def run_pilot(
             previous = history[-2]
             pooled_draws = np.concatenate([previous[:, previous.shape[1] // 2 :], chains.draws], axis=1)
         try:
-            new_cov, shrinkage = shrunk_covariance(pooled_draws, result.covariance)
+            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, result.covariance)
             np.linalg.cholesky(new_cov)
         except np.linalg.LinAlgError:
-            new_cov, shrinkage = result.covariance, 1.0
+            new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
         change = theory.slowdown(new_cov, result.covariance).slowest
+        noise = noise_slowdown(dim, n_independent, noise_rng)
         acceptance = chains.acceptance_rate
-        result.stages.append(PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change))
-        if acceptance > 0:
+        adopted = acceptance > 0 and change > noise
+        result.stages.append(
+            PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted)
+        )
+        if adopted:
             result.covariance = new_cov
-        else:
+        elif acceptance == 0:
             result.covariance = result.covariance / 10.0  # nothing moved: try much smaller steps
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
         factor = _scale_step(factor, acceptance, target)
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
-        settled = settled + 1 if (change < 1.05 and good_acceptance and stage_index >= 1) else 0
+        settled = settled + 1 if (not adopted and good_acceptance and stage_index >= 1) else 0
         stage_index += 1
         if progress is not None:
             progress(spent, budget)

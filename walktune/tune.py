@@ -63,8 +63,8 @@ def pilot_budget_default(dim: int) -> int:
 
 
 def proof_steps_default(dim: int) -> int:
-    """Steps per chain of each proof run: enough for about 80 IACTs of the tuned chain (IACT ~ 3 d)."""
-    return max(2000, 250 * dim)
+    """Steps per chain of each proof run: enough for about 65 IACTs (IACT ~ 3 d) in each half-chain."""
+    return max(2000, 400 * dim)
 
 
 def minimum_budget(dim: int, chains: int) -> int:
@@ -337,24 +337,29 @@ def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> 
     return np.diag(guess**2)
 
 
-def _overdispersed_starts(counted: _Counted, centre, cov, chains: int, rng) -> np.ndarray:
-    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite."""
+def _overdispersed_starts(counted: _Counted, centre, cov, chains: int, rng):
+    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite.
+
+    Returns the points (chains, d) and their log-densities (chains,).
+    """
     chol = np.linalg.cholesky(cov)
     points = np.empty((chains, centre.shape[0]))
+    values = np.empty(chains)
     for c in range(chains):
         z = rng.standard_normal(centre.shape[0])
         for spread in (2.0, 1.0, 0.5, 0.25, 0.1, 0.0):
             candidate = centre + spread * (chol @ z)
-            if np.isfinite(counted.scalar(candidate)):
+            value = counted.scalar(candidate)
+            if np.isfinite(value):
                 break
-        points[c] = candidate
-    return points
+        points[c], values[c] = candidate, value
+    return points, values
 
 
-def _proof_run(name, description, proposal, counted, states, steps, seed, progress):
+def _proof_run(name, proposal, counted, pilot, steps, seed, progress):
     t0 = time.perf_counter()
     chains = sample(
-        None, states, proposal, steps, seed=seed, evaluator=counted,
+        None, pilot.states, proposal, steps, seed=seed, evaluator=counted, start_log_density=pilot.state_log_density,
         progress=(lambda done, total: progress(name, done, total)) if progress else None,
     )
     return chains, time.perf_counter() - t0
@@ -362,7 +367,7 @@ def _proof_run(name, description, proposal, counted, states, steps, seed, progre
 
 def _row_from_run(name, description, chains, predicted, baseline=None):
     ess = bulk_ess(chains.draws)
-    evaluations = chains.evaluations - chains.n_chains  # start points were evaluated in the pilot
+    evaluations = chains.evaluations
     ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
     if not np.isfinite(ess_min):
         # A chain that never moved: its ESS is at most the number of distinct states.
@@ -429,7 +434,7 @@ def tune(
         The proposal used today: a (d, d) covariance or (d,) step sizes (sds).
     budget : int, optional
         Cap on log-density evaluations for the whole job. Default: ``20 d^2 +
-        2000`` for the pilot plus three proof runs of ``chains x max(2000, 250 d)``.
+        2000`` for the pilot plus three proof runs of ``chains x max(2000, 400 d)``.
     chains : int, default=4
     seed : int or None
         Makes the whole job reproducible.
@@ -484,7 +489,6 @@ def tune(
         proof_steps = proof_steps_default(dim)
     else:
         pilot_budget = max(int(0.4 * budget), minimum_budget(dim, n_chains) - 3 * n_chains * 200)
-        proof_steps = max(200, (budget - pilot_budget) // (3 * n_chains))
 
     # 1. Mode and Laplace covariance.
     report("mode", 0, 1)
@@ -497,11 +501,12 @@ def tune(
 
     # 2. Pilot from overdispersed starts.
     rng = np.random.default_rng(mode_seed)
-    states = _overdispersed_starts(counted, fit.mode, initial_cov, n_chains, rng)
+    states, state_values = _overdispersed_starts(counted, fit.mode, initial_cov, n_chains, rng)
     used = counted.count
     pilot = run_pilot(
         None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
         pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
+        state_log_density=state_values,
     )
     pilot_evaluations = counted.count
     covariance = pilot.covariance
@@ -521,6 +526,9 @@ def tune(
         slowdowns["current_rescaled"] = theory.slowdown(current, covariance).__dict__
 
     # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
+    if budget is not None:
+        # What the mode search and pilot left, shared equally by the three runs.
+        proof_steps = max(50, (budget - counted.count) // (3 * n_chains))
     if current is not None:
         baseline_name, baseline_cov, baseline_text = "current", current, "the proposal you use now"
         baseline_predicted = slowdowns["current"]["slowest"]
@@ -536,7 +544,7 @@ def tune(
     rows, runs, seconds = [], {}, 0.0
     proof_seeds = proof_seed.spawn(len(plan))
     for (name, text, cov, predicted), child in zip(plan, proof_seeds):
-        run, elapsed = _proof_run(name, text, cov, counted, pilot.states, proof_steps, child, report)
+        run, elapsed = _proof_run(name, cov, counted, pilot, proof_steps, child, report)
         seconds += elapsed
         runs[name] = run
         rows.append(_row_from_run(name, text, run, predicted, rows[0] if rows else None))

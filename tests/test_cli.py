@@ -1,0 +1,158 @@
+"""The command line: the job end to end, exports, and one-line errors for bad input."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from walktune import __version__
+from walktune.cli import app
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "demo_models"
+runner = CliRunner()
+
+
+def run(*args):
+    return runner.invoke(app, [str(a) for a in args])
+
+
+def assert_one_line_error(result, *fragments):
+    assert result.exit_code != 0
+    text = result.output.strip()
+    assert "Traceback" not in text
+    lines = [line for line in text.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("error:"), text
+    for fragment in fragments:
+        assert fragment in text, text
+
+
+def test_version_and_help():
+    assert run("--version").output.strip() == f"walktune {__version__}"
+    for command in ([], ["tune"], ["demo"], ["export"]):
+        result = run(*command, "--help")
+        assert result.exit_code == 0 and "Usage" in result.output
+
+
+def test_module_entry_point():
+    out = subprocess.run([sys.executable, "-m", "walktune", "--version"], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == f"walktune {__version__}"
+
+
+@pytest.mark.parametrize("model", ["sensor_calibration", "source_activity", "cooling_curve"])
+def test_every_demo_model_runs(tmp_path, model):
+    out = tmp_path / "out"
+    result = run("tune", f"{DEMO / model}.py:log_posterior", "--seed", 3, "--budget", 30_000, "--out", out, "--json")
+    assert result.exit_code == 0, result.output
+    payload = json.loads(result.output)
+    assert payload["schema"] == "walktune.advice/1"
+    assert (out / "proposal_covariance.npy").exists()
+
+
+def test_demo_model_shows_the_geometry_it_was_built_for(tmp_path):
+    # sensor_calibration: strong linear correlation; cooling_curve: several decades.
+    sensor = json.loads(run("tune", f"{DEMO}/sensor_calibration.py:log_posterior", "--seed", 1, "--budget", 30_000,
+                            "--out", tmp_path / "a", "--json").output)
+    assert "strong-correlation" in {f["kind"] for f in sensor["findings"]}
+    cooling = json.loads(run("tune", f"{DEMO}/cooling_curve.py:log_posterior", "--seed", 1, "--budget", 30_000,
+                             "--out", tmp_path / "b", "--json").output)
+    assert cooling["spectrum_decades"] >= 2
+
+
+def test_tables_and_caution_are_printed(tmp_path):
+    result = run("tune", f"{DEMO}/sensor_calibration.py:log_posterior", "--seed", 1, "--budget", 30_000, "--out", tmp_path / "o")
+    assert result.exit_code == 0
+    for text in ("Advice", "Measured", "tuned-covariance", "never prove"):
+        assert text in result.output
+
+
+def test_options_override_the_model_file(tmp_path):
+    result = run(
+        "tune", f"{DEMO}/sensor_calibration.py:log_posterior", "--names", "o,g,s", "--start", "0.5,2.0,-1",
+        "--bound", "s=-5:3", "--seed", 1, "--budget", 30_000, "--out", tmp_path / "o", "--json",
+    )
+    payload = json.loads(result.output)
+    assert payload["parameter_names"] == ["o", "g", "s"]
+    assert payload["bounds"][2] == [-5.0, 3.0]
+
+
+def test_current_proposal_from_files(tmp_path):
+    target = f"{DEMO}/sensor_calibration.py:log_posterior"
+    np.save(tmp_path / "p.npy", np.diag([0.01, 1e-4, 0.01]))
+    (tmp_path / "p.csv").write_text("offset_mv,gain_mv_per_kn,log_noise\n0.1,0.01,0.1\n")
+    (tmp_path / "p.json").write_text(json.dumps({"step_sizes": [0.1, 0.01, 0.1]}))
+    for name in ("p.npy", "p.csv", "p.json"):
+        result = run("tune", target, "--current-proposal", tmp_path / name, "--seed", 1, "--budget", 30_000,
+                     "--out", tmp_path / f"o-{name}", "--json")
+        assert result.exit_code == 0, result.output
+        assert json.loads(result.output)["comparison"][0]["proposal"] == "current"
+
+
+def test_export_formats(tmp_path):
+    out = tmp_path / "o"
+    run("tune", f"{DEMO}/sensor_calibration.py:log_posterior", "--seed", 1, "--budget", 30_000, "--out", out, "-q")
+    advice = json.loads((out / "advice.json").read_text())
+    cov = np.array(advice["proposal_covariance"])
+    assert run("export", out, "--to", tmp_path / "c.npy").exit_code == 0
+    np.testing.assert_array_equal(np.load(tmp_path / "c.npy"), cov)
+    assert run("export", out / "advice.json", "--to", tmp_path / "c.csv").exit_code == 0
+    np.testing.assert_allclose(np.loadtxt(tmp_path / "c.csv", delimiter=",", skiprows=1), cov)
+    assert run("export", out, "--to", tmp_path / "tuned.py").exit_code == 0
+    namespace = {}
+    exec((tmp_path / "tuned.py").read_text(), namespace)
+    np.testing.assert_array_equal(np.array(namespace["PROPOSAL_COVARIANCE"]), cov)
+    assert_one_line_error(run("export", out, "--to", tmp_path / "c.xyz"), "format")
+    (tmp_path / "old.json").write_text(json.dumps({"schema": "walktune.advice/0"}))
+    assert_one_line_error(run("export", tmp_path / "old.json", "--to", tmp_path / "c.npy"), "schema")
+
+
+@pytest.fixture
+def broken_models(tmp_path):
+    (tmp_path / "raises.py").write_text("import numpy as np\n1 / 0\ndef lp(x):\n    return 0.0\n")
+    (tmp_path / "ok.py").write_text(
+        "import numpy as np\nPARAMETERS = {'a': 0.0, 'b': 1.0}\nBOUNDS = {'b': (0, 10)}\n"
+        "def lp(x):\n    return -0.5 * float(x @ x)\n"
+    )
+    return tmp_path
+
+
+@pytest.mark.parametrize(
+    "args, fragments",
+    [
+        (["missing.py:lp"], ["does not exist"]),
+        (["raises.py:lp"], ["ZeroDivisionError", "line 2"]),
+        (["ok.py:nothere"], ["no function 'nothere'"]),
+        (["ok.py"], ["must look like"]),
+        (["no_such_package_xyz.mod:lp"], ["cannot import"]),
+        (["ok.py:lp", "--start", "1,2,3"], ["3 start values for 2 parameters"]),
+        (["ok.py:lp", "--start", "1,x"], ["numbers"]),
+        (["ok.py:lp", "--bound", "zz=0:1"], ["unknown parameter 'zz'"]),
+        (["ok.py:lp", "--bound", "b=2:5"], ["outside its bounds"]),
+        (["ok.py:lp", "--bound", "b0:5"], ["NAME=LOW:HIGH"]),
+        (["ok.py:lp", "--current-proposal", "nofile.npy"], ["does not exist"]),
+        (["ok.py:lp", "--current-proposal", "bad.npy"], ["(2, 2)"]),
+        (["ok.py:lp", "--current-proposal", "notpd.npy"], ["positive definite"]),
+        (["ok.py:lp", "--budget", "50"], ["too small"]),
+    ],
+)
+def test_bad_input_gives_one_line_and_leaves_nothing(broken_models, monkeypatch, args, fragments):
+    monkeypatch.chdir(broken_models)
+    np.save(broken_models / "bad.npy", np.eye(3))
+    np.save(broken_models / "notpd.npy", np.array([[1.0, 2.0], [2.0, 1.0]]))
+    before = set(broken_models.iterdir())
+    result = run("tune", *args, "--out", "result")
+    assert_one_line_error(result, *fragments)
+    assert set(broken_models.iterdir()) == before  # no output folder, no staging folder
+
+
+def test_cli_error_through_a_real_process(tmp_path):
+    out = subprocess.run(
+        [sys.executable, "-m", "walktune", "tune", str(tmp_path / "none.py:f")], capture_output=True, text=True
+    )
+    assert out.returncode == 2
+    assert out.stderr.strip().startswith("error:") and "Traceback" not in out.stderr
+    assert len(out.stderr.strip().splitlines()) == 1
