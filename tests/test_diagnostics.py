@@ -129,3 +129,17 @@ def test_average_ranks_match_scipy_rankdata():
     column = np.repeat(rng.standard_normal(300), rng.integers(1, 5, size=300))
     rng.shuffle(column)
     np.testing.assert_allclose(D._average_ranks(column), stats.rankdata(column, method="average"))
+
+
+def test_summary_agrees_with_the_single_functions():
+    # summary() computes block by block; every field must equal the function of the same name.
+    rng = np.random.default_rng(12)
+    x = rng.standard_normal((3, 800, 11)).cumsum(axis=1) * 0.1 + rng.standard_normal((3, 800, 11))
+    s = D.summary(x, block=4)
+    np.testing.assert_allclose(s.ess, D.ess(x))
+    np.testing.assert_allclose(s.iact, D.iact(x))
+    np.testing.assert_allclose(s.bulk_ess, D.bulk_ess(x))
+    np.testing.assert_allclose(s.tail_ess, D.tail_ess(x))
+    np.testing.assert_allclose(s.rhat, D.rhat(x))
+    np.testing.assert_allclose(s.mcse, D.mcse_mean(x))
+    np.testing.assert_array_equal(s.ess_too_short, D.ess(x).too_short)

@@ -23,6 +23,8 @@ convergence of MCMC. Bayesian Analysis, 16(2), 667-718.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy import fft, special
 
@@ -45,6 +47,8 @@ __all__ = [
     "mcse_mean",
     "esjd",
     "acceptance_rate",
+    "summary",
+    "Summary",
     "MIN_DRAWS_PER_IACT",
 ]
 
@@ -301,3 +305,81 @@ def acceptance_rate(draws) -> float:
     chains = as_chains(draws)
     moved = np.any(np.diff(chains, axis=1) != 0, axis=2)
     return float(np.mean(moved))
+
+
+@dataclass(frozen=True)
+class Summary:
+    """All per-parameter diagnostics of a set of chains, computed in one pass.
+
+    Every array has shape (params,). ``*_too_short`` flag estimates resting on
+    fewer than :data:`MIN_DRAWS_PER_IACT` autocorrelation times per chain.
+    """
+
+    mean: np.ndarray
+    sd: np.ndarray
+    mcse: np.ndarray
+    ess: np.ndarray
+    iact: np.ndarray
+    bulk_ess: np.ndarray
+    tail_ess: np.ndarray
+    rhat: np.ndarray
+    ess_too_short: np.ndarray
+    bulk_too_short: np.ndarray
+    tail_too_short: np.ndarray
+    chain_sd: np.ndarray
+    n_chains: int
+    n_draws: int
+
+
+def _summary_block(chains: np.ndarray) -> dict:
+    m, n, _ = chains.shape
+    raw = _ess_of(chains)
+    split = _split(chains)
+    ranked = _rank_normalise(split)
+    bulk = _ess_of(ranked)
+    bulk_rhat = _psrf(ranked)
+    del ranked
+    pooled = split.reshape(-1, split.shape[2])
+    median = np.median(pooled, axis=0)
+    folded_rhat = _psrf(_rank_normalise(np.abs(split - median[None, None, :])))
+    quantiles = np.quantile(pooled, [0.05, 0.95], axis=0)
+    tails = [_ess_of((split <= q[None, None, :]).astype(float)) for q in quantiles]
+    sd = pooled.std(axis=0, ddof=1)
+    return dict(
+        mean=pooled.mean(axis=0),
+        sd=sd,
+        mcse=sd / np.sqrt(np.asarray(raw)),
+        ess=np.asarray(raw),
+        iact=m * n / np.asarray(raw),
+        bulk_ess=np.asarray(bulk),
+        tail_ess=np.minimum(np.asarray(tails[0]), np.asarray(tails[1])),
+        rhat=np.fmax(bulk_rhat, folded_rhat),
+        ess_too_short=raw.too_short,
+        bulk_too_short=bulk.too_short,
+        tail_too_short=tails[0].too_short | tails[1].too_short,
+        chain_sd=chains.std(axis=1, ddof=1),
+    )
+
+
+def summary(draws, block: int = 8) -> Summary:
+    """Mean, sd, MCSE, ESS, IACT, bulk and tail ESS and R-hat for every parameter.
+
+    Computes parameters ``block`` at a time, so a large (possibly memory-mapped)
+    array is read once, a block at a time, and never copied whole. Each
+    statistic equals the one of the function of the same name.
+    """
+    if isinstance(draws, np.ndarray) and draws.ndim == 3 and draws.dtype == np.float64:
+        source = draws
+    else:
+        source = as_chains(draws)
+    m, n, p = source.shape
+    if n < 4:
+        raise WalktuneError(f"each chain needs at least 4 draws for diagnostics; got {n}.")
+    parts = []
+    for start in range(0, p, block):
+        chunk = np.array(source[:, :, start : start + block], dtype=float)  # the one copy of this block
+        if not np.all(np.isfinite(chunk)):
+            raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
+        parts.append(_summary_block(chunk))
+    fields = {key: np.concatenate([part[key] for part in parts], axis=-1) for key in parts[0]}
+    return Summary(n_chains=m, n_draws=n, **fields)

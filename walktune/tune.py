@@ -25,6 +25,7 @@ from typing import Callable
 import numpy as np
 
 from . import theory
+from .advice import Advice, advice_payload, advise
 from ._validation import as_covariance, as_float_array, check_finite
 from .analysis import Structure, analyse
 from .diagnostics import bulk_ess, iact, mcse_mean, rhat
@@ -244,11 +245,16 @@ class TuneResult:
     warmup_steps: int
     thinning: int
     pilot: PilotResult
-    slowdowns: dict
+    advice: Advice
     runs: dict = field(repr=False, default_factory=dict)
     current_proposal: np.ndarray | None = None
     seed: object = None
     partial: bool = False
+
+    @property
+    def slowdowns(self) -> dict:
+        """Predicted slow-downs of the alternatives to the tuned proposal (see :mod:`walktune.theory`)."""
+        return self.advice.slowdowns
 
     @property
     def effective_dimension(self) -> float:
@@ -285,22 +291,7 @@ class TuneResult:
             "mode_message": self.mode_fit.message,
             "posterior_mean": self.posterior_mean.tolist(),
             "posterior_mean_mcse": self.posterior_mean_mcse.tolist(),
-            "posterior_sd": np.sqrt(np.diag(self.posterior_covariance)).tolist(),
-            "posterior_covariance": self.posterior_covariance.tolist(),
-            "proposal_covariance": self.proposal_covariance.tolist(),
-            "step_sizes": self.step_sizes.tolist(),
-            "single_step": self.single_step,
-            "expected_acceptance": self.expected_acceptance,
-            "rotation": self.rotation.tolist(),
-            "effective_dimension": self.structure.effective_dimension,
-            "spectrum_decades": self.structure.decades,
-            "correlation_eigenvalues": self.structure.eigenvalues.tolist(),
-            "principal_directions": [
-                {"combination": d.describe(names), "coefficients": d.coefficients.tolist(), "spread": d.spread}
-                for d in self.structure.directions
-            ],
-            "variance_inflation": dict(zip(names, self.structure.vif.tolist())),
-            "predicted_slowdown": self.slowdowns,
+            **advice_payload(self.advice, self.structure, names),
             "warmup_steps": self.warmup_steps,
             "thinning": self.thinning,
             "target_ess": self.target_ess,
@@ -513,17 +504,10 @@ def tune(
 
     # 3-4. Structure and advice.
     structure = analyse(covariance)
-    proposal = (pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * covariance
-    step_sizes = theory.best_step_sizes(covariance) * pilot.scale_factor
-    single = theory.best_isotropic_step(covariance) * pilot.scale_factor
-    expected_acc = theory.expected_acceptance(proposal, covariance)
-    slowdowns = {
-        "step_sizes": theory.slowdown(np.diag(step_sizes**2), covariance).__dict__,
-        "single_step": theory.slowdown(single**2 * np.eye(dim), covariance).__dict__,
-    }
-    if current is not None:
-        slowdowns["current"] = theory.slowdown(current, covariance, rescaled=False).__dict__
-        slowdowns["current_rescaled"] = theory.slowdown(current, covariance).__dict__
+    advice = advise(covariance, scale_factor=pilot.scale_factor, current=current)
+    proposal, step_sizes, single, slowdowns = (
+        advice.proposal_covariance, advice.step_sizes, advice.single_step, advice.slowdowns
+    )
 
     # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
     if budget is not None:
@@ -603,7 +587,7 @@ def tune(
         posterior_covariance=covariance,
         step_sizes=step_sizes,
         single_step=single,
-        expected_acceptance=expected_acc,
+        expected_acceptance=advice.expected_acceptance,
         structure=structure,
         comparison=rows,
         findings=findings,
@@ -615,7 +599,7 @@ def tune(
         warmup_steps=int(np.ceil(10 * tau_max)),
         thinning=max(1, int(np.floor(tau_max / 2))),
         pilot=pilot,
-        slowdowns=slowdowns,
+        advice=advice,
         runs=runs,
         current_proposal=current,
         seed=seed_seq.entropy,

@@ -1,0 +1,87 @@
+"""Proposal advice from a posterior covariance, shared by tuning and inspection.
+
+Given a posterior covariance ``S`` (and optionally the proposal a user runs
+today), the advice is the proposal ``(c ell_d)^2 S``, per-parameter step
+sizes, one step size, the expected acceptance of the proposal and the
+predicted slow-downs of the alternatives (see :mod:`walktune.theory`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import theory
+from .analysis import Structure
+
+
+@dataclass(frozen=True)
+class Advice:
+    """What proposal to use, and what the alternatives cost.
+
+    Attributes
+    ----------
+    proposal_covariance : ndarray of shape (d, d)
+    step_sizes : ndarray of shape (d,)
+    single_step : float
+    expected_acceptance : float
+    slowdowns : dict
+        ``{"step_sizes", "single_step", and with a current proposal "current",
+        "current_rescaled"}`` each ``{"slowest": x, "mean": y}``.
+    scale_factor : float
+        Extra factor on the optimal scale (from the pilot's acceptance steering; 1 otherwise).
+    """
+
+    proposal_covariance: np.ndarray
+    step_sizes: np.ndarray
+    single_step: float
+    expected_acceptance: float
+    slowdowns: dict
+    scale_factor: float
+
+
+def advise(covariance: np.ndarray, *, scale_factor: float = 1.0, current: np.ndarray | None = None) -> Advice:
+    """Advice for a posterior with covariance ``covariance`` (d, d)."""
+    covariance = np.atleast_2d(covariance)
+    dim = covariance.shape[0]
+    proposal = (scale_factor * theory.optimal_scale(dim)) ** 2 * covariance
+    step_sizes = theory.best_step_sizes(covariance) * scale_factor
+    single = theory.best_isotropic_step(covariance) * scale_factor
+    slowdowns = {
+        "step_sizes": theory.slowdown(np.diag(step_sizes**2), covariance).__dict__,
+        "single_step": theory.slowdown(single**2 * np.eye(dim), covariance).__dict__,
+    }
+    if current is not None:
+        slowdowns["current"] = theory.slowdown(current, covariance, rescaled=False).__dict__
+        slowdowns["current_rescaled"] = theory.slowdown(current, covariance).__dict__
+    return Advice(
+        proposal_covariance=proposal,
+        step_sizes=step_sizes,
+        single_step=single,
+        expected_acceptance=theory.expected_acceptance(proposal, covariance),
+        slowdowns=slowdowns,
+        scale_factor=scale_factor,
+    )
+
+
+def advice_payload(advice: Advice, structure: Structure, names: list) -> dict:
+    """The advice and geometry keys of advice.json (docs/advice-schema.md)."""
+    return {
+        "posterior_sd": structure.sd.tolist(),
+        "posterior_covariance": structure.covariance.tolist(),
+        "proposal_covariance": advice.proposal_covariance.tolist(),
+        "step_sizes": advice.step_sizes.tolist(),
+        "single_step": advice.single_step,
+        "expected_acceptance": advice.expected_acceptance,
+        "rotation": np.linalg.cholesky(structure.covariance).tolist(),
+        "effective_dimension": structure.effective_dimension,
+        "spectrum_decades": structure.decades,
+        "correlation_eigenvalues": structure.eigenvalues.tolist(),
+        "principal_directions": [
+            {"combination": d.describe(names), "coefficients": d.coefficients.tolist(), "spread": d.spread}
+            for d in structure.directions
+        ],
+        "variance_inflation": dict(zip(names, structure.vif.tolist())),
+        "predicted_slowdown": advice.slowdowns,
+    }
