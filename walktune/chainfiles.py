@@ -47,7 +47,7 @@ def _read_npy(path: Path) -> tuple[np.ndarray, list | None]:
     try:
         array = np.load(path, mmap_mode="r", allow_pickle=False)
     except ValueError as error:
-        if "allow_pickle" in str(error) or "Object arrays" in str(error):
+        if any(k in str(error) for k in ("allow_pickle", "Object arrays", "Python objects")):
             raise WalktuneError(f"{path} holds pickled objects; walktune never unpickles files. Save a float array.") from None
         raise WalktuneError(f"{path} is not a readable .npy file ({error}); it may be truncated.") from None
     except (OSError, EOFError) as error:
@@ -67,7 +67,7 @@ def _read_npz(path: Path) -> tuple[np.ndarray, list | None]:
         archive = np.load(path, allow_pickle=False)
         contents = {key: archive[key] for key in archive.files}
     except ValueError as error:
-        if "allow_pickle" in str(error) or "Object arrays" in str(error):
+        if any(k in str(error) for k in ("allow_pickle", "Object arrays", "Python objects")):
             raise WalktuneError(f"{path} holds pickled objects; walktune never unpickles files.") from None
         raise WalktuneError(f"{path} is not a readable .npz file ({error}).") from None
     except (OSError, EOFError, KeyError) as error:

@@ -194,6 +194,48 @@ def tune_command(
         _fail(f"cannot write outputs: {error.strerror or error} ({error.filename or out})")
 
 
+@app.command("inspect")
+def inspect_command(
+    files: List[Path] = typer.Argument(..., help="Draws: .npy, .npz, .csv or .tsv; several files are several chains."),
+    chain_column: Optional[str] = typer.Option(None, "--chain-column", help="CSV column that names each row's chain."),
+    warmup: int = typer.Option(0, "--warmup", help="Draws to drop from the start of every chain."),
+    thin: int = typer.Option(1, "--thin", help="Keep every N-th draw after warm-up."),
+    params: Optional[str] = typer.Option(None, "--params", help="Comma-separated parameters to analyse (default: all)."),
+    proposal: Optional[Path] = typer.Option(
+        None, "--proposal", help="The proposal the chains ran with (covariance or step sizes; .npy, .csv or .json)."
+    ),
+    target_ess: float = typer.Option(400, "--target-ess", help="ESS wanted per parameter."),
+    target_mcse: Optional[float] = typer.Option(None, "--target-mcse", help="Wanted MCSE of each mean."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Write advice.json and the proposal files here."),
+    as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
+):
+    """Diagnose chains you already have and advise a proposal, without the model."""
+    from .chainfiles import read_chains
+    from .console import render_inspection
+    from .inspection import inspect
+
+    try:
+        data = read_chains(files, chain_column=chain_column)
+        chosen = _split_list(params, "params")
+        current = _read_proposal(proposal) if proposal is not None else None
+        if out is not None and out.exists() and not out.is_dir():
+            raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
+        result = inspect(
+            data.draws, data.names, warmup=warmup, thin=thin, params=chosen, proposal=current,
+            target_ess=target_ess, target_mcse=target_mcse, sources=data.sources,
+        )
+        if out is not None:
+            result.save(out)
+        if as_json:
+            typer.echo(json.dumps(result.to_dict(), indent=2))
+        else:
+            render_inspection(_console(), result, str(out) if out else None)
+    except WalktuneError as error:
+        _fail(str(error))
+    except OSError as error:
+        _fail(f"cannot read or write: {error.strerror or error} ({error.filename})")
+
+
 @app.command("demo")
 def demo_command(
     out: Path = typer.Option(Path("walktune-demo"), "--out", "-o", help="Output folder for the demo."),

@@ -92,8 +92,10 @@ def posterior_table(result: TuneResult) -> Table:
 
 
 def geometry_table(result: TuneResult, max_rows: int = 5) -> Table:
-    s = result.structure
-    names = result.parameter_names
+    return geometry_table_from(result.structure, result.parameter_names, max_rows)
+
+
+def geometry_table_from(s, names, max_rows: int = 5) -> Table:
     table = Table(title="Geometry", title_justify="left", show_header=False)
     table.add_column("what", style="bold")
     table.add_column("value")
@@ -174,7 +176,7 @@ def comparison_table(result: TuneResult) -> Table:
     return table
 
 
-def findings_table(result: TuneResult) -> Table | Text:
+def findings_table(result) -> Table | Text:
     if not result.findings:
         return Text("No findings: nothing unusual was seen (which does not prove there is nothing).")
     table = Table(title="Findings", title_justify="left")
@@ -204,4 +206,63 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
     console.print(findings_table(result))
     if output_folder:
         console.print(f"Outputs in [bold]{output_folder}[/bold]: advice.json, proposal_covariance.npy/.csv, step_sizes.csv, draws.npz")
+    console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))
+
+
+VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
+
+
+def inspection_table(result) -> Table:
+    s = result.summary
+    table = Table(
+        title=f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps",
+        title_justify="left",
+    )
+    for column in ("parameter", "mean", "sd", "MCSE", "bulk ESS", "tail ESS", "R-hat", "IACT", "more draws", "verdict"):
+        table.add_column(column, justify="left" if column in ("parameter", "verdict") else "right")
+    for i, name in enumerate(result.parameter_names):
+        rough = "~" if s.bulk_too_short[i] else ""
+        verdict = result.verdicts[i]
+        table.add_row(
+            name, _fmt(s.mean[i], 5), _fmt(s.sd[i]), _fmt(s.mcse[i], 2), rough + _fmt(s.bulk_ess[i], 4),
+            _fmt(s.tail_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(result.more_draws_observed[i], 3),
+            Text(verdict.verdict if verdict.verdict == "ok" else f"{verdict.verdict}: {verdict.reason}",
+                 style=VERDICT_STYLE.get(verdict.verdict, "")),
+        )
+    table.caption = "~ rough: fewer than 50 IACTs per chain. 'more draws' at the observed efficiency for the ESS wanted."
+    return table
+
+
+def inspection_advice_table(result) -> Table:
+    d = len(result.parameter_names)
+    advice = result.advice
+    table = Table(title="Advice from these draws", title_justify="left", show_header=False)
+    table.add_column("what", style="bold")
+    table.add_column("advice")
+    table.add_row(
+        "proposal covariance",
+        f"propose theta + N(0, C), C = {theory.optimal_scale(d):.3g}^2 x the covariance of these draws "
+        f"(expected acceptance {advice.expected_acceptance:.2f})",
+    )
+    steps = advice.slowdowns["step_sizes"]
+    table.add_row("step sizes only", f"{', '.join(_fmt(x) for x in advice.step_sizes[:8])}{' ...' if d > 8 else ''}; "
+                  f"predicted {steps['slowest']:.1f}x slower in the slowest direction")
+    if "current" in advice.slowdowns:
+        cur, res = advice.slowdowns["current"], advice.slowdowns["current_rescaled"]
+        table.add_row("your proposal", f"predicted {cur['slowest']:.1f}x slower than the advice as it is; "
+                      f"{res['slowest']:.1f}x if only its overall scale were tuned")
+    advised = float(np.nanmax(result.more_draws_advised))
+    table.add_row("draws needed", f"with the advised proposal about {_fmt(advised, 3)} draws in all for the ESS wanted "
+                  f"(optimal-scaling theory), against {_fmt(float(np.nanmax(result.more_draws_observed)), 3)} more at the observed efficiency")
+    return table
+
+
+def render_inspection(console: Console, result, output_folder: str | None) -> None:
+    console.print(Panel(f"inspected: {', '.join(result.sources) or 'array'}", title="walktune", expand=False))
+    console.print(inspection_table(result))
+    console.print(inspection_advice_table(result))
+    console.print(geometry_table_from(result.structure, result.parameter_names))
+    console.print(findings_table(result))
+    if output_folder:
+        console.print(f"Outputs in [bold]{output_folder}[/bold]: advice.json, proposal_covariance.npy/.csv, step_sizes.csv")
     console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))
