@@ -24,6 +24,7 @@ test-fast: $(STAMP)
 bench: $(STAMP)
 	$(PY) benchmarks/bench_core.py
 	$(PY) benchmarks/bench_tuning.py
+	$(PY) benchmarks/bench_inspect.py
 
 clean:
 	rm -rf $(VENV) walktune-demo .pytest_cache

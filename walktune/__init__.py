@@ -12,17 +12,20 @@ they have. A pilot can miss modes. Confirm results with independent runs.
 from . import diagnostics
 from .engine import Chains, sample
 from .errors import SamplingError, TargetError, WalktuneError
+from .inspection import InspectionResult, inspect
 from .tune import TuneResult, tune
 
 __version__ = "0.1.0"
 
 __all__ = [
     "Chains",
+    "InspectionResult",
     "SamplingError",
     "TargetError",
     "TuneResult",
     "WalktuneError",
     "diagnostics",
+    "inspect",
     "sample",
     "tune",
     "__version__",
