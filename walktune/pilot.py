@@ -119,7 +119,7 @@ def _lw_estimate(white: np.ndarray) -> np.ndarray:
     return (1 - s) * sample_cov + s * np.trace(sample_cov) / d * np.eye(d)
 
 
-def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates: int = 40, quantile: float = 0.9) -> float:
+def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates: int = 100, quantile: float = 0.99) -> float:
     """How far a shrinkage estimate from ``n_draws`` independent draws strays by chance.
 
     The ``quantile`` of ``slowdown(estimate, truth)`` when the truth is the

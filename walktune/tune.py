@@ -32,6 +32,16 @@ from .diagnostics import bulk_ess, iact, mcse_mean, rhat
 from .engine import sample
 from .errors import SamplingError, TargetError, WalktuneError
 from .evaluators import BatchResult, InProcessEvaluator
+from .geometry import (
+    boundary_findings,
+    climb,
+    find_regions,
+    heavy_tail_findings,
+    multimodal_finding,
+    separated,
+    varying_scale_findings,
+    within_chain_iact,
+)
 from .findings import (
     Finding,
     acceptance_findings,
@@ -250,6 +260,7 @@ class TuneResult:
     current_proposal: np.ndarray | None = None
     seed: object = None
     partial: bool = False
+    regions: list = field(default_factory=list)
 
     @property
     def slowdowns(self) -> dict:
@@ -301,6 +312,17 @@ class TuneResult:
             "total_evaluations": self.total_evaluations,
             "pilot_converged": self.pilot.converged,
             "comparison": [row.to_dict() for row in self.comparison],
+            "regions": [
+                {
+                    "mode": r.mode.tolist(),
+                    "mean": r.mean.tolist(),
+                    "covariance": r.covariance.tolist(),
+                    "proposal_covariance": theory.optimal_proposal(r.covariance).tolist(),
+                    "share_of_draws": r.share,
+                    "chains": r.chains,
+                }
+                for r in self.regions
+            ],
             "findings": [f.to_dict() for f in self.findings],
             "caution": CAUTION,
         }
@@ -328,15 +350,18 @@ def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> 
     return np.diag(guess**2)
 
 
-def _overdispersed_starts(counted: _Counted, centre, cov, chains: int, rng):
+def _overdispersed_starts(counted: _Counted, centres, cov, chains: int, rng):
     """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite.
 
-    Returns the points (chains, d) and their log-densities (chains,).
+    Chain ``c`` starts around ``centres[c % len(centres)]``, so that chains
+    begin in every separate mode the optimizer found. Returns the points
+    (chains, d) and their log-densities (chains,).
     """
     chol = np.linalg.cholesky(cov)
-    points = np.empty((chains, centre.shape[0]))
+    points = np.empty((chains, centres[0].shape[0]))
     values = np.empty(chains)
     for c in range(chains):
+        centre = centres[c % len(centres)]
         z = rng.standard_normal(centre.shape[0])
         for spread in (2.0, 1.0, 0.5, 0.25, 0.1, 0.0):
             candidate = centre + spread * (chol @ z)
@@ -347,6 +372,31 @@ def _overdispersed_starts(counted: _Counted, centre, cov, chains: int, rng):
     return points, values
 
 
+def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
+    """Climb from ``count`` points spread widely around the start; return modes separate from ``fit.mode``.
+
+    The points are drawn from ``N(start, 25 cov)`` and clipped inside the bounds;
+    a climb's end point counts as another mode only when the log-density dips
+    between it and every mode already known (:func:`walktune.geometry.separated`).
+    """
+    dim = start.shape[0]
+    sd = np.sqrt(np.diag(cov))
+    known = [(fit.mode, fit.log_density)]
+    chol = np.linalg.cholesky(cov)
+    low = np.where(np.isfinite(bounds[:, 0]), bounds[:, 0] + 1e-3 * sd, -np.inf)
+    high = np.where(np.isfinite(bounds[:, 1]), bounds[:, 1] - 1e-3 * sd, np.inf)
+    for _ in range(count):
+        point = np.clip(start + 5.0 * (chol @ rng.standard_normal(dim)), low, high)
+        if not np.isfinite(counted.scalar(point)):
+            continue
+        end, value = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
+        if not np.isfinite(value):
+            continue
+        if all(separated(counted.scalar, end, mode, value, lp) for mode, lp in known):
+            known.append((end, value))
+    return [mode for mode, _ in known[1:]]
+
+
 def _proof_run(name, proposal, counted, pilot, steps, seed, progress):
     t0 = time.perf_counter()
     chains = sample(
@@ -354,6 +404,10 @@ def _proof_run(name, proposal, counted, pilot, steps, seed, progress):
         progress=(lambda done, total: progress(name, done, total)) if progress else None,
     )
     return chains, time.perf_counter() - t0
+
+
+def _bulk(chains) -> np.ndarray:
+    return np.asarray(bulk_ess(chains.draws))
 
 
 def _row_from_run(name, description, chains, predicted, baseline=None):
@@ -492,7 +546,9 @@ def tune(
 
     # 2. Pilot from overdispersed starts.
     rng = np.random.default_rng(mode_seed)
-    states, state_values = _overdispersed_starts(counted, fit.mode, initial_cov, n_chains, rng)
+    other_modes = _other_modes(counted, start, fit, initial_cov, bound_array, min(n_chains, 4), rng)
+    centres = [fit.mode] + other_modes
+    states, state_values = _overdispersed_starts(counted, centres, initial_cov, n_chains, rng)
     used = counted.count
     pilot = run_pilot(
         None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
@@ -510,9 +566,12 @@ def tune(
     )
 
     # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
+    # Evaluations kept back for the mode checks after the proof runs.
+    detection_reserve = 5 * 60 * (dim + 1) + 200
     if budget is not None:
+        detection_reserve = min(detection_reserve, budget // 10)
         # What the mode search and pilot left, shared equally by the three runs.
-        proof_steps = max(50, (budget - counted.count) // (3 * n_chains))
+        proof_steps = max(50, (budget - counted.count - detection_reserve) // (3 * n_chains))
     if current is not None:
         baseline_name, baseline_cov, baseline_text = "current", current, "the proposal you use now"
         baseline_predicted = slowdowns["current"]["slowest"]
@@ -546,6 +605,24 @@ def tune(
     findings += convergence_findings(tuned_rhat, names, "tuned-covariance")
     findings += identification_findings(np.sqrt(np.diag(covariance)), bound_array, names)
     findings += acceptance_findings(rows)
+    detection_budget = None if budget is None else max(0, budget - counted.count)
+    # The detectors look at every proof run: all are fixed-proposal continuations of the pilot's chains.
+    proof_draws = np.concatenate([run.draws for run in runs.values()], axis=0)
+    tau_within = within_chain_iact(proof_draws)
+    regions, undecided_modes = find_regions(
+        counted.scalar, proof_draws, tau_within, extra_centres=centres[1:], seed=0, budget=detection_budget,
+        chain_ids=[c % n_chains for c in range(proof_draws.shape[0])],
+    )
+    multimodal = multimodal_finding(regions, names)
+    if multimodal is not None:
+        findings.append(multimodal)
+    funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
+    findings += funnel
+    findings += boundary_findings(tuned.draws, bound_array, names)
+    findings += heavy_tail_findings(tuned.draws, _bulk(runs["tuned-covariance"]), names)
+    for note in (undecided_modes, undecided_scale):
+        if note:
+            findings.append(Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {}))
     if not rows[-1].ess_reliable:
         findings.append(
             Finding(
@@ -603,4 +680,5 @@ def tune(
         runs=runs,
         current_proposal=current,
         seed=seed_seq.entropy,
+        regions=regions if len(regions) > 1 else [],
     )

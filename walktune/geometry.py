@@ -1,0 +1,349 @@
+"""Detectors for geometry a tuned Gaussian random walk handles badly.
+
+* Separated modes: candidate centres from a Gaussian mixture fitted to the
+  draws (scikit-learn, number of components by BIC; Schwarz 1978) and from
+  optimizer runs started from overdispersed points; each candidate is climbed
+  to its local mode, and two modes count as separate only when the
+  log-density dips between them (a curved ridge has one mode, however a
+  mixture splits it).
+* Varying scale (funnels): draws sorted by a candidate parameter ``v``; the
+  spread of each other parameter between neighbours in that order estimates
+  its conditional spread given ``v`` (a smooth trend in the mean cancels), and
+  its ratio between the top and bottom fifth of ``v`` measures the funnel.
+* Boundary pile-up: the histogram of a bounded parameter peaks in the bin
+  next to the bound, and draws come within a small share of the sd of it.
+* Heavy tails: sample excess kurtosis well above 0, with its standard error
+  ``sqrt(24 / n_eff)`` (the large-sample value for a Gaussian).
+
+Every detector says when it has too few draws to decide instead of guessing.
+
+References
+----------
+Neal, R. M. (2003). Slice sampling. Annals of Statistics, 31(3), 705-767 (the funnel).
+Papaspiliopoulos, O., Roberts, G. O. and Sköld, M. (2007). A general framework for the
+parametrization of hierarchical models. Statistical Science, 22(1), 59-73.
+Schwarz, G. (1978). Estimating the dimension of a model. Annals of Statistics, 6(2), 461-464.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize, stats
+from sklearn.mixture import GaussianMixture
+
+from .diagnostics import iact
+from .findings import Finding
+
+#: Fewer (roughly independent) draws than this and a detector declines to decide.
+MIN_DRAWS_TO_DECIDE = 100
+
+#: A log-density dip of this many nats between two modes separates them (common practice:
+#: e^-3 ~ 0.05 of the lower peak's density).
+SEPARATING_DIP = 3.0
+
+
+@dataclass
+class Region:
+    """One separated region of the posterior."""
+
+    mode: np.ndarray
+    mean: np.ndarray
+    covariance: np.ndarray
+    share: float
+    chains: list = field(default_factory=list)
+
+    @property
+    def sd(self) -> np.ndarray:
+        return np.sqrt(np.diag(self.covariance))
+
+
+def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
+    """The largest (or ``over_parameters``) over parameters of the median over chains of each chain's own IACT.
+
+    Unlike the IACT combined over chains, this stays small when chains sit
+    in different regions, which is what thinning for the detectors needs.
+    """
+    per_chain = np.array([np.asarray(iact(chain)) for chain in draws])
+    return float(over_parameters(np.median(per_chain, axis=0)))
+
+
+def _thin_to_independent(draws: np.ndarray, tau: float, limit: int = 4000) -> np.ndarray:
+    """Flatten (chains, n, d) draws, keeping about one per autocorrelation time (at most ``limit``)."""
+    m, n, d = draws.shape
+    step = max(1, int(np.ceil(tau)), int(np.ceil(m * n / limit)))
+    return draws[:, ::step].reshape(-1, d)
+
+
+def climb(log_density, x0: np.ndarray, scale: np.ndarray, budget: int) -> tuple[np.ndarray, float]:
+    """Local maximisation from ``x0`` (L-BFGS-B on x / scale); returns the point and its log-density."""
+
+    def negative(z):
+        value = log_density(z * scale)
+        return -value if np.isfinite(value) else 1e300
+
+    result = optimize.minimize(negative, x0 / scale, method="L-BFGS-B", options={"maxfun": budget})
+    return result.x * scale, -float(result.fun)
+
+
+class _Budgeted:
+    """Counts calls of a log-density against an optional budget."""
+
+    def __init__(self, log_density, budget):
+        self.log_density = log_density
+        self.budget = budget
+        self.calls = 0
+
+    def __call__(self, theta):
+        self.calls += 1
+        return self.log_density(theta)
+
+    def left(self) -> float:
+        return np.inf if self.budget is None else self.budget - self.calls
+
+
+def separated(log_density, a: np.ndarray, b: np.ndarray, lp_a: float, lp_b: float, points: int = 15) -> bool:
+    """Whether the log-density dips by more than :data:`SEPARATING_DIP` nats between ``a`` and ``b``."""
+    t = np.linspace(0.0, 1.0, points + 2)[1:-1]
+    values = np.array([log_density(a + ti * (b - a)) for ti in t])
+    values = np.where(np.isfinite(values), values, -np.inf)
+    return bool(min(lp_a, lp_b) - np.min(values) > SEPARATING_DIP)
+
+
+def find_regions(
+    log_density,
+    draws: np.ndarray,
+    tau: float,
+    extra_centres=(),
+    max_components: int = 4,
+    seed: int = 0,
+    budget: int | None = None,
+    chain_ids=None,
+) -> tuple[list, str | None]:
+    """Separated regions among ``draws`` (chains, n, d).
+
+    Returns the regions (one when the posterior looks connected) and, when the
+    draws are too few to decide or the evaluation ``budget`` ran out, a note
+    saying so. ``chain_ids`` names the chain of each row of ``draws`` (default:
+    its index), for runs that continue the same chains.
+    """
+    m, n, d = draws.shape
+    chain_ids = list(range(m)) if chain_ids is None else list(chain_ids)
+    counter = _Budgeted(log_density, budget)
+    log_density = counter
+    flat = _thin_to_independent(draws, tau)
+    if flat.shape[0] < MIN_DRAWS_TO_DECIDE:
+        return [], f"only {flat.shape[0]} roughly independent draws; too few to look for separate modes"
+    centre, spread = flat.mean(axis=0), flat.std(axis=0)
+    spread = np.where(spread > 0, spread, 1.0)
+    standard = (flat - centre) / spread
+    best, best_bic = None, np.inf
+    for k in range(1, max_components + 1):
+        if standard.shape[0] < 10 * k * (d + 1):
+            break
+        mixture = GaussianMixture(k, covariance_type="full", random_state=seed, n_init=2, reg_covar=1e-6).fit(standard)
+        bic = mixture.bic(standard)
+        if bic < best_bic:
+            best, best_bic = mixture, bic
+    candidates = [c for c in (best.means_ * spread + centre)] if best is not None else [centre]
+    candidates += [np.asarray(c, dtype=float) for c in extra_centres]
+    scale = np.maximum(spread, 1e-12)
+    modes = []
+    note = None
+    for candidate in candidates:
+        if counter.left() < 60 * (d + 1) + 20 * len(modes):
+            note = "the evaluation budget ran out before every candidate mode was checked"
+            break
+        point, value = climb(log_density, candidate, scale, budget=60 * (d + 1))
+        if not np.isfinite(value):
+            continue
+        for mode in modes:
+            near = np.all(np.abs(point - mode[0]) < 0.05 * scale)
+            if near or not separated(log_density, point, mode[0], value, mode[1]):
+                if value > mode[1]:
+                    mode[0], mode[1] = point, value
+                break
+        else:
+            modes.append([point, value])
+    if len(modes) < 2:
+        return [Region(flat.mean(axis=0), flat.mean(axis=0), np.atleast_2d(np.cov(flat.T)), 1.0, sorted(set(chain_ids)))], note
+    # Assign draws to regions: nearest mode, then by Mahalanobis distance under each region's covariance.
+    all_draws = draws.reshape(-1, d)
+    points = np.array([mode[0] for mode in modes])
+    labels = np.argmin((((all_draws[:, None, :] - points[None]) / scale) ** 2).sum(axis=2), axis=1)
+    for _ in range(2):
+        covs = []
+        for r in range(len(modes)):
+            members = all_draws[labels == r]
+            covs.append(np.cov(members.T) + 1e-9 * np.diag(scale**2) if members.shape[0] > d + 1 else np.diag(scale**2))
+        distance = np.stack(
+            [
+                stats.multivariate_normal(points[r], covs[r], allow_singular=True).logpdf(all_draws)
+                for r in range(len(modes))
+            ],
+            axis=1,
+        )
+        labels = np.argmax(distance, axis=1)
+    by_chain = labels.reshape(m, n)
+    regions = []
+    for r in range(len(modes)):
+        members = all_draws[labels == r]
+        if members.shape[0] == 0:
+            # A mode no chain reached: report it with the optimizer's point only.
+            regions.append(Region(points[r], points[r], np.diag((0.1 * scale) ** 2), 0.0, []))
+            continue
+        chains = sorted({chain_ids[c] for c in range(m) if np.mean(by_chain[c] == r) >= 0.05})
+        cov = np.atleast_2d(np.cov(members.T)) if members.shape[0] > 1 else np.diag((0.1 * scale) ** 2)
+        regions.append(Region(points[r], members.mean(axis=0), cov, members.shape[0] / all_draws.shape[0], chains))
+    return regions, note
+
+
+def multimodal_finding(regions: list, names: list) -> Finding | None:
+    if len(regions) < 2:
+        return None
+    parts = []
+    for i, region in enumerate(regions):
+        where = ", ".join(f"{names[j]}={region.mode[j]:.3g}" for j in range(min(len(names), 4)))
+        chains = ", ".join(map(str, region.chains)) if region.chains else "none"
+        parts.append(f"region {i + 1} near ({where}{', ...' if len(names) > 4 else ''}), {region.share:.0%} of draws, chains {chains}")
+    return Finding(
+        "multimodal",
+        "critical",
+        list(names),
+        f"the posterior has {len(regions)} separated regions: " + "; ".join(parts) + ". A random walk will not move "
+        "between them at a useful rate, so do not trust pooled estimates. Use tempering (e.g. parallel tempering), or "
+        "run each region separately with its own proposal (regions in advice.json) and combine them; the relative "
+        "weights of the regions then need other means (e.g. bridge sampling or marginal-likelihood estimates).",
+        {
+            "regions": [
+                {"mode": r.mode.tolist(), "mean": r.mean.tolist(), "sd": r.sd.tolist(), "share": r.share, "chains": r.chains}
+                for r in regions
+            ]
+        },
+    )
+
+
+def local_spread_ratio(draws: np.ndarray, index: int, bins: int = 5) -> np.ndarray:
+    """How much the conditional spread of each parameter changes along parameter ``index``.
+
+    ``draws`` is (n, d). Every other parameter is regressed linearly on
+    parameter ``index`` (which removes the trend of a correlated Gaussian,
+    whose conditional spread is constant); the robust sd (1.4826 x median
+    absolute deviation) of the residuals is compared between the top and the
+    bottom ``1/bins`` of the draws sorted by parameter ``index``. Returns the
+    ratio top / bottom per parameter (1 for ``index`` itself).
+    """
+    n, d = draws.shape
+    v = draws[:, index]
+    design = np.column_stack([np.ones(n), v])
+    coef, *_ = np.linalg.lstsq(design, draws, rcond=None)
+    residual = draws - design @ coef
+    order = np.argsort(v, kind="stable")
+    size = n // bins
+
+    def robust_sd(rows):
+        part = residual[rows]
+        return 1.4826 * np.median(np.abs(part - np.median(part, axis=0)), axis=0)
+
+    low, high = robust_sd(order[:size]), robust_sd(order[-size:])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(low > 0, high / low, np.inf)
+    ratio[index] = 1.0
+    return ratio
+
+
+def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold: float = 4.0):
+    """``varying-scale`` findings from (chains, n, d) draws; and a note when undecidable.
+
+    ``tau`` is a typical within-chain IACT; the draws must hold at least
+    :data:`MIN_DRAWS_TO_DECIDE` of them.
+    """
+    m, n, d = draws.shape
+    if d < 2:
+        return [], None
+    flat = draws.reshape(-1, d)
+    n_independent = flat.shape[0] / max(tau, 1.0)
+    if n_independent < MIN_DRAWS_TO_DECIDE:
+        return [], f"only about {n_independent:.0f} roughly independent draws; too few to measure how local spread changes"
+    strongest = {}
+    for j in range(d):
+        ratio = local_spread_ratio(flat, j)
+        factor = np.where(ratio >= 1, ratio, 1.0 / ratio)
+        factor[j] = 1.0
+        affected = [i for i in range(d) if factor[i] >= threshold]
+        # A funnel parameter changes the spread of most of the others, not of one partner.
+        if affected and len(affected) >= (d - 1) / 2:
+            strongest[j] = (float(np.median(factor[affected])), affected)
+    out = []
+    for j, (factor, affected) in sorted(strongest.items(), key=lambda kv: -kv[1][0])[:1]:
+        out.append(
+            Finding(
+                "varying-scale",
+                "critical" if factor >= 10 else "warn",
+                [names[j]] + [names[i] for i in affected],
+                f"the spread of {', '.join(names[i] for i in affected[:5])}{' ...' if len(affected) > 5 else ''} changes "
+                f"about {factor:.0f}-fold along {names[j]} (a funnel): no single step size fits both ends. If {names[j]} "
+                "is a group-level scale, use the non-centred parameterisation (Papaspiliopoulos, Roberts and Sköld 2007): "
+                f"sample standardised effects z and set effect = mean + exp({names[j]}) * z (or scale * z).",
+                {"parameter": names[j], "spread_factor": factor, "affected": [names[i] for i in affected]},
+            )
+        )
+    return out, None
+
+
+def boundary_findings(draws: np.ndarray, bounds: np.ndarray, names: list) -> list:
+    """``boundary-pileup``: the histogram peaks at a finite bound that the draws nearly touch."""
+    flat = draws.reshape(-1, draws.shape[2])
+    out = []
+    for i, (lo, hi) in enumerate(bounds):
+        x = flat[:, i]
+        sd = x.std()
+        if sd == 0 or x.shape[0] < MIN_DRAWS_TO_DECIDE:
+            continue
+        counts, edges = np.histogram(x, bins=20)
+        for side, bound in (("lower", lo), ("upper", hi)):
+            if not np.isfinite(bound):
+                continue
+            gap = (x.min() - bound) if side == "lower" else (bound - x.max())
+            edge_bin = counts[0] if side == "lower" else counts[-1]
+            if gap < 0.05 * sd and edge_bin == counts.max():
+                out.append(
+                    Finding(
+                        "boundary-pileup",
+                        "warn",
+                        [names[i]],
+                        f"draws of {names[i]} pile up against its {side} bound {bound:g} (the densest histogram bin "
+                        "touches it): a Gaussian step proposes many points outside and is rejected. Sample in "
+                        f"{'log(' + names[i] + ' - low)' if side == 'lower' and not np.isfinite(hi) else 'a logit/log transform of ' + names[i]}; "
+                        "or, if the likelihood itself peaks there, the data push the parameter to the edge of its "
+                        "allowed range, and the bound deserves a second look.",
+                        {"bound": float(bound), "side": side, "gap_over_sd": float(gap / sd)},
+                    )
+                )
+    return out
+
+
+def heavy_tail_findings(draws: np.ndarray, ess: np.ndarray, names: list) -> list:
+    """``heavy-tails``: excess kurtosis above 1 by more than four standard errors."""
+    flat = draws.reshape(-1, draws.shape[2])
+    kurtosis = stats.kurtosis(flat, axis=0, fisher=True, bias=False)
+    out = []
+    for i, k in enumerate(kurtosis):
+        n_eff = float(ess[i]) if np.isfinite(ess[i]) else 0.0
+        if n_eff < MIN_DRAWS_TO_DECIDE:
+            continue
+        se = np.sqrt(24.0 / n_eff)
+        if k > 1.0 and k - 4 * se > 0:
+            out.append(
+                Finding(
+                    "heavy-tails",
+                    "warn",
+                    [names[i]],
+                    f"{names[i]} has excess kurtosis {k:.1f} +/- {se:.1f} (0 for a Gaussian): its tails are much "
+                    "heavier than a Gaussian's, so a proposal scaled to the bulk explores them slowly and tail "
+                    "quantiles converge last. A log or other transform may tame them; check tail ESS.",
+                    {"excess_kurtosis": float(k), "standard_error": float(se)},
+                )
+            )
+    return out
