@@ -76,15 +76,20 @@ def _thin_to_independent(draws: np.ndarray, tau: float, limit: int = 4000) -> np
     return draws[:, ::step].reshape(-1, d)
 
 
-def climb(log_density, x0: np.ndarray, scale: np.ndarray, budget: int) -> tuple[np.ndarray, float]:
-    """Local maximisation from ``x0`` (L-BFGS-B on x / scale); returns the point and its log-density."""
+def climb(log_density, x0: np.ndarray, scale: np.ndarray, budget: int) -> tuple[np.ndarray, float, bool]:
+    """Local maximisation from ``x0`` (L-BFGS-B on x / scale).
+
+    Returns the point, its log-density, and whether the optimizer converged:
+    a climb that ran out of budget on a long ridge (as in a funnel's neck) has
+    not found a mode and must not be taken for one.
+    """
 
     def negative(z):
         value = log_density(z * scale)
         return -value if np.isfinite(value) else 1e300
 
     result = optimize.minimize(negative, x0 / scale, method="L-BFGS-B", options={"maxfun": budget})
-    return result.x * scale, -float(result.fun)
+    return result.x * scale, -float(result.fun), bool(result.success)
 
 
 class _Budgeted:
@@ -155,8 +160,8 @@ def find_regions(
         if counter.left() < 60 * (d + 1) + 20 * len(modes):
             note = "the evaluation budget ran out before every candidate mode was checked"
             break
-        point, value = climb(log_density, candidate, scale, budget=60 * (d + 1))
-        if not np.isfinite(value):
+        point, value, converged = climb(log_density, candidate, scale, budget=60 * (d + 1))
+        if not (converged and np.isfinite(value)):
             continue
         for mode in modes:
             near = np.all(np.abs(point - mode[0]) < 0.05 * scale)
@@ -275,6 +280,67 @@ def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold
         # A funnel parameter changes the spread of most of the others, not of one partner.
         if affected and len(affected) >= (d - 1) / 2:
             strongest[j] = (float(np.median(factor[affected])), affected)
+    return _varying_scale(strongest, names, "the spread of the draws"), None
+
+
+def curvature_spread_ratio(log_density, centre: np.ndarray, sd: np.ndarray, index: int, reach: float = 2.0) -> np.ndarray:
+    """Local spread of every parameter at ``centre -/+ reach sd`` along parameter ``index``, as a ratio.
+
+
+    The local spread of parameter i at a point is ``(-d^2 log p / d theta_i^2)^{-1/2}``
+    (central differences, step 1e-3 sd_i). Returns, per parameter, the ratio
+    of the local spread at the upper point to that at the lower one; NaN where
+    the log-density is not concave in that parameter at either point, and 1 for
+    ``index`` itself. For a Gaussian every ratio is exactly 1; in Neal's funnel
+    the x's ratio is ``exp(reach sd_v)``.
+    """
+    low, high = centre.copy(), centre.copy()
+    low[index] -= reach * sd[index]
+    high[index] += reach * sd[index]
+    ratio = _local_sd(log_density, high, sd) / _local_sd(log_density, low, sd)
+    ratio[index] = 1.0
+    return ratio
+
+
+def _local_sd(log_density, point: np.ndarray, sd: np.ndarray) -> np.ndarray:
+    """``(-d^2 log p / d theta_i^2)^{-1/2}`` per parameter by central differences; NaN where not concave."""
+    d = point.shape[0]
+    f0 = log_density(point)
+    out = np.full(d, np.nan)
+    for i in range(d):
+        h = 1e-3 * sd[i]
+        step = np.zeros(d)
+        step[i] = h
+        second = (log_density(point + step) - 2 * f0 + log_density(point - step)) / h**2
+        if np.isfinite(second) and second < 0:
+            out[i] = 1.0 / np.sqrt(-second)
+    return out
+
+
+def funnel_findings_from_curvature(log_density, centre, sd, names, threshold: float = 4.0) -> list:
+    """``varying-scale`` from how the local curvature of the log-density changes along each parameter.
+
+    Each parameter is probed 2 spreads either side of ``centre``, the spread
+    being the larger of ``sd`` (from the draws) and the local spread from the
+    curvature at ``centre``: chains stuck in a funnel's neck have a small sd
+    that would hide the funnel.
+    """
+    d = centre.shape[0]
+    if d < 2:
+        return []
+    sd = np.maximum(sd, np.nan_to_num(_local_sd(log_density, centre, sd), nan=0.0))
+    strongest = {}
+    for j in range(d):
+        ratio = curvature_spread_ratio(log_density, centre, sd, j)
+        factor = np.where(ratio >= 1, ratio, 1.0 / ratio)
+        factor[j] = 1.0
+        affected = [i for i in range(d) if np.isfinite(factor[i]) and factor[i] >= threshold]
+        if affected and len(affected) >= (d - 1) / 2:
+            strongest[j] = (float(np.median(factor[affected])), affected)
+    return _varying_scale(strongest, names, "the curvature of the log-density")
+
+
+def _varying_scale(strongest: dict, names: list, evidence: str) -> list:
     out = []
     for j, (factor, affected) in sorted(strongest.items(), key=lambda kv: -kv[1][0])[:1]:
         out.append(
@@ -283,13 +349,14 @@ def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold
                 "critical" if factor >= 10 else "warn",
                 [names[j]] + [names[i] for i in affected],
                 f"the spread of {', '.join(names[i] for i in affected[:5])}{' ...' if len(affected) > 5 else ''} changes "
-                f"about {factor:.0f}-fold along {names[j]} (a funnel): no single step size fits both ends. If {names[j]} "
-                "is a group-level scale, use the non-centred parameterisation (Papaspiliopoulos, Roberts and Sköld 2007): "
-                f"sample standardised effects z and set effect = mean + exp({names[j]}) * z (or scale * z).",
+                f"about {factor:.0f}-fold along {names[j]} (a funnel; from {evidence}): no single step size fits both "
+                f"ends. If {names[j]} is a group-level scale, use the non-centred parameterisation (Papaspiliopoulos, "
+                f"Roberts and Sköld 2007): sample standardised effects z and set effect = mean + exp({names[j]}) * z "
+                "(or scale * z).",
                 {"parameter": names[j], "spread_factor": factor, "affected": [names[i] for i in affected]},
             )
         )
-    return out, None
+    return out
 
 
 def boundary_findings(draws: np.ndarray, bounds: np.ndarray, names: list) -> list:

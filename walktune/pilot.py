@@ -85,8 +85,12 @@ class PilotResult:
     converged: bool = False
 
 
-def shrunk_covariance(draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndarray, float]:
+def shrunk_covariance(draws: np.ndarray, reference: np.ndarray, within_chains: bool = False) -> tuple[np.ndarray, float, int]:
     """Covariance of ``draws`` (chains, n, d), shrunk towards the shape of ``reference``.
+
+    With ``within_chains`` the pooled within-chain covariance is used: chains
+    started in separate modes must not make the proposal span the gap between
+    them (a random walk cannot jump it).
 
     The draws are whitened by the Cholesky factor of ``reference``; the
     Ledoit-Wolf intensity is estimated on draws thinned to about one per
@@ -98,8 +102,9 @@ def shrunk_covariance(draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndar
     """
     m, n, d = draws.shape
     chol = np.linalg.cholesky(reference)
-    flat = draws.reshape(-1, d)
-    white = np.linalg.solve(chol, (flat - flat.mean(axis=0)).T).T
+    centre = draws.mean(axis=1, keepdims=True) if within_chains else draws.reshape(-1, d).mean(axis=0)
+    flat = (draws - centre).reshape(-1, d)
+    white = np.linalg.solve(chol, flat.T).T
     sample_cov = np.atleast_2d(np.cov(white, rowvar=False))
     tau = float(np.max(iact(white.reshape(m, n, d)))) if n >= 20 else 1.0
     step = max(1, int(np.ceil(tau)))
@@ -157,6 +162,7 @@ def run_pilot(
     first_window: int | None = None,
     progress=None,
     state_log_density: np.ndarray | None = None,
+    within_chains: bool = False,
 ) -> PilotResult:
     """Adapt the proposal in stages of doubling length until it settles or the budget ends.
 
@@ -173,6 +179,8 @@ def run_pilot(
         Each stage gets its own spawned child.
     state_log_density : ndarray of shape (chains,), optional
         The log-density at ``states``, when known.
+    within_chains : bool, default=False
+        Estimate the covariance within chains (for chains started in separate modes).
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -210,7 +218,7 @@ def run_pilot(
             previous = history[-2]
             pooled_draws = np.concatenate([previous[:, previous.shape[1] // 2 :], chains.draws], axis=1)
         try:
-            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, result.covariance)
+            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, result.covariance, within_chains)
             np.linalg.cholesky(new_cov)
         except np.linalg.LinAlgError:
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0

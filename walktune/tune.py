@@ -36,6 +36,7 @@ from .geometry import (
     boundary_findings,
     climb,
     find_regions,
+    funnel_findings_from_curvature,
     heavy_tail_findings,
     multimodal_finding,
     separated,
@@ -57,6 +58,10 @@ from .pilot import PilotResult, run_pilot
 #: all chains is common practice (Vehtari et al. 2021 suggest 100 per chain).
 DEFAULT_TARGET_ESS = 400
 SCHEMA = "walktune.advice/1"
+
+#: Up to this dimension the funnel detector also probes the log-density's
+#: curvature (2 d (2 d + 1) evaluations).
+MAX_CURVATURE_PROBE_DIM = 20
 
 CAUTION = (
     "Diagnostics can show that chains have not converged; they can never prove that they have. "
@@ -375,22 +380,25 @@ def _overdispersed_starts(counted: _Counted, centres, cov, chains: int, rng):
 def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     """Climb from ``count`` points spread widely around the start; return modes separate from ``fit.mode``.
 
-    The points are drawn from ``N(start, 25 cov)`` and clipped inside the bounds;
-    a climb's end point counts as another mode only when the log-density dips
-    between it and every mode already known (:func:`walktune.geometry.separated`).
+    The points are drawn around the start with, per parameter, the largest of
+    5 Laplace sds, the distance from the start to the mode, and half the
+    mode's magnitude (a tight posterior far from zero may have a mirror image),
+    clipped inside the bounds. A climb's end point counts as another mode only
+    when the log-density dips between it and every mode already known
+    (:func:`walktune.geometry.separated`).
     """
     dim = start.shape[0]
     sd = np.sqrt(np.diag(cov))
+    spread = np.maximum.reduce([5.0 * sd, np.abs(fit.mode - start), 0.5 * np.abs(fit.mode)])
     known = [(fit.mode, fit.log_density)]
-    chol = np.linalg.cholesky(cov)
     low = np.where(np.isfinite(bounds[:, 0]), bounds[:, 0] + 1e-3 * sd, -np.inf)
     high = np.where(np.isfinite(bounds[:, 1]), bounds[:, 1] - 1e-3 * sd, np.inf)
     for _ in range(count):
-        point = np.clip(start + 5.0 * (chol @ rng.standard_normal(dim)), low, high)
+        point = np.clip(start + spread * rng.standard_normal(dim), low, high)
         if not np.isfinite(counted.scalar(point)):
             continue
-        end, value = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
-        if not np.isfinite(value):
+        end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
+        if not (converged and np.isfinite(value)):
             continue
         if all(separated(counted.scalar, end, mode, value, lp) for mode, lp in known):
             known.append((end, value))
@@ -546,14 +554,14 @@ def tune(
 
     # 2. Pilot from overdispersed starts.
     rng = np.random.default_rng(mode_seed)
-    other_modes = _other_modes(counted, start, fit, initial_cov, bound_array, min(n_chains, 4), rng)
+    other_modes = _other_modes(counted, start, fit, initial_cov, bound_array, 4, rng)
     centres = [fit.mode] + other_modes
     states, state_values = _overdispersed_starts(counted, centres, initial_cov, n_chains, rng)
     used = counted.count
     pilot = run_pilot(
         None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
         pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
-        state_log_density=state_values,
+        state_log_density=state_values, within_chains=len(centres) > 1,
     )
     pilot_evaluations = counted.count
     covariance = pilot.covariance
@@ -567,7 +575,7 @@ def tune(
 
     # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
     # Evaluations kept back for the mode checks after the proof runs.
-    detection_reserve = 5 * 60 * (dim + 1) + 200
+    detection_reserve = 5 * 60 * (dim + 1) + 200 + (2 * dim * (2 * dim + 1) if dim <= MAX_CURVATURE_PROBE_DIM else 0)
     if budget is not None:
         detection_reserve = min(detection_reserve, budget // 10)
         # What the mode search and pilot left, shared equally by the three runs.
@@ -617,6 +625,12 @@ def tune(
     if multimodal is not None:
         findings.append(multimodal)
     funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
+    probe_cost = 2 * dim * (2 * dim + 1) + 2 * dim + 1
+    if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget is None or budget - counted.count >= probe_cost):
+        # The model itself can show a funnel the draws were too few to show.
+        funnel = funnel_findings_from_curvature(counted.scalar, posterior_mean, np.sqrt(np.diag(covariance)), names)
+        if funnel:
+            undecided_scale = None
     findings += funnel
     findings += boundary_findings(tuned.draws, bound_array, names)
     findings += heavy_tail_findings(tuned.draws, _bulk(runs["tuned-covariance"]), names)
