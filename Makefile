@@ -25,6 +25,7 @@ bench: $(STAMP)
 	$(PY) benchmarks/bench_core.py
 	$(PY) benchmarks/bench_tuning.py
 	$(PY) benchmarks/bench_inspect.py
+	$(PY) benchmarks/bench_report.py
 
 clean:
 	rm -rf $(VENV) walktune-demo .pytest_cache

@@ -111,6 +111,7 @@ def _run_tune(
     target_ess: int,
     as_json: bool,
     quiet: bool,
+    report: bool = False,
 ) -> None:
     from .console import StageProgress, render
     from .target import load_target
@@ -160,6 +161,10 @@ def _run_tune(
             vectorized=spec.vectorized, target_ess=target_ess, progress=progress,
         )
     result.save(out)
+    if report:
+        from .report import write_report
+
+        write_report(out)
     if as_json:
         typer.echo(json.dumps(result.to_dict(), indent=2))
     elif not quiet:
@@ -184,10 +189,11 @@ def tune_command(
     target_ess: int = typer.Option(400, "--target-ess", help="ESS you need, for the evaluations-needed advice."),
     as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress; write the output folder only."),
+    report: bool = typer.Option(False, "--report", help="Also write figures and report.html into the output folder."),
 ):
     """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison."""
     try:
-        _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet)
+        _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet, report)
     except WalktuneError as error:
         _fail(str(error))
     except OSError as error:
@@ -208,6 +214,7 @@ def inspect_command(
     target_mcse: Optional[float] = typer.Option(None, "--target-mcse", help="Wanted MCSE of each mean."),
     out: Optional[Path] = typer.Option(None, "--out", "-o", help="Write advice.json and the proposal files here."),
     as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
+    report: bool = typer.Option(False, "--report", help="Also write figures and report.html into --out."),
 ):
     """Diagnose chains you already have and advise a proposal, without the model."""
     from .chainfiles import read_chains
@@ -220,12 +227,18 @@ def inspect_command(
         current = _read_proposal(proposal) if proposal is not None else None
         if out is not None and out.exists() and not out.is_dir():
             raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
+        if report and out is None:
+            raise WalktuneError("--report writes into the output folder; give --out too.")
         result = inspect(
             data.draws, data.names, warmup=warmup, thin=thin, params=chosen, proposal=current,
-            target_ess=target_ess, target_mcse=target_mcse, sources=data.sources,
+            target_ess=target_ess, target_mcse=target_mcse, sources=data.sources, chain_column=chain_column,
         )
         if out is not None:
             result.save(out)
+            if report:
+                from .report import write_report
+
+                write_report(out)
         if as_json:
             typer.echo(json.dumps(result.to_dict(), indent=2))
         else:
@@ -234,6 +247,22 @@ def inspect_command(
         _fail(str(error))
     except OSError as error:
         _fail(f"cannot read or write: {error.strerror or error} ({error.filename})")
+
+
+@app.command("report")
+def report_command(
+    folder: Path = typer.Argument(..., help="A walktune output folder (from tune, or inspect --out)."),
+):
+    """Write PNG figures and a self-contained report.html into FOLDER."""
+    from .report import write_report
+
+    try:
+        page = write_report(folder)
+        _console().print(f"wrote {page} and its figures")
+    except WalktuneError as error:
+        _fail(str(error))
+    except OSError as error:
+        _fail(f"cannot write the report: {error.strerror or error} ({error.filename})")
 
 
 @app.command("demo")
@@ -246,7 +275,7 @@ def demo_command(
     try:
         if not DEMO_MODEL.exists():
             raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune from its repository.")
-        _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet)
+        _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet, report=True)
     except WalktuneError as error:
         _fail(str(error))
 

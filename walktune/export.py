@@ -6,7 +6,7 @@ Output folder of a tuning run:
 * ``proposal_covariance.npy`` and ``proposal_covariance.csv`` (header row of names);
 * ``step_sizes.csv``: one row of per-parameter proposal sds, header of names;
 * ``draws.npz``: the proof runs' draws, one array per proposal shaped (chains, steps, d),
-  plus ``parameter_names``.
+  the pilot's stages one after another (``pilot``), plus ``parameter_names``.
 """
 
 from __future__ import annotations
@@ -25,6 +25,9 @@ SUPPORTED_SCHEMAS = ("walktune.advice/1",)
 def result_files(result) -> dict:
     names = result.parameter_names
     arrays = {name.replace("-", "_"): run.draws for name, run in result.runs.items()}
+    if result.pilot.all_draws:
+        # Every pilot stage in order (stages differ in proposal; see advice.json for the stages).
+        arrays["pilot"] = np.concatenate(result.pilot.all_draws, axis=1)
     arrays["parameter_names"] = np.array(names)
     return {
         "advice.json": json_bytes(result.to_dict()),

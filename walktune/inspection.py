@@ -74,6 +74,7 @@ class InspectionResult:
     sources: list = field(default_factory=list)
     warmup: int = 0
     thin: int = 1
+    chain_column: str | None = None
 
     def to_dict(self) -> dict:
         """advice.json payload, marked ``"source": "inspection"``."""
@@ -90,7 +91,7 @@ class InspectionResult:
             "schema": SCHEMA,
             "walktune_version": __version__,
             "source": "inspection",
-            "inspected_files": self.sources,
+            "inspected_files": [str(Path(p).resolve()) for p in self.sources],
             "partial": False,
             "seed": None,
             "parameter_names": names,
@@ -113,6 +114,7 @@ class InspectionResult:
                 "chains": s.n_chains,
                 "draws_per_chain": s.n_draws,
                 "warmup_dropped": self.warmup,
+                "chain_column": self.chain_column,
                 "thin": self.thin,
                 "acceptance_from_draws": self.move_rate,
                 "chain_acceptance_from_draws": self.chain_move_rate.tolist(),
@@ -218,6 +220,7 @@ def inspect(
     target_ess: float = DEFAULT_TARGET_ESS,
     target_mcse=None,
     sources=None,
+    chain_column: str | None = None,
 ) -> InspectionResult:
     """Diagnose existing draws and advise a proposal.
 
@@ -239,6 +242,8 @@ def inspect(
         ESS wanted per parameter.
     target_mcse : float or array-like, optional
         Wanted MCSE of each mean; overrides ``target_ess`` where it asks for more.
+    sources, chain_column : optional
+        Where the draws came from, recorded in advice.json so a report can read them again.
     """
     array = draws if isinstance(draws, np.ndarray) else np.asarray(draws)
     if array.dtype.kind not in "fiu":
@@ -347,4 +352,5 @@ def inspect(
         sources=list(sources or []),
         warmup=warmup,
         thin=thin,
+        chain_column=chain_column,
     )

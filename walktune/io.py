@@ -18,6 +18,12 @@ from pathlib import Path
 import numpy as np
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def atomic_write_bytes(path: Path, data: bytes) -> None:
     path = Path(path)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
@@ -26,6 +32,7 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
             handle.write(data)
             handle.flush()
             os.fsync(handle.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual permissions
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -76,6 +83,7 @@ def write_folder(directory: Path, files: dict) -> Path:
     try:
         for name, data in files.items():
             (staging / name).write_bytes(data)
+        os.chmod(staging, 0o777 & ~_umask())  # mkdtemp makes 0700
         os.replace(staging, directory)
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
