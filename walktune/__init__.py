@@ -13,6 +13,7 @@ from . import diagnostics
 from .engine import Chains, sample
 from .errors import SamplingError, TargetError, WalktuneError
 from .inspection import InspectionResult, inspect
+from .reparam import Reparam, load_reparam
 from .tune import TuneResult, tune
 
 __version__ = "0.1.0"
@@ -20,12 +21,14 @@ __version__ = "0.1.0"
 __all__ = [
     "Chains",
     "InspectionResult",
+    "Reparam",
     "SamplingError",
     "TargetError",
     "TuneResult",
     "WalktuneError",
     "diagnostics",
     "inspect",
+    "load_reparam",
     "sample",
     "tune",
     "__version__",

@@ -175,6 +175,7 @@ def sample(
     progress: Callable[[int, int], None] | None = None,
     max_failure_share: float = MAX_FAILURE_SHARE,
     start_log_density=None,
+    independent=None,
 ) -> Chains:
     """Run random-walk Metropolis chains with a fixed Gaussian proposal.
 
@@ -208,6 +209,11 @@ def sample(
     start_log_density : array-like of shape (chains,), optional
         The log-density at the start points when already known (continuing
         chains); they are then not evaluated again or counted.
+    independent : array-like of int, optional
+        Coordinates proposed afresh from ``N(0, proposal_cov[idx, idx])``
+        (an independence proposal) instead of by a random-walk step; the
+        Metropolis-Hastings ratio then includes the proposal densities. The
+        proposal covariance must not couple them with the other coordinates.
 
     Returns
     -------
@@ -244,6 +250,15 @@ def sample(
         )
 
     chol = np.linalg.cholesky(cov)
+    fresh = None
+    if independent is not None:
+        fresh = np.unique(np.asarray(independent, dtype=int))
+        others = np.setdiff1d(np.arange(dim), fresh)
+        if fresh.size and (fresh.min() < 0 or fresh.max() >= dim):
+            raise WalktuneError(f"`independent` indices must lie in 0..{dim - 1}.")
+        if np.any(cov[np.ix_(fresh, others)] != 0):
+            raise WalktuneError("`proposal_cov` must not couple independent coordinates with random-walk ones.")
+        fresh_precision = np.linalg.inv(cov[np.ix_(fresh, fresh)])
     streams = [np.random.Generator(np.random.PCG64(s)) for s in seed_seq.spawn(n_chains)]
     draws = np.empty((n_chains, steps, dim))
     lp_out = np.empty((n_chains, steps))
@@ -261,11 +276,19 @@ def sample(
         increments = z @ chol.T  # (block, chains, d)
         for t in range(block):
             proposal = current + increments[t]
+            correction = 0.0
+            if fresh is not None:
+                # Independence part: y = N(0, C) draw; ratio adds log q(x) - log q(y).
+                proposal[:, fresh] = increments[t][:, fresh]
+                old, new = current[:, fresh], proposal[:, fresh]
+                correction = 0.5 * (
+                    np.einsum("ij,jk,ik->i", new, fresh_precision, new) - np.einsum("ij,jk,ik->i", old, fresh_precision, old)
+                )
             result = evaluate(proposal)
             values = result.values
             if result.errors or not np.isfinite(values).all():
                 values = failures.record(np.asarray(values, dtype=float), result.errors, proposal)
-            accept = log_u[t] < values - current_lp
+            accept = log_u[t] < values - current_lp + correction
             current[accept] = proposal[accept]
             current_lp[accept] = values[accept]
             draws[:, done + t] = current

@@ -29,13 +29,16 @@ def result_files(result) -> dict:
         # Every pilot stage in order (stages differ in proposal; see advice.json for the stages).
         arrays["pilot"] = np.concatenate(result.pilot.all_draws, axis=1)
     arrays["parameter_names"] = np.array(names)
-    return {
+    files = {
         "advice.json": json_bytes(result.to_dict()),
         "proposal_covariance.npy": npy_bytes(result.proposal_covariance),
         "proposal_covariance.csv": csv_bytes(result.proposal_covariance, names),
         "step_sizes.csv": csv_bytes(result.step_sizes[None, :], names),
         "draws.npz": npz_bytes(arrays),
     }
+    if result.reparam is not None:
+        files["reparam.json"] = json_bytes(result.reparam.to_dict())
+    return files
 
 
 def load_advice(path) -> dict:

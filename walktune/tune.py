@@ -18,7 +18,7 @@ Every figure in the comparison comes from fixed-proposal chains.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable
 
@@ -53,6 +53,7 @@ from .findings import (
 )
 from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
+from .reparam import build_reparam, curved_ridge_findings
 
 #: Default ESS the user wants, for the "evaluations needed" advice; 400 over
 #: all chains is common practice (Vehtari et al. 2021 suggest 100 per chain).
@@ -186,6 +187,94 @@ class _Counted:
         return value if np.isfinite(value) or value == -np.inf else -np.inf
 
 
+class _SamplerSpaceEvaluator:
+    """Evaluates the posterior of z = sampler coordinates through the user's evaluator."""
+
+    def __init__(self, counted: _Counted, reparam):
+        self.counted = counted
+        self.reparam = reparam
+
+    def __call__(self, points: np.ndarray) -> BatchResult:
+        with np.errstate(over="ignore", invalid="ignore"):
+            theta = self.reparam.from_sampler(points)
+            jacobian = self.reparam.log_jacobian(points)
+        ok = np.all(np.isfinite(theta), axis=1) & np.isfinite(jacobian)
+        values = np.full(points.shape[0], -np.inf)
+        errors = {}
+        if ok.any():
+            index = np.flatnonzero(ok)
+            inner = self.counted(theta[index])
+            values[index] = inner.values + jacobian[index]
+            errors = {int(index[k]): v for k, v in inner.errors.items()}
+        return BatchResult(values, errors)
+
+
+class _PriorTerms:
+    """A prior given apart from the likelihood: its log-density and its covariance."""
+
+    def __init__(self, log_prior, specs, names, bounds, vectorized):
+        self.log_prior = log_prior
+        self.names = names
+        self.bounds = bounds
+        self.vectorized = vectorized
+        self.specs = {}
+        for key, spec in (specs or {}).items():
+            if key not in names:
+                raise WalktuneError(f"prior given for unknown parameter {key!r}; known: {', '.join(names)}.")
+            try:
+                kind, a, b = spec[0], float(spec[1]), float(spec[2])
+            except (TypeError, ValueError, IndexError):
+                raise WalktuneError(f"prior for {key} must be ('normal', mean, sd) or ('uniform', low, high).") from None
+            if kind not in ("normal", "uniform") or not (b > 0 if kind == "normal" else b > a):
+                raise WalktuneError(f"prior for {key} must be ('normal', mean, sd > 0) or ('uniform', low < high).")
+            self.specs[names.index(key)] = (kind, a, b)
+
+    def _spec_log_density(self, theta: np.ndarray) -> np.ndarray:
+        theta = np.atleast_2d(theta)
+        total = np.zeros(theta.shape[0])
+        for i, (kind, a, b) in self.specs.items():
+            if kind == "normal":
+                total += -0.5 * ((theta[:, i] - a) / b) ** 2
+            else:
+                total += np.where((theta[:, i] > a) & (theta[:, i] < b), 0.0, -np.inf)
+        return total
+
+    def posterior(self, log_likelihood):
+        def log_posterior(theta):
+            theta = np.asarray(theta, dtype=float)
+            extra = self._spec_log_density(theta)
+            if self.log_prior is not None:
+                extra = extra + np.asarray(self.log_prior(theta), dtype=float).reshape(-1)
+            value = np.asarray(log_likelihood(theta), dtype=float).reshape(-1) + extra
+            return value if self.vectorized else float(value[0])
+
+        return log_posterior
+
+    def covariance(self, centre: np.ndarray, posterior_sd: np.ndarray) -> np.ndarray:
+        """Prior covariance: from specs; from the log-prior's Hessian at ``centre``; else very wide."""
+        d = centre.shape[0]
+        variance = np.full(d, np.inf)
+        for i, (kind, a, b) in self.specs.items():
+            variance[i] = b**2 if kind == "normal" else (b - a) ** 2 / 12
+        cov = np.diag(np.where(np.isfinite(variance), variance, 0.0))
+        if self.log_prior is not None:
+            from .mode import finite_difference_hessian, laplace_covariance
+
+            def value(theta):
+                out = np.asarray(self.log_prior(theta[None, :] if self.vectorized else theta), dtype=float).reshape(-1)[0]
+                return float(out)
+
+            hessian = finite_difference_hessian(value, centre, np.maximum(posterior_sd, 1e-12))
+            laplace = laplace_covariance(hessian)
+            if laplace is not None:
+                return laplace
+        width = self.bounds[:, 1] - self.bounds[:, 0]
+        fallback = np.where(np.isfinite(width), width**2 / 12, 1e8 * posterior_sd**2)
+        missing = ~np.isfinite(variance)
+        cov[missing, missing] = fallback[missing]
+        return cov
+
+
 # --------------------------------------------------------------------------- results
 
 
@@ -266,6 +355,7 @@ class TuneResult:
     seed: object = None
     partial: bool = False
     regions: list = field(default_factory=list)
+    reparam: object = None
 
     @property
     def slowdowns(self) -> dict:
@@ -328,6 +418,11 @@ class TuneResult:
                 }
                 for r in self.regions
             ],
+            "reparameterisation": None if self.reparam is None else {
+                "transforms": {t.name: t.kind for t in self.reparam.transforms},
+                "informed_dimension": self.reparam.informed,
+                "file": "reparam.json",
+            },
             "findings": [f.to_dict() for f in self.findings],
             "caution": CAUTION,
         }
@@ -468,6 +563,10 @@ def tune(
     target_ess: int = DEFAULT_TARGET_ESS,
     evaluator=None,
     progress: Callable[[str, float, float], None] | None = None,
+    log_prior: Callable | None = None,
+    prior: dict | None = None,
+    transforms: dict | None = None,
+    forbid_transforms=None,
 ) -> TuneResult:
     """Tune a random-walk Metropolis proposal for ``log_density`` and prove the gain.
 
@@ -498,6 +597,18 @@ def tune(
         Batch evaluator (see :mod:`walktune.evaluators`); default in-process.
     progress : callable, optional
         ``progress(stage, done, total)``, called as stages advance.
+    log_prior : callable, optional
+        A log-prior given apart from the likelihood; ``log_density`` is then the
+        log-likelihood and the posterior is their sum. Enables the
+        likelihood-informed subspace and the reduced-basis sampler.
+    prior : dict, optional
+        Prior specs instead: ``{name: ("normal", mean, sd) or ("uniform", low, high)}``;
+        ``log_density`` is then the log-likelihood. Parameters without a spec
+        get a flat prior.
+    transforms : dict, optional
+        ``{name: kind}`` forcing a transform (identity, log, neglog, logit).
+    forbid_transforms : list of str, optional
+        Transform kinds never to choose.
 
     Returns
     -------
@@ -527,6 +638,17 @@ def tune(
         raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
     seed_seq = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
     mode_seed, pilot_seed, proof_seed = seed_seq.spawn(3)
+    prior_terms = None
+    if log_prior is not None or prior is not None:
+        if evaluator is not None:
+            raise WalktuneError("give the prior inside the log-density when using a custom evaluator.")
+        prior_terms = _PriorTerms(log_prior, prior, names, bound_array, vectorized)
+        log_density = prior_terms.posterior(log_density)
+    if transforms:
+        from .reparam import choose_transforms
+
+        # Check forced transforms against the bounds now, before any evaluation.
+        choose_transforms(np.tile(start, (3, 1)) + np.arange(3)[:, None] * 0.0, names, bound_array, transforms, forbid_transforms)
     base = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
     counted = _Counted(base, bound_array)
     report = progress or (lambda *args: None)
@@ -563,7 +685,6 @@ def tune(
         pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
         state_log_density=state_values, within_chains=len(centres) > 1,
     )
-    pilot_evaluations = counted.count
     covariance = pilot.covariance
 
     # 3-4. Structure and advice.
@@ -573,13 +694,49 @@ def tune(
         advice.proposal_covariance, advice.step_sizes, advice.single_step, advice.slowdowns
     )
 
+    # 4b. Reparameterisation: transforms, rotated basis, informed split, and a
+    # short adaptive pilot in the new coordinates (fixed-proposal stages).
+    reparam, ridge_findings, z_plan = None, [], []
+    pooled = pilot.draws.reshape(-1, dim) if pilot.draws is not None else pilot.states
+    try:
+        prior_cov = prior_terms.covariance(fit.mode, np.sqrt(np.diag(covariance))) if prior_terms else None
+        reparam = build_reparam(pooled, names, bound_array, prior_covariance=prior_cov,
+                                force=transforms, forbid=forbid_transforms)
+    except (WalktuneError, np.linalg.LinAlgError, ValueError) as error:
+        ridge_findings.append(Finding("undecided", "info", [], f"no reparameterisation: {error}", {}))
+    if reparam is not None:
+        ridge_findings += curved_ridge_findings(pooled, reparam, names)
+        transformed = any(t.kind != "identity" for t in reparam.transforms)
+        reduced = prior_terms is not None and 0 < reparam.informed < dim
+        if transformed or reduced:
+            z_budget = pilot_budget // 2 if budget is None else min(pilot_budget // 2, max(0, (budget - counted.count) // 5))
+            z_evaluator = _SamplerSpaceEvaluator(counted, reparam)
+            z_pilot = run_pilot(
+                None, reparam.to_sampler(pilot.states), np.eye(dim), max(z_budget, 2 * n_chains * max(50, 10 * dim)),
+                proof_seed.spawn(1)[0], evaluator=z_evaluator,
+                progress=lambda done, total: report("pilot in new coordinates", done, total),
+            )
+            old_map = reparam
+            reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov)
+            z_states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
+            if transformed:
+                z_plan.append(("transformed-rotated", "random walk in the transformed, whitened coordinates",
+                               (z_pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * np.eye(dim), None))
+            if reduced:
+                r = reparam.informed
+                diag = np.r_[np.full(r, theory.optimal_scale(r) ** 2), np.ones(dim - r)]
+                z_plan.append(("reduced-basis", f"random walk in the {r} informed directions, independence proposals "
+                               "from the fitted Gaussian in the others", np.diag(diag), np.arange(r, dim)))
+    pilot_evaluations = counted.count
+
     # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
     # Evaluations kept back for the mode checks after the proof runs.
     detection_reserve = 5 * 60 * (dim + 1) + 200 + (2 * dim * (2 * dim + 1) if dim <= MAX_CURVATURE_PROBE_DIM else 0)
+    n_runs = 3 + len(z_plan)
     if budget is not None:
         detection_reserve = min(detection_reserve, budget // 10)
-        # What the mode search and pilot left, shared equally by the three runs.
-        proof_steps = max(50, (budget - counted.count - detection_reserve) // (3 * n_chains))
+        # What the mode search and pilots left, shared equally by the runs.
+        proof_steps = max(50, (budget - counted.count - detection_reserve) // (n_runs * n_chains))
     if current is not None:
         baseline_name, baseline_cov, baseline_text = "current", current, "the proposal you use now"
         baseline_predicted = slowdowns["current"]["slowest"]
@@ -600,11 +757,21 @@ def tune(
         runs[name] = run
         rows.append(_row_from_run(name, text, run, predicted, rows[0] if rows else None))
 
+    tuned_row = rows[-1]
+    if z_plan:
+        z_evaluator = _SamplerSpaceEvaluator(counted, reparam)
+        for (name, text, cov, fresh), child in zip(z_plan, proof_seed.spawn(len(z_plan))):
+            run = sample(None, z_states, cov, proof_steps, seed=child, evaluator=z_evaluator, independent=fresh,
+                         progress=lambda done, total, name=name: report(name, done, total))
+            # Measured in the user's own parameters.
+            run = replace(run, draws=reparam.from_sampler(run.draws))
+            runs[name] = run
+            rows.append(_row_from_run(name, text, run, float("nan"), rows[0]))
     tuned = runs["tuned-covariance"]
     posterior_mean = tuned.draws.reshape(-1, dim).mean(axis=0)
     mcse = np.asarray(mcse_mean(tuned.draws))
     tuned_rhat = rhat(tuned.draws)
-    tau_max = rows[-1].iact_max
+    tau_max = tuned_row.iact_max
 
     # 6. Findings.
     findings: list[Finding] = []
@@ -637,7 +804,8 @@ def tune(
     for note in (undecided_modes, undecided_scale):
         if note:
             findings.append(Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {}))
-    if not rows[-1].ess_reliable:
+    findings += ridge_findings
+    if not tuned_row.ess_reliable:
         findings.append(
             Finding(
                 "short-chains", "warn", [],
@@ -695,4 +863,5 @@ def tune(
         current_proposal=current,
         seed=seed_seq.entropy,
         regions=regions if len(regions) > 1 else [],
+        reparam=reparam,
     )
