@@ -302,7 +302,7 @@ class Reparam:
 
         return log_density_z
 
-    def refit(self, mean_z: np.ndarray, cov_z: np.ndarray, prior_covariance=None) -> "Reparam":
+    def refit(self, mean_z: np.ndarray, cov_z: np.ndarray, prior_covariance=None, n_independent=None) -> "Reparam":
         """The same transforms with the u-space mean and covariance re-estimated from z draws.
 
         With z draws of mean ``mean_z`` and covariance ``cov_z``, u has mean
@@ -310,7 +310,7 @@ class Reparam:
         """
         mean_u = self.mean + self._map @ mean_z
         cov_u = self._map @ cov_z @ self._map.T
-        return fit_map(self.parameter_names, self.transforms, mean_u, cov_u, prior_covariance)
+        return fit_map(self.parameter_names, self.transforms, mean_u, cov_u, prior_covariance, n_independent)
 
     def to_dict(self) -> dict:
         return {
@@ -389,13 +389,27 @@ def load_reparam(path, names=None) -> Reparam:
                    None if ratio is None else np.asarray(ratio, dtype=float), list(payload.get("notes", [])))
 
 
-def build_reparam(draws: np.ndarray, names: list, bounds: np.ndarray, *, prior_covariance=None, force=None, forbid=None) -> Reparam:
+def build_reparam(
+    draws: np.ndarray,
+    names: list,
+    bounds: np.ndarray,
+    *,
+    prior_covariance=None,
+    force=None,
+    forbid=None,
+    covariance=None,
+    n_independent=None,
+) -> Reparam:
     """Fit the map from pilot draws (n, d): transforms, mean, Cholesky factor, and the informed split.
 
     ``prior_covariance`` (d, d) is the prior covariance of theta; with it the
     informed subspace is computed (in u-space the prior covariance is mapped
     through the transforms' derivatives at the posterior mean, exact for
-    identity transforms).
+    identity transforms). ``covariance``, a better estimate of the posterior
+    covariance of theta than the draws' (e.g. the pilot's shrinkage
+    estimate), is used when every transform is the identity.
+    ``n_independent`` (roughly independent draws behind the covariance) makes
+    the informed split allow for sampling noise.
     """
     choices = choose_transforms(draws, names, bounds, force, forbid)
     kinds = [c.kind for c in choices]
@@ -404,10 +418,25 @@ def build_reparam(draws: np.ndarray, names: list, bounds: np.ndarray, *, prior_c
     u = np.column_stack([forward(k, draws[:, i], low[i], high[i]) for i, k in enumerate(kinds)])
     if not np.all(np.isfinite(u)):
         raise WalktuneError("pilot draws lie on a bound, where a transform is infinite; move the start off the bound.")
-    return fit_map(list(names), choices, u.mean(axis=0), np.atleast_2d(np.cov(u.T)), prior_covariance)
+    cov_u = np.atleast_2d(np.cov(u.T))
+    if covariance is not None and all(k == "identity" for k in kinds):
+        cov_u = np.asarray(covariance, dtype=float)
+    return fit_map(list(names), choices, u.mean(axis=0), cov_u, prior_covariance, n_independent)
 
 
-def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None) -> Reparam:
+def informed_threshold(n_independent=None) -> float:
+    """Posterior/prior variance ratio below which a direction counts as informed.
+
+    :data:`PRIOR_DOMINATED` (0.9), lowered by three standard errors of a
+    variance estimated from ``n_independent`` draws (``sqrt(2 / n)``), so that
+    sampling noise does not make prior-dominated directions look informed.
+    """
+    if not n_independent:
+        return PRIOR_DOMINATED
+    return float(min(PRIOR_DOMINATED, max(0.5, 1.0 - 3.0 * np.sqrt(2.0 / n_independent))))
+
+
+def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None) -> Reparam:
     """The map for given transforms, u-space mean and covariance, and (optionally) the prior covariance of theta."""
     kinds = [c.kind for c in choices]
     low = np.array([c.low for c in choices])
@@ -426,9 +455,10 @@ def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior
         order = np.argsort(-c)  # widest prior (most informed) first
         c, vectors = c[order], vectors[:, order]
         ratio = 1.0 / np.maximum(c, 1e-300)
-        informed = int(np.sum(ratio < PRIOR_DOMINATED))
+        threshold = informed_threshold(n_independent)
+        informed = int(np.sum(ratio < threshold))
         rotation = vectors
-        notes.append(f"likelihood-informed subspace: {informed} of {d} directions (posterior/prior variance < {PRIOR_DOMINATED}); "
+        notes.append(f"likelihood-informed subspace: {informed} of {d} directions (posterior/prior variance < {threshold:.2f}); "
                      f"prior covariance mapped at theta = {np.array2string(theta_mean, precision=4)}")
     return Reparam(list(names), list(choices), mean, chol, rotation, informed, ratio, notes)
 

@@ -700,8 +700,9 @@ def tune(
     pooled = pilot.draws.reshape(-1, dim) if pilot.draws is not None else pilot.states
     try:
         prior_cov = prior_terms.covariance(fit.mode, np.sqrt(np.diag(covariance))) if prior_terms else None
-        reparam = build_reparam(pooled, names, bound_array, prior_covariance=prior_cov,
-                                force=transforms, forbid=forbid_transforms)
+        n_independent = pooled.shape[0] / max(1.0, within_chain_iact(pilot.draws)) if pilot.draws is not None else None
+        reparam = build_reparam(pooled, names, bound_array, prior_covariance=prior_cov, force=transforms,
+                                forbid=forbid_transforms, covariance=covariance, n_independent=n_independent)
     except (WalktuneError, np.linalg.LinAlgError, ValueError) as error:
         ridge_findings.append(Finding("undecided", "info", [], f"no reparameterisation: {error}", {}))
     if reparam is not None:
@@ -717,7 +718,7 @@ def tune(
                 progress=lambda done, total: report("pilot in new coordinates", done, total),
             )
             old_map = reparam
-            reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov)
+            reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov, n_independent)
             z_states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
             if transformed:
                 z_plan.append(("transformed-rotated", "random walk in the transformed, whitened coordinates",
