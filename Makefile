@@ -26,6 +26,7 @@ bench: $(STAMP)
 	$(PY) benchmarks/bench_tuning.py
 	$(PY) benchmarks/bench_inspect.py
 	$(PY) benchmarks/bench_report.py
+	$(PY) benchmarks/bench_reparam.py
 
 clean:
 	rm -rf $(VENV) walktune-demo .pytest_cache

@@ -112,6 +112,8 @@ def _run_tune(
     as_json: bool,
     quiet: bool,
     report: bool = False,
+    transform: Optional[List[str]] = None,
+    no_transform: Optional[List[str]] = None,
 ) -> None:
     from .console import StageProgress, render
     from .target import load_target
@@ -151,6 +153,12 @@ def _run_tune(
         if unknown:
             raise WalktuneError(f"bounds name unknown parameter {unknown[0]!r}; known: {', '.join(names_list)}.")
     proposal = _read_proposal(current_proposal) if current_proposal is not None else None
+    forced = dict(spec.transforms)
+    for text in transform or []:
+        key, sep, kind = text.partition("=")
+        if not sep or not key.strip() or not kind.strip():
+            raise WalktuneError(f"--transform {text!r} must look like NAME=KIND (identity, log, neglog or logit).")
+        forced[key.strip()] = kind.strip()
     if out.exists() and not out.is_dir():
         raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
 
@@ -159,6 +167,8 @@ def _run_tune(
             spec.function, start_values, names=names_list, bounds=bound_map or None,
             current_proposal=proposal, budget=budget, chains=chains, seed=seed,
             vectorized=spec.vectorized, target_ess=target_ess, progress=progress,
+            log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
+            forbid_transforms=list(no_transform or []) or None,
         )
     result.save(out)
     if report:
@@ -190,10 +200,13 @@ def tune_command(
     as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress; write the output folder only."),
     report: bool = typer.Option(False, "--report", help="Also write figures and report.html into the output folder."),
+    transform: List[str] = typer.Option([], "--transform", help="NAME=KIND forces a transform (identity, log, neglog, logit); repeatable."),
+    no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose; repeatable."),
 ):
     """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison."""
     try:
-        _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet, report)
+        _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
+                  report, transform, no_transform)
     except WalktuneError as error:
         _fail(str(error))
     except OSError as error:

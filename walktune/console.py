@@ -139,7 +139,16 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
             "your proposal",
             f"predicted {cur['slowest']:.1f}x slower as it is; {res['slowest']:.1f}x if only its overall scale were tuned",
         )
-    table.add_row("rotated basis", "z = W^-1 (theta - mean), W = Cholesky factor of the posterior covariance (advice.json: rotation)")
+    reparam = result.reparam
+    if reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
+        chosen = ", ".join(f"{t.kind}({t.name})" for t in reparam.transforms if t.kind != "identity")
+        table.add_row("new coordinates", f"sample z = Q^T W^-1 (T(theta) - m) with T: {chosen}; the map is in reparam.json "
+                      "(walktune.load_reparam); see the transformed-rotated row below")
+    else:
+        table.add_row("rotated basis", "z = W^-1 (theta - mean), W = Cholesky factor of the posterior covariance (advice.json: rotation)")
+    if reparam is not None and reparam.prior_variance_ratio is not None:
+        table.add_row("informed directions", f"{reparam.informed} of {len(result.parameter_names)} directions are informed by the "
+                      "data; the others stay close to the prior (reduced-basis row below)")
     table.add_row("warm-up", f"about {result.warmup_steps} steps per chain from a start near the mode (10 x slowest IACT)")
     table.add_row(
         "thinning",

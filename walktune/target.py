@@ -11,6 +11,15 @@ command line uses unless its options override them:
     ``{name: (low, high)}``; use ``None`` or ``float("inf")`` for an open side.
 ``VECTORIZED``
     True when the function takes an (n, d) batch and returns (n,) values.
+``LOG_PRIOR``
+    The name of a function in the same file giving the log-prior; the target
+    function is then the log-likelihood (enables the likelihood-informed
+    subspace and the reduced-basis sampler).
+``PRIOR``
+    Instead of ``LOG_PRIOR``: ``{name: ("normal", mean, sd) or ("uniform", low, high)}``;
+    the target function is then the log-likelihood.
+``TRANSFORMS``
+    ``{name: kind}`` forcing a transform (identity, log, neglog, logit).
 """
 
 from __future__ import annotations
@@ -39,6 +48,9 @@ class ModelSpec:
     start: np.ndarray | None = None
     bounds: dict = field(default_factory=dict)
     vectorized: bool = False
+    log_prior: Callable | None = None
+    prior: dict | None = None
+    transforms: dict = field(default_factory=dict)
 
 
 def _import_file(path: Path):
@@ -110,4 +122,11 @@ def load_target(target: str) -> ModelSpec:
         spec.start = np.atleast_1d(np.asarray(start, dtype=float))
     spec.bounds = dict(getattr(module, "BOUNDS", {}) or {})
     spec.vectorized = bool(getattr(module, "VECTORIZED", False))
+    prior_name = getattr(module, "LOG_PRIOR", None)
+    if prior_name is not None:
+        spec.log_prior = getattr(module, str(prior_name), None)
+        if not callable(spec.log_prior):
+            raise TargetError(f"LOG_PRIOR names {prior_name!r}, which is not a function in {where}.")
+    spec.prior = getattr(module, "PRIOR", None)
+    spec.transforms = dict(getattr(module, "TRANSFORMS", {}) or {})
     return spec

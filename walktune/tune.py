@@ -195,9 +195,10 @@ class _SamplerSpaceEvaluator:
         self.reparam = reparam
 
     def __call__(self, points: np.ndarray) -> BatchResult:
-        with np.errstate(over="ignore", invalid="ignore"):
-            theta = self.reparam.from_sampler(points)
-            jacobian = self.reparam.log_jacobian(points)
+        theta, jacobian = self.reparam.from_sampler_with_jacobian(points)
+        if np.isfinite(jacobian.sum() + theta.sum()):  # the usual case: every point maps to a finite theta
+            inner = self.counted(theta)
+            return BatchResult(inner.values + jacobian, inner.errors)
         ok = np.all(np.isfinite(theta), axis=1) & np.isfinite(jacobian)
         values = np.full(points.shape[0], -np.inf)
         errors = {}
