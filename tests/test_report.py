@@ -170,3 +170,25 @@ def test_report_flags_on_tune_and_inspect(tmp_path):
     assert result.exit_code == 0 and (tmp_path / "i" / "report.html").exists()
     result = runner.invoke(app, ["inspect", str(tmp_path / "d.npy"), "--report"])
     assert result.exit_code == 2 and "--out" in result.output
+
+
+def test_pairs_figure_shows_the_transformed_coordinates_when_chosen(tmp_path):
+    from walktune.reparam import forward
+
+    def log_density(theta):
+        a, e = theta
+        if a <= 0 or not 0 < e < 1:
+            return -np.inf
+        return -0.5 * (np.log(a * e / 10.0) / 0.05) ** 2 - 0.5 * (np.log(a / 40.0) / 0.5) ** 2
+
+    result = walktune.tune(log_density, [40.0, 0.25], names=["a", "e"], bounds={"a": (0, np.inf), "e": (0, 1)},
+                           seed=1, budget=40_000, transforms={"a": "log", "e": "logit"})
+    folder = result.save(tmp_path / "out")
+    run = load_run(folder)
+    fig = build_figures(run)["pairs"]
+    lower = fig.axes[1]
+    assert lower.get_xlabel() == "log(a)" and lower.get_ylabel() == "logit(e)"
+    flat = run.draws["tuned-covariance"].reshape(-1, 2)
+    stride = int(np.ceil(flat.shape[0] / 2000))
+    expected = np.column_stack([forward("log", flat[::stride, 0], 0, np.inf), forward("logit", flat[::stride, 1], 0, 1)])
+    np.testing.assert_allclose(np.asarray(lower.collections[0].get_offsets()), expected)

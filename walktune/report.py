@@ -61,6 +61,7 @@ class Run:
     main: str  # label of the draws that describe the posterior
     baseline: str | None
     notes: list = field(default_factory=list)
+    reparam: object = None
 
     @property
     def partial(self) -> bool:
@@ -105,7 +106,12 @@ def load_run(folder) -> Run:
     if "tuned-covariance" not in labels:
         raise WalktuneError(f"{path} has no tuned-covariance run; re-run `walktune tune`.")
     baseline = next((k for k in ("current", "single-step") if k in labels), None)
-    return Run(folder, advice, names, labels, "tuned-covariance", baseline)
+    reparam = None
+    if (folder / "reparam.json").exists():
+        from .reparam import load_reparam
+
+        reparam = load_reparam(folder, names=names)
+    return Run(folder, advice, names, labels, "tuned-covariance", baseline, reparam=reparam)
 
 
 def _thin(n: int, limit: int) -> int:
@@ -179,22 +185,41 @@ def figure_pairs(run: Run):
     draws = run.draws[run.main]
     flat = draws.reshape(-1, draws.shape[2])
     step = _thin(flat.shape[0], MAX_SCATTER_POINTS)
-    points = flat[::step]
-    fig, axes = plt.subplots(1, len(pairs), figsize=(3.6 * len(pairs), 3.6), squeeze=False)
-    for ax, (i, j, rho) in zip(axes[0], pairs):
-        ax.scatter(points[:, i], points[:, j], s=3, alpha=0.35, color="#1b6b93", edgecolors="none")
-        sub = np.cov(flat[:, [i, j]].T)
-        values, vectors = np.linalg.eigh(sub)
-        centre = flat[:, [i, j]].mean(axis=0)
-        for value, vector, colour in zip(values, vectors.T, ("#b23a48", "#c4661f")):
-            end = 2 * np.sqrt(max(value, 0)) * vector
-            ax.plot([centre[0] - end[0], centre[0] + end[0]], [centre[1] - end[1], centre[1] + end[1]], color=colour, lw=1.6)
-        ax.set_xlabel(run.names[i])
-        ax.set_ylabel(run.names[j])
-        ax.set_title(f"correlation {rho:+.3f}")
-        if step > 1:
-            _note(ax, f"1 in {step} draws drawn")
-    fig.suptitle("Most strongly correlated pairs, with principal axes (+/- 2 sd)", fontsize=10)
+    rows = [("", flat)]
+    transforms = run.reparam.transforms if run.reparam is not None else []
+    if any(t.kind != "identity" for t in transforms):
+        from .reparam import forward
+
+        with np.errstate(divide="ignore", invalid="ignore"):
+            u = np.column_stack([forward(t.kind, flat[:, i], t.low, t.high) for i, t in enumerate(transforms)])
+        rows.append(("transformed: ", u))
+    fig, axes = plt.subplots(len(rows), len(pairs), figsize=(3.6 * len(pairs), 3.6 * len(rows)), squeeze=False)
+    for r, (prefix, values) in enumerate(rows):
+        points = values[::step]
+        for ax, (i, j, _) in zip(axes[r], pairs):
+            ax.scatter(points[:, i], points[:, j], s=3, alpha=0.35, color="#1b6b93", edgecolors="none")
+            sub = np.cov(values[:, [i, j]].T)
+            eigenvalues, vectors = np.linalg.eigh(sub)
+            centre = values[:, [i, j]].mean(axis=0)
+            for value, vector, colour in zip(eigenvalues, vectors.T, ("#b23a48", "#c4661f")):
+                end = 2 * np.sqrt(max(value, 0)) * vector
+                ax.plot([centre[0] - end[0], centre[0] + end[0]], [centre[1] - end[1], centre[1] + end[1]], color=colour, lw=1.6)
+            kinds = {k.name: k.kind for k in transforms}
+
+            def label(name):
+                kind = kinds.get(name, "identity")
+                return f"{kind}({name})" if prefix and kind != "identity" else name
+
+            ax.set_xlabel(label(run.names[i]))
+            ax.set_ylabel(label(run.names[j]))
+            rho = np.corrcoef(values[:, i], values[:, j])[0, 1]
+            ax.set_title(f"{prefix}correlation {rho:+.3f}")
+            if step > 1:
+                _note(ax, f"1 in {step} draws drawn")
+    title = "Strongest pairs, principal axes +/- 2 sd"
+    if len(rows) > 1:
+        title += "\nbelow: the same pairs in the chosen transformed coordinates"
+    fig.suptitle(title, fontsize=10)
     fig.tight_layout()
     return fig
 
