@@ -21,7 +21,6 @@ from walktune.errors import WalktuneError
 from walktune.reparam import (
     KINDS,
     TransformChoice,
-    build_reparam,
     forward,
     inverse,
     load_reparam,

@@ -16,7 +16,7 @@ Sources:
 
 import numpy as np
 import pytest
-from scipy import special, stats
+from scipy import stats
 from sklearn.datasets import load_breast_cancer, load_diabetes
 from sklearn.linear_model import LogisticRegression
 

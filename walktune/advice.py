@@ -85,3 +85,15 @@ def advice_payload(advice: Advice, structure: Structure, names: list) -> dict:
         "variance_inflation": dict(zip(names, structure.vif.tolist())),
         "predicted_slowdown": advice.slowdowns,
     }
+
+
+def warmup_and_thinning(iact_max: float) -> tuple:
+    """Warm-up steps and a thinning interval from the slowest IACT (common practice).
+
+    Warm-up: about ten of the slowest autocorrelation times from a start near
+    the mode. Thinning never adds information; keeping every ``IACT / 2``-th
+    draw loses little ESS when storage matters. ``(None, 1)`` when the IACT is unknown.
+    """
+    if not np.isfinite(iact_max):
+        return None, 1
+    return int(np.ceil(10 * iact_max)), max(1, int(np.floor(iact_max / 2)))

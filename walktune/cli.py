@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 from typing import List, Optional
 
@@ -31,6 +32,17 @@ def _console(stderr: bool = False) -> Console:
 def _fail(message: str, code: int = 2) -> None:
     _console(stderr=True).print(f"[bold red]error:[/bold red] {message}", highlight=False, soft_wrap=True)
     raise typer.Exit(code)
+
+
+@contextmanager
+def _user_errors(doing: str):
+    """Turn the library's user errors and file errors into one-line messages and exit code 2."""
+    try:
+        yield
+    except WalktuneError as error:
+        _fail(str(error))
+    except OSError as error:
+        _fail(f"cannot {doing}: {error.strerror or error} ({error.filename})")
 
 
 def _version(value: bool):
@@ -204,13 +216,9 @@ def tune_command(
     no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose; repeatable."),
 ):
     """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison."""
-    try:
+    with _user_errors("write outputs"):
         _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
                   report, transform, no_transform)
-    except WalktuneError as error:
-        _fail(str(error))
-    except OSError as error:
-        _fail(f"cannot write outputs: {error.strerror or error} ({error.filename or out})")
 
 
 @app.command("inspect")
@@ -234,7 +242,7 @@ def inspect_command(
     from .console import render_inspection
     from .inspection import inspect
 
-    try:
+    with _user_errors("read or write"):
         data = read_chains(files, chain_column=chain_column)
         chosen = _split_list(params, "params")
         current = _read_proposal(proposal) if proposal is not None else None
@@ -256,10 +264,6 @@ def inspect_command(
             typer.echo(json.dumps(result.to_dict(), indent=2))
         else:
             render_inspection(_console(), result, str(out) if out else None)
-    except WalktuneError as error:
-        _fail(str(error))
-    except OSError as error:
-        _fail(f"cannot read or write: {error.strerror or error} ({error.filename})")
 
 
 @app.command("report")
@@ -269,13 +273,9 @@ def report_command(
     """Write PNG figures and a self-contained report.html into FOLDER."""
     from .report import write_report
 
-    try:
+    with _user_errors("write the report"):
         page = write_report(folder)
         _console().print(f"wrote {page} and its figures")
-    except WalktuneError as error:
-        _fail(str(error))
-    except OSError as error:
-        _fail(f"cannot write the report: {error.strerror or error} ({error.filename})")
 
 
 @app.command("demo")
@@ -285,12 +285,10 @@ def demo_command(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress."),
 ):
     """Run the whole job on a bundled demo model (a sensor calibration with correlated parameters)."""
-    try:
+    with _user_errors("write outputs"):
         if not DEMO_MODEL.exists():
             raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune from its repository.")
         _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet, report=True)
-    except WalktuneError as error:
-        _fail(str(error))
 
 
 @app.command("export")
@@ -304,14 +302,12 @@ def export_command(
     """Convert the tuned proposal in advice.json to .npy, .csv, a small .json or a Python module."""
     from .export import EXPORT_FORMATS, export_advice
 
-    try:
+    with _user_errors("export"):
         chosen = fmt or {".npy": "npy", ".csv": "csv", ".json": "json", ".py": "python"}.get(to.suffix)
         if chosen is None:
             raise WalktuneError(f"cannot tell the format from {to.name!r}; give --format ({', '.join(EXPORT_FORMATS)}).")
         path = export_advice(source, to, chosen)
         _console().print(f"wrote {path}")
-    except WalktuneError as error:
-        _fail(str(error))
 
 
 def main() -> None:

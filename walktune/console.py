@@ -6,7 +6,7 @@ Only the command-line layer imports this module; the library never prints.
 from __future__ import annotations
 
 import numpy as np
-from rich.console import Console, Group
+from rich.console import Console
 from rich.panel import Panel
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 from rich.table import Table

@@ -17,7 +17,7 @@ import numpy as np
 
 from . import theory
 from ._validation import as_covariance
-from .advice import Advice, advice_payload, advise
+from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
 from .diagnostics import Summary, summary
 from .errors import WalktuneError
@@ -100,8 +100,8 @@ class InspectionResult:
             "posterior_mean": s.mean.tolist(),
             "posterior_mean_mcse": clean(s.mcse),
             **advice_payload(self.advice, self.structure, names),
-            "warmup_steps": int(np.ceil(10 * tau_max)) if np.isfinite(tau_max) else None,
-            "thinning": max(1, int(np.floor(tau_max / 2))) if np.isfinite(tau_max) else 1,
+            "warmup_steps": warmup_and_thinning(tau_max)[0],
+            "thinning": warmup_and_thinning(tau_max)[1],
             "target_ess": self.target_ess,
             "evaluations_needed": {"observed": float(np.nanmax(self.more_draws_observed)),
                                    "tuned-covariance": float(np.nanmax(self.more_draws_advised))},

@@ -25,12 +25,12 @@ from typing import Callable
 import numpy as np
 
 from . import theory
-from .advice import Advice, advice_payload, advise
+from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from ._validation import as_covariance, as_float_array, check_finite
 from .analysis import Structure, analyse
 from .diagnostics import bulk_ess, iact, mcse_mean, rhat
 from .engine import sample
-from .errors import SamplingError, TargetError, WalktuneError
+from .errors import TargetError, WalktuneError
 from .evaluators import BatchResult, InProcessEvaluator
 from .geometry import (
     boundary_findings,
@@ -856,9 +856,8 @@ def tune(
         total_evaluations=total,
         seconds_per_evaluation=counted.seconds / max(total, 1),
         target_ess=int(target_ess),
-        # Common practice: discard about ten of the slowest autocorrelation times.
-        warmup_steps=int(np.ceil(10 * tau_max)),
-        thinning=max(1, int(np.floor(tau_max / 2))),
+        warmup_steps=warmup_and_thinning(tau_max)[0] or 0,
+        thinning=warmup_and_thinning(tau_max)[1],
         pilot=pilot,
         advice=advice,
         runs=runs,
