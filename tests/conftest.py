@@ -14,3 +14,12 @@ def ar1(phi: float, chains: int, n: int, seed: int) -> np.ndarray:
 @pytest.fixture
 def ar1_factory():
     return ar1
+
+
+@pytest.fixture(autouse=True)
+def close_figures():
+    """Tests that inspect report figures leave them open; close them after each test."""
+    yield
+    import matplotlib.pyplot as plt
+
+    plt.close("all")

@@ -222,3 +222,15 @@ def test_user_sampler_in_three_lines(tmp_path):
     chains = walktune.sample(log_z, np.zeros(2), (2.38**2 / 2) * np.eye(2), 20_000, chains=4, seed=5)
     theta = reparam.from_sampler(chains.draws)
     moments_check(theta[..., :1], stats.lognorm(s=0.5))
+
+
+def test_prior_dominated_parameters_are_weakly_identified():
+    # c is absent from the likelihood: its posterior is its N(0, 2^2) prior.
+    def log_likelihood(theta):
+        return -0.5 * ((theta[0] - 1.0) / 0.1) ** 2 - 0.5 * ((theta[1] + theta[0]) / 0.2) ** 2
+
+    prior = {"a": ("normal", 0.0, 2.0), "b": ("normal", 0.0, 2.0), "c": ("normal", 0.0, 2.0)}
+    result = walktune.tune(log_likelihood, [1.0, -1.0, 0.0], names=list(prior), prior=prior, seed=1, budget=60_000)
+    weak = [f for f in result.findings if f.kind == "weakly-identified" and f.severity == "warn"]
+    assert weak and weak[0].parameters == ["c"]
+    assert result.reparam.informed == 2

@@ -192,3 +192,13 @@ def test_pairs_figure_shows_the_transformed_coordinates_when_chosen(tmp_path):
     stride = int(np.ceil(flat.shape[0] / 2000))
     expected = np.column_stack([forward("log", flat[::stride, 0], 0, np.inf), forward("logit", flat[::stride, 1], 0, 1)])
     np.testing.assert_allclose(np.asarray(lower.collections[0].get_offsets()), expected)
+
+
+def test_spectrum_marks_informed_directions_when_a_prior_was_given(tmp_path):
+    def log_likelihood(theta):
+        return -0.5 * ((theta[0] - 1.0) / 0.1) ** 2
+
+    prior = {"a": ("normal", 0.0, 2.0), "b": ("normal", 0.0, 2.0)}
+    folder = walktune.tune(log_likelihood, [1.0, 0.0], names=["a", "b"], prior=prior, seed=1, budget=30_000).save(tmp_path / "o")
+    fig = build_figures(load_run(folder))["spectrum"]
+    assert len(fig.axes) == 2 and fig.axes[1].get_title() == "1 of 2 directions informed"

@@ -9,7 +9,9 @@ source is named):
 * ``not-converged``: rank-normalised split R-hat > 1.01 on the measured chains
   (critical above 1.1); Vehtari et al. (2021) recommend below 1.01.
 * ``weakly-identified``: posterior sd above 20% of the width of a finite bound
-  interval (a uniform distribution over it has 29%): the data hardly constrain it.
+  interval (a uniform distribution over it has 29%), or, with a prior given
+  apart, posterior variance at least 80% of the prior's; and the number of
+  prior-dominated directions of the likelihood-informed split.
 * ``poor-acceptance``: a measured acceptance rate below 0.1 or above 0.7
   (optimal is 0.234-0.44 by dimension; Gelman, Roberts and Gilks 1996).
 * ``short-chains``: an ESS rests on fewer than 50 autocorrelation times per chain.
@@ -19,6 +21,8 @@ source is named):
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, field
+
+import numpy as np
 
 SEVERITIES = ("info", "warn", "critical")
 
@@ -146,4 +150,40 @@ def acceptance_findings(rows) -> list:
                     {"proposal": row.proposal, "acceptance": row.acceptance},
                 )
             )
+    return out
+
+
+def prior_dominated_findings(posterior_variance, prior_variance, names, informed=None, dim=None, ratio: float = 0.8) -> list:
+    """``weakly-identified`` where the posterior spread is close to the prior's.
+
+    Per parameter: posterior variance at least ``ratio`` of the prior variance.
+    Per combination: directions of the likelihood-informed split that are
+    prior-dominated (``dim - informed`` of them).
+    """
+    out = []
+    share = np.asarray(posterior_variance) / np.asarray(prior_variance)
+    weak = [i for i in range(len(names)) if np.isfinite(share[i]) and share[i] >= ratio]
+    if weak:
+        out.append(
+            Finding(
+                "weakly-identified",
+                "warn",
+                [names[i] for i in weak],
+                f"the posterior spread of {', '.join(names[i] for i in weak)} is close to the prior's "
+                f"({', '.join(f'{np.sqrt(share[i]):.0%} of the prior sd' for i in weak[:5])}): the data say little "
+                "about them, and results for them mostly restate the prior.",
+                {"posterior_over_prior_variance": {names[i]: float(share[i]) for i in weak}},
+            )
+        )
+    if informed is not None and dim is not None and informed < dim:
+        out.append(
+            Finding(
+                "weakly-identified",
+                "info",
+                [],
+                f"only {informed} of {dim} directions are informed by the data; the other {dim - informed} "
+                "combinations stay close to the prior (reparam.json holds them; the reduced-basis sampler uses them).",
+                {"informed_dimension": informed, "dimension": dim},
+            )
+        )
     return out

@@ -226,7 +226,9 @@ def figure_pairs(run: Run):
 
 def figure_spectrum(run: Run):
     values = np.sort(np.asarray(run.advice["correlation_eigenvalues"]))
-    fig, ax = plt.subplots(figsize=(6.5, 3.4))
+    ratio = None if run.reparam is None else run.reparam.prior_variance_ratio
+    fig, axes = plt.subplots(1, 2 if ratio is not None else 1, figsize=(6.5 * (2 if ratio is not None else 1), 3.4), squeeze=False)
+    ax = axes[0, 0]
     pinned = values < 0.1
     index = np.arange(1, values.size + 1)
     ax.semilogy(index, values, color="#555555", lw=0.8)
@@ -239,6 +241,18 @@ def figure_spectrum(run: Run):
     ax.set_title(f"Eigen-spectrum: {run.advice['spectrum_decades']:.1f} decades, effective dimension "
                  f"{run.advice['effective_dimension']:.1f} of {values.size}")
     ax.legend(loc="upper left")
+    if ratio is not None:
+        ax = axes[0, 1]
+        informed = np.arange(ratio.size) < run.reparam.informed
+        position = np.arange(1, ratio.size + 1)
+        ax.semilogy(position, ratio, color="#555555", lw=0.8)
+        ax.scatter(position[informed], ratio[informed], color="#1b6b93", s=18, label="informed by the data", zorder=3)
+        ax.scatter(position[~informed], ratio[~informed], color="#c4661f", s=18, label="prior-dominated", zorder=3)
+        ax.xaxis.get_major_locator().set_params(integer=True)
+        ax.set_xlabel("likelihood-informed direction")
+        ax.set_ylabel("posterior / prior variance")
+        ax.set_title(f"{run.reparam.informed} of {ratio.size} directions informed")
+        ax.legend(loc="lower right")
     fig.tight_layout()
     return fig
 
@@ -322,7 +336,7 @@ def figure_needed(run: Run):
 FIGURES = [
     ("traces", figure_traces, "Traces of each parameter, pilot and tuned run, one colour per chain."),
     ("pairs", figure_pairs, "The most strongly correlated pairs, with the principal axes of their covariance."),
-    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix: the pinned directions are the ones a diagonal proposal crawls along."),
+    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix: the pinned directions are the ones a diagonal proposal crawls along; with a prior given apart, the directions the data inform."),
     ("autocorrelation", figure_autocorrelation, "Autocorrelation of the slowest parameter for the baseline and the tuned proposal."),
     ("ess", figure_ess, "Effective samples per 1000 evaluations for every proposal measured."),
     ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted."),

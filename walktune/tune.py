@@ -50,6 +50,7 @@ from .findings import (
     convergence_findings,
     correlation_findings,
     identification_findings,
+    prior_dominated_findings,
 )
 from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
@@ -697,7 +698,7 @@ def tune(
 
     # 4b. Reparameterisation: transforms, rotated basis, informed split, and a
     # short adaptive pilot in the new coordinates (fixed-proposal stages).
-    reparam, ridge_findings, z_plan = None, [], []
+    reparam, ridge_findings, z_plan, prior_cov = None, [], [], None
     pooled = pilot.draws.reshape(-1, dim) if pilot.draws is not None else pilot.states
     try:
         prior_cov = prior_terms.covariance(fit.mode, np.sqrt(np.diag(covariance))) if prior_terms else None
@@ -781,6 +782,11 @@ def tune(
     findings += conditioning_findings(structure, names)
     findings += convergence_findings(tuned_rhat, names, "tuned-covariance")
     findings += identification_findings(np.sqrt(np.diag(covariance)), bound_array, names)
+    if prior_terms is not None and prior_cov is not None:
+        findings += prior_dominated_findings(
+            np.diag(covariance), np.diag(prior_cov), names,
+            reparam.informed if reparam is not None and reparam.prior_variance_ratio is not None else None, dim,
+        )
     findings += acceptance_findings(rows)
     detection_budget = None if budget is None else max(0, budget - counted.count)
     # The detectors look at every proof run: all are fixed-proposal continuations of the pilot's chains.
