@@ -126,6 +126,8 @@ def _run_tune(
     report: bool = False,
     transform: Optional[List[str]] = None,
     no_transform: Optional[List[str]] = None,
+    workers: Optional[int] = None,
+    dask: Optional[str] = None,
 ) -> None:
     from .console import StageProgress, render
     from .target import load_target
@@ -174,14 +176,28 @@ def _run_tune(
     if out.exists() and not out.is_dir():
         raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
 
-    with StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
-        result = tune(
-            spec.function, start_values, names=names_list, bounds=bound_map or None,
-            current_proposal=proposal, budget=budget, chains=chains, seed=seed,
-            vectorized=spec.vectorized, target_ess=target_ess, progress=progress,
-            log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
-            forbid_transforms=list(no_transform or []) or None,
-        )
+    evaluator = None
+    if workers is not None or dask is not None:
+        from .evaluators import make_evaluator
+
+        if spec.log_prior is not None or spec.prior is not None:
+            raise WalktuneError("--workers/--dask with a separate prior is not supported yet; add the prior to the function.")
+        evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask)
+        if chains is None:
+            # Many chains keep many workers busy.
+            chains = max(4, getattr(evaluator, "parallelism", 1))
+    try:
+        with StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
+            result = tune(
+                None if evaluator is not None else spec.function, start_values, names=names_list,
+                bounds=bound_map or None, current_proposal=proposal, budget=budget, chains=chains, seed=seed,
+                vectorized=spec.vectorized, target_ess=target_ess, progress=progress,
+                log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
+                forbid_transforms=list(no_transform or []) or None, evaluator=evaluator,
+            )
+    finally:
+        if evaluator is not None and hasattr(evaluator, "close"):
+            evaluator.close()
     result.save(out)
     if report:
         from .report import write_report
@@ -214,11 +230,13 @@ def tune_command(
     report: bool = typer.Option(False, "--report", help="Also write figures and report.html into the output folder."),
     transform: List[str] = typer.Option([], "--transform", help="NAME=KIND forces a transform (identity, log, neglog, logit); repeatable."),
     no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose; repeatable."),
+    workers: Optional[int] = typer.Option(None, "--workers", help="Evaluate on N local worker processes (default: in this process)."),
+    dask: Optional[str] = typer.Option(None, "--dask", help="Evaluate on a Dask cluster: a scheduler address, or local:N."),
 ):
     """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison."""
     with _user_errors("write outputs"):
         _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
-                  report, transform, no_transform)
+                  report, transform, no_transform, workers, dask)
 
 
 @app.command("inspect")
