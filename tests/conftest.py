@@ -23,3 +23,15 @@ def close_figures():
     import matplotlib.pyplot as plt
 
     plt.close("all")
+
+
+def load_demo(name: str):
+    """Import demo_models/<name>.py as a module (the demos are files, not a package)."""
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parent.parent / "demo_models" / f"{name}.py"
+    spec = importlib.util.spec_from_file_location(name, path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module

@@ -16,6 +16,7 @@ import pytest
 from scipy import stats
 
 import walktune
+from conftest import load_demo
 from walktune.geometry import boundary_findings, heavy_tail_findings, local_spread_ratio
 
 HARD_KINDS = {"multimodal", "varying-scale", "boundary-pileup", "heavy-tails", "weakly-identified"}
@@ -143,13 +144,7 @@ def test_orchard_demo_centred_funnel_and_what_non_centring_does():
     # The hierarchical demo in both forms (Papaspiliopoulos, Roberts and Sköld 2007):
     # the centred form shows the funnel along log_tau; the non-centred form does not,
     # and its per-parameter step sizes mix faster per evaluation.
-    import importlib.util
-    from pathlib import Path
-
-    path = Path(__file__).resolve().parent.parent / "demo_models" / "orchard_yields.py"
-    spec = importlib.util.spec_from_file_location("orchard_yields", path)
-    orchard = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(orchard)
+    orchard = load_demo("orchard_yields")
     start = list(orchard.PARAMETERS.values())
     centred = walktune.tune(orchard.log_posterior_centred, start, names=orchard.NAMES, seed=1)
     funnel = [f for f in centred.findings if f.kind == "varying-scale"]
@@ -162,13 +157,7 @@ def test_orchard_demo_centred_funnel_and_what_non_centring_does():
 
 @pytest.mark.slow
 def test_mirror_demo_is_multimodal():
-    import importlib.util
-    from pathlib import Path
-
-    path = Path(__file__).resolve().parent.parent / "demo_models" / "mirror_sensor.py"
-    spec = importlib.util.spec_from_file_location("mirror_sensor", path)
-    mirror = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(mirror)
+    mirror = load_demo("mirror_sensor")
     result = walktune.tune(mirror.log_posterior, list(mirror.PARAMETERS.values()), seed=1)
     assert "multimodal" in kinds(result)
     offsets = sorted(region.mode[0] for region in result.regions)

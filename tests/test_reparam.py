@@ -16,6 +16,7 @@ import pytest
 from scipy import differentiate, linalg, stats
 
 import walktune
+from conftest import load_demo
 from walktune import diagnostics as D
 from walktune.errors import WalktuneError
 from walktune.reparam import (
@@ -194,13 +195,7 @@ def test_informed_subspace_of_a_linear_gaussian_inverse_problem():
 
 @pytest.mark.slow
 def test_curved_ridge_demo_gains_three_times():
-    import importlib.util
-    from pathlib import Path
-
-    path = Path(__file__).resolve().parent.parent / "demo_models" / "source_activity.py"
-    spec = importlib.util.spec_from_file_location("source_activity", path)
-    model = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(model)
+    model = load_demo("source_activity")
     for seed in (1, 2):
         result = walktune.tune(model.log_posterior, list(model.PARAMETERS.values()), names=list(model.PARAMETERS),
                                bounds=model.BOUNDS, seed=seed)
