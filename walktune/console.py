@@ -213,9 +213,18 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
     console.print(posterior_table(result))
     console.print(geometry_table(result))
     console.print(findings_table(result))
-    if output_folder:
-        console.print(f"Outputs in [bold]{output_folder}[/bold]: advice.json, proposal_covariance.npy/.csv, step_sizes.csv, draws.npz")
+    _list_outputs(console, output_folder)
     console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))
+
+
+def _list_outputs(console: Console, output_folder: str | None) -> None:
+    """Name the files the run left, as they are in the folder."""
+    if not output_folder:
+        return
+    from pathlib import Path
+
+    files = sorted(p.name for p in Path(output_folder).iterdir() if p.is_file() and not p.name.startswith("."))
+    console.print(f"Outputs in [bold]{output_folder}[/bold]: {', '.join(files)}")
 
 
 VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
@@ -272,6 +281,5 @@ def render_inspection(console: Console, result, output_folder: str | None) -> No
     console.print(inspection_advice_table(result))
     console.print(geometry_table_from(result.structure, result.parameter_names))
     console.print(findings_table(result))
-    if output_folder:
-        console.print(f"Outputs in [bold]{output_folder}[/bold]: advice.json, proposal_covariance.npy/.csv, step_sizes.csv")
+    _list_outputs(console, output_folder)
     console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))
