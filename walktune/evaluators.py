@@ -134,8 +134,6 @@ class ProcessPoolEvaluator:
         self.vectorized = vectorized
         self.workers = workers
         self.retries = retries
-        self.busy_seconds = 0.0
-        self.wall_seconds = 0.0
         self._pool = None
 
     @property
@@ -153,14 +151,12 @@ class ProcessPoolEvaluator:
         return self._pool
 
     def __call__(self, points: np.ndarray) -> BatchResult:
-        import time
         from concurrent.futures.process import BrokenProcessPool
 
         from .errors import SamplingError
 
         pieces = _chunks(points.shape[0], self.workers)
         for attempt in range(self.retries + 1):
-            t0 = time.perf_counter()
             try:
                 futures = [
                     self._executor().submit(_evaluate_chunk, self.log_density, self.vectorized, points[a:b]) for a, b in pieces
@@ -174,7 +170,6 @@ class ProcessPoolEvaluator:
                         "crash the interpreter (e.g. run out of memory). Run with --workers 1 to see its error."
                     ) from None
                 continue
-            self.wall_seconds += time.perf_counter() - t0
             return _merge(points.shape[0], list(zip(pieces, results)))
         raise AssertionError("unreachable")
 

@@ -12,7 +12,7 @@ from __future__ import annotations
 import base64
 import html
 import io
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import matplotlib
@@ -60,7 +60,6 @@ class Run:
     draws: dict  # label -> (chains, steps, d) array
     main: str  # label of the draws that describe the posterior
     baseline: str | None
-    notes: list = field(default_factory=list)
     reparam: object = None
 
     @property
@@ -459,7 +458,3 @@ def write_report(folder) -> Path:
     files["report.html"] = page
     write_folder(run.folder, files)
     return run.folder / "report.html"
-
-
-def figure_names(folder) -> list:
-    return [name for name, _, _ in FIGURES if (Path(folder) / f"{name}.png").exists()]

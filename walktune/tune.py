@@ -28,7 +28,7 @@ from . import theory
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from ._validation import as_covariance, as_float_array, check_finite
 from .analysis import Structure, analyse
-from .diagnostics import bulk_ess, iact, mcse_mean, rhat
+from .diagnostics import summary
 from .engine import sample
 from .errors import TargetError, WalktuneError
 from .evaluators import BatchResult, InProcessEvaluator
@@ -503,20 +503,15 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
 
 
 def _proof_run(name, proposal, counted, pilot, steps, seed, progress):
-    t0 = time.perf_counter()
-    chains = sample(
+    return sample(
         None, pilot.states, proposal, steps, seed=seed, evaluator=counted, start_log_density=pilot.state_log_density,
         progress=(lambda done, total: progress(name, done, total)) if progress else None,
     )
-    return chains, time.perf_counter() - t0
 
 
-def _bulk(chains) -> np.ndarray:
-    return np.asarray(bulk_ess(chains.draws))
-
-
-def _row_from_run(name, description, chains, predicted, baseline=None):
-    ess = bulk_ess(chains.draws)
+def _row_from_run(name, description, chains, stats, predicted, baseline=None):
+    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.Summary)."""
+    ess = stats.bulk_ess
     evaluations = chains.evaluations
     ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
     if not np.isfinite(ess_min):
@@ -524,8 +519,7 @@ def _row_from_run(name, description, chains, predicted, baseline=None):
         ess_min = float(np.sum(chains.accepted) + chains.n_chains)
     per_1000 = 1000 * ess_min / evaluations
     median = 1000 * float(np.nanmedian(np.where(np.isfinite(ess), ess, ess_min))) / evaluations
-    reliable = not ess.any_too_short
-    tau = iact(chains.draws)
+    reliable = not np.any(stats.bulk_too_short)
     row = dict(
         proposal=name,
         description=description,
@@ -535,8 +529,8 @@ def _row_from_run(name, description, chains, predicted, baseline=None):
         evaluations=evaluations,
         ess_reliable=reliable,
         predicted_slowdown=predicted,
-        max_rhat=float(np.nanmax(rhat(chains.draws))),
-        iact_max=float(np.nanmax(tau)),
+        max_rhat=float(np.nanmax(stats.rhat)),
+        iact_max=float(np.nanmax(stats.iact)),
     )
     if baseline is None:
         row.update(speedup=1.0, speedup_is_lower_bound=False)
@@ -752,13 +746,13 @@ def tune(
         ("step-sizes", "tuned per-parameter step sizes", np.diag(step_sizes**2), slowdowns["step_sizes"]["slowest"]),
         ("tuned-covariance", "the tuned full proposal covariance", proposal, 1.0),
     ]
-    rows, runs, seconds = [], {}, 0.0
+    # Each run's diagnostics are computed once (walktune.diagnostics.summary) and reused below.
+    rows, runs, stats = [], {}, {}
     proof_seeds = proof_seed.spawn(len(plan))
     for (name, text, cov, predicted), child in zip(plan, proof_seeds):
-        run, elapsed = _proof_run(name, cov, counted, pilot, proof_steps, child, report)
-        seconds += elapsed
-        runs[name] = run
-        rows.append(_row_from_run(name, text, run, predicted, rows[0] if rows else None))
+        run = _proof_run(name, cov, counted, pilot, proof_steps, child, report)
+        runs[name], stats[name] = run, summary(run.draws)
+        rows.append(_row_from_run(name, text, run, stats[name], predicted, rows[0] if rows else None))
 
     tuned_row = rows[-1]
     if z_plan:
@@ -768,12 +762,12 @@ def tune(
                          progress=lambda done, total, name=name: report(name, done, total))
             # Measured in the user's own parameters.
             run = replace(run, draws=reparam.from_sampler(run.draws))
-            runs[name] = run
-            rows.append(_row_from_run(name, text, run, float("nan"), rows[0]))
+            runs[name], stats[name] = run, summary(run.draws)
+            rows.append(_row_from_run(name, text, run, stats[name], float("nan"), rows[0]))
     tuned = runs["tuned-covariance"]
     posterior_mean = tuned.draws.reshape(-1, dim).mean(axis=0)
-    mcse = np.asarray(mcse_mean(tuned.draws))
-    tuned_rhat = rhat(tuned.draws)
+    mcse = stats["tuned-covariance"].mcse
+    tuned_rhat = stats["tuned-covariance"].rhat
     tau_max = tuned_row.iact_max
 
     # 6. Findings.
@@ -808,7 +802,7 @@ def tune(
             undecided_scale = None
     findings += funnel
     findings += boundary_findings(tuned.draws, bound_array, names)
-    findings += heavy_tail_findings(tuned.draws, _bulk(runs["tuned-covariance"]), names)
+    findings += heavy_tail_findings(tuned.draws, stats["tuned-covariance"].bulk_ess, names)
     for note in (undecided_modes, undecided_scale):
         if note:
             findings.append(Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {}))
