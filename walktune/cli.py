@@ -110,17 +110,69 @@ def _read_proposal(path: Path) -> np.ndarray:
     raise WalktuneError(f"current proposal {path} must be a .npy, .csv or .json file.")
 
 
+#: Tuning options that shape the result; a resumed run takes them from the checkpoint.
+RESULT_OPTIONS = ("target", "names", "start", "bound", "budget", "chains", "seed", "current_proposal", "target_ess",
+                  "transform", "no_transform")
+
+
+def _resumed_options(folder: Path, given: dict) -> dict:
+    """The options of the checkpointed run in ``folder``, checked against those given again."""
+    from .checkpoint import read_meta
+
+    stored = read_meta(folder).get("identity", {}).get("options")
+    if not isinstance(stored, dict):
+        raise WalktuneError(f"the checkpoint in {folder} was not written by `walktune tune`; resume it from Python.")
+    merged = dict(stored)
+    for key in RESULT_OPTIONS:
+        value = given.get(key)
+        if value is None or value == []:
+            continue
+        if key == "target":
+            from .target import load_target
+
+            value = load_target(value).canonical
+        if value != stored.get(key):
+            flag = "TARGET" if key == "target" else "--" + key.replace("_", "-")
+            raise WalktuneError(
+                f"{flag} {value!r} differs from the interrupted run's {stored.get(key)!r} in {folder}; "
+                f"drop {flag} to resume with the run's own options, or start a new run with another --out."
+            )
+    return merged
+
+
+@contextmanager
+def _stop_on_signals(checkpoint):
+    """First Ctrl-C or SIGTERM: stop at the next step and save. Second: exit at once (files are written atomically)."""
+    import signal
+
+    received = []
+
+    def handler(signum, frame):
+        received.append(signum)
+        if len(received) > 1:
+            os._exit(128 + signum)
+        checkpoint.request_stop(signum)
+        os.write(2, b"\nstopping at the next step and saving a checkpoint; press Ctrl-C again to quit at once\n")
+
+    previous = {sig: signal.signal(sig, handler) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+
+
 def _run_tune(
-    target: str,
+    target: Optional[str],
     names: Optional[str],
     start: Optional[str],
     bounds: List[str],
     budget: Optional[int],
     chains: Optional[int],
     seed: Optional[int],
-    out: Path,
+    out: Optional[Path],
     current_proposal: Optional[Path],
-    target_ess: int,
+    target_ess: Optional[int],
     as_json: bool,
     quiet: bool,
     report: bool = False,
@@ -128,19 +180,54 @@ def _run_tune(
     no_transform: Optional[List[str]] = None,
     workers: Optional[int] = None,
     dask: Optional[str] = None,
+    resume: Optional[Path] = None,
+    checkpoint_every: float = 30.0,
 ) -> None:
-    from .console import StageProgress, render
+    from .checkpoint import FILE_NAME, Checkpoint, Interrupted
+    from .console import StageProgress, render, render_partial
     from .target import load_target
     from .tune import tune
 
     console = _console()
-    spec = load_target(target)
-    names_list = _split_list(names, "names") or spec.names
-    if start is not None:
+    options = {
+        "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
+        "chains": chains, "seed": seed, "target_ess": target_ess, "transform": list(transform or []),
+        "no_transform": list(no_transform or []),
+        "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
+    }
+    if resume is not None:
+        if out is not None and out.resolve() != resume.resolve():
+            raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
+        out = resume
+        options = _resumed_options(resume, options)
+    else:
+        out = out if out is not None else Path("walktune-output")
+        if target is None:
+            raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
+        if (out / FILE_NAME).exists():
+            raise WalktuneError(
+                f"{out} holds the checkpoint of an interrupted run; continue it with `walktune tune --resume {out}`, "
+                f"choose another --out, or delete {out / FILE_NAME} to start afresh."
+            )
+        if options["seed"] is None:
+            # Fix the seed now, so that an interrupted run can be resumed bit for bit.
+            options["seed"] = int(np.random.SeedSequence().entropy % 2**63)
+    spec = load_target(options["target"])
+    if resume is not None:
+        from .checkpoint import read_meta
+
+        if read_meta(resume)["identity"].get("model_digest") != spec.source_digest:
+            raise WalktuneError(
+                f"the model file of {spec.canonical} changed since the run in {resume} was checkpointed; a resumed run "
+                "needs the same model. Restore it, or start a new run with another --out."
+            )
+    options["target"] = spec.canonical
+    names_list = _split_list(options["names"], "names") or spec.names
+    if options["start"] is not None:
         try:
-            start_values = np.asarray([float(v) for v in _split_list(start, "start")])
+            start_values = np.asarray([float(v) for v in _split_list(options["start"], "start")])
         except ValueError:
-            raise WalktuneError(f"--start {start!r} must be comma-separated numbers.") from None
+            raise WalktuneError(f"--start {options['start']!r} must be comma-separated numbers.") from None
     else:
         start_values = spec.start
     if start_values is None:
@@ -159,16 +246,16 @@ def _run_tune(
         if spec.names is not None and key in spec.names:
             key = spec.names.index(key)
         bound_map[key] = pair
-    for text in bounds:
+    for text in options["bound"]:
         key, pair = _parse_bound(text)
         bound_map[key] = pair
     if names_list is not None:
         unknown = [k for k in bound_map if isinstance(k, str) and k not in names_list]
         if unknown:
             raise WalktuneError(f"bounds name unknown parameter {unknown[0]!r}; known: {', '.join(names_list)}.")
-    proposal = _read_proposal(current_proposal) if current_proposal is not None else None
+    proposal = np.asarray(options["current_proposal"], dtype=float) if options["current_proposal"] is not None else None
     forced = dict(spec.transforms)
-    for text in transform or []:
+    for text in options["transform"]:
         key, sep, kind = text.partition("=")
         if not sep or not key.strip() or not kind.strip():
             raise WalktuneError(f"--transform {text!r} must look like NAME=KIND (identity, log, neglog or logit).")
@@ -177,24 +264,46 @@ def _run_tune(
         raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
 
     evaluator = None
-    if workers is not None or dask is not None:
-        from .evaluators import make_evaluator
-
-        if spec.log_prior is not None or spec.prior is not None:
-            raise WalktuneError("--workers/--dask with a separate prior is not supported yet; add the prior to the function.")
-        evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask)
-        if chains is None:
-            # Many chains keep many workers busy.
-            chains = max(4, getattr(evaluator, "parallelism", 1))
     try:
-        with StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
+        if workers is not None or dask is not None:
+            from .evaluators import make_evaluator
+
+            if spec.log_prior is not None or spec.prior is not None:
+                raise WalktuneError("--workers/--dask with a separate prior is not supported yet; add the prior to the function.")
+            evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask)
+        if options["chains"] is None:
+            # Many chains keep many workers busy. Fixed here, so that a resume on other workers runs the same chains.
+            options["chains"] = max(4, getattr(evaluator, "parallelism", 1))
+        identity = {"options": options, "model_digest": spec.source_digest}
+        checkpoint = Checkpoint(out, identity, every=checkpoint_every, resume=resume is not None)
+        if resume is not None and not quiet:
+            _console(stderr=True).print(
+                f"resuming from {out / FILE_NAME}: replaying {checkpoint.resumed_evaluations} recorded evaluations "
+                "without calling the model, then going on", highlight=False,
+            )
+        with _stop_on_signals(checkpoint), StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
             result = tune(
                 None if evaluator is not None else spec.function, start_values, names=names_list,
-                bounds=bound_map or None, current_proposal=proposal, budget=budget, chains=chains, seed=seed,
-                vectorized=spec.vectorized, target_ess=target_ess, progress=progress,
+                bounds=bound_map or None, current_proposal=proposal, budget=options["budget"], chains=options["chains"],
+                seed=options["seed"], vectorized=spec.vectorized,
+                target_ess=400 if options["target_ess"] is None else options["target_ess"], progress=progress,
                 log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
-                forbid_transforms=list(no_transform or []) or None, evaluator=evaluator,
+                forbid_transforms=list(options["no_transform"]) or None, evaluator=evaluator, checkpoint=checkpoint,
             )
+    except Interrupted as stop:
+        from .io import atomic_write_bytes, json_bytes
+
+        partial = stop.partial or {"partial": True}
+        partial["checkpoint"] = str(stop.checkpoint) if stop.checkpoint else None
+        if stop.checkpoint is not None:
+            atomic_write_bytes(out / "partial-advice.json", json_bytes(partial))
+        if as_json:
+            typer.echo(json.dumps(partial, indent=2))
+        elif quiet:
+            _console(stderr=True).print(f"interrupted; checkpoint in {out}; resume with: walktune tune --resume {out}")
+        else:
+            render_partial(console, partial, str(out))
+        raise typer.Exit(128 + (stop.signum or 2)) from None
     finally:
         if evaluator is not None and hasattr(evaluator, "close"):
             evaluator.close()
@@ -203,28 +312,33 @@ def _run_tune(
         from .report import write_report
 
         write_report(out)
+    # The results are in place: the checkpoint and any partial advice are no longer needed.
+    checkpoint.remove()
+    (out / "partial-advice.json").unlink(missing_ok=True)
     if as_json:
         typer.echo(json.dumps(result.to_dict(), indent=2))
     elif not quiet:
-        render(console, result, target, str(out))
+        render(console, result, target or options["target"], str(out))
     else:
         console.print(f"advice written to {out}")
 
 
 @app.command("tune")
 def tune_command(
-    target: str = typer.Argument(..., help="The log-density: path/to/model.py:function or package.module:function."),
+    target: Optional[str] = typer.Argument(
+        None, help="The log-density: path/to/model.py:function or package.module:function (not needed with --resume)."
+    ),
     names: Optional[str] = typer.Option(None, "--names", help="Comma-separated parameter names (overrides PARAMETERS)."),
     start: Optional[str] = typer.Option(None, "--start", help="Comma-separated start values (overrides START)."),
     bound: List[str] = typer.Option([], "--bound", help="NAME=LOW:HIGH, repeatable; -inf/inf or empty for an open side."),
     budget: Optional[int] = typer.Option(None, "--budget", help="Cap on log-density evaluations for the whole job."),
     chains: Optional[int] = typer.Option(None, "--chains", help="Number of chains (default 4)."),
     seed: Optional[int] = typer.Option(None, "--seed", help="Seed for a reproducible run."),
-    out: Path = typer.Option(Path("walktune-output"), "--out", "-o", help="Output folder."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Output folder (default walktune-output)."),
     current_proposal: Optional[Path] = typer.Option(
         None, "--current-proposal", help="Your proposal today: covariance or step sizes in .npy, .csv or .json."
     ),
-    target_ess: int = typer.Option(400, "--target-ess", help="ESS you need, for the evaluations-needed advice."),
+    target_ess: Optional[int] = typer.Option(None, "--target-ess", help="ESS you need, for the evaluations-needed advice (default 400)."),
     as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress; write the output folder only."),
     report: bool = typer.Option(False, "--report", help="Also write figures and report.html into the output folder."),
@@ -232,11 +346,21 @@ def tune_command(
     no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose; repeatable."),
     workers: Optional[int] = typer.Option(None, "--workers", help="Evaluate on N local worker processes (default: in this process)."),
     dask: Optional[str] = typer.Option(None, "--dask", help="Evaluate on a Dask cluster: a scheduler address, or local:N."),
+    resume: Optional[Path] = typer.Option(
+        None, "--resume", help="Continue the interrupted run in this folder from its checkpoint (same result, bit for bit)."
+    ),
+    checkpoint_every: float = typer.Option(
+        30.0, "--checkpoint-every", help="Seconds between checkpoints within a stage; stage ends always save one (0: only those)."
+    ),
 ):
-    """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison."""
+    """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison.
+
+    The run saves a checkpoint in its output folder; Ctrl-C or SIGTERM stops it at the next step with
+    partial advice, and --resume FOLDER continues it.
+    """
     with _user_errors("write outputs"):
         _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
-                  report, transform, no_transform, workers, dask)
+                  report, transform, no_transform, workers, dask, resume, checkpoint_every)
 
 
 @app.command("inspect")

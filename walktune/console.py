@@ -205,6 +205,8 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
         f"({result.pilot_evaluations} for the mode and pilot), "
         f"{result.seconds_per_evaluation * 1e3:.3g} ms per evaluation"
     )
+    if result.worker_busy is not None:
+        header += f"; workers busy {result.worker_busy:.0%} of the evaluation time"
     if result.partial:
         header += " [PARTIAL: interrupted]"
     console.print(Panel(header, title="walktune", expand=False))
@@ -215,6 +217,44 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
     console.print(findings_table(result))
     _list_outputs(console, output_folder)
     console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))
+
+
+def render_partial(console: Console, partial: dict, output_folder: str) -> None:
+    """What an interrupted run leaves: partial advice, clearly marked, and how to resume."""
+    stage = partial.get("stopped_in_stage") or "the start"
+    console.print(
+        Panel(
+            f"PARTIAL: stopped during {stage} after {partial.get('evaluations', 0)} evaluations. "
+            "This advice has not been checked by the fixed-proposal runs.",
+            title="walktune (interrupted)", border_style="yellow", expand=False,
+        )
+    )
+    names = partial.get("parameter_names") or []
+    if partial.get("step_sizes") is not None:
+        table = Table(title=f"Partial advice, from {partial.get('basis')}", title_justify="left")
+        table.add_column("parameter")
+        table.add_column("step size (proposal sd)", justify="right")
+        for name, step in zip(names, partial["step_sizes"]):
+            table.add_row(str(name), _fmt(step))
+        console.print(table)
+    else:
+        console.print("No advice yet: the run stopped before the mode search finished.")
+    rows = partial.get("comparison") or []
+    if rows:
+        table = Table(title="Proof runs finished before the stop", title_justify="left")
+        for column in ("proposal", "acceptance", "min ESS per 1000 evals"):
+            table.add_column(column, justify="left" if column == "proposal" else "right")
+        for row in rows:
+            table.add_row(row["proposal"], _fmt(row["acceptance"]), _fmt(row["ess_per_1000"]))
+        console.print(table)
+    if partial.get("checkpoint"):
+        console.print(
+            f"Checkpoint and partial-advice.json saved in [bold]{output_folder}[/bold]. "
+            f"Continue with: walktune tune --resume {output_folder}", highlight=False,
+        )
+    else:
+        console.print("Nothing was evaluated yet, so no checkpoint was written.")
+    console.print(Panel(Text(partial.get("caution", CAUTION)), title="caution", border_style="yellow", expand=False))
 
 
 def _list_outputs(console: Console, output_folder: str | None) -> None:

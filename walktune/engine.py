@@ -267,6 +267,8 @@ def sample(
     start_points = points.copy()
 
     done = 0
+    if progress is not None:
+        progress(0, steps)
     while done < steps:
         block = min(BLOCK_STEPS, steps - done)
         # Each chain's stream yields a full block whatever the run length, so a

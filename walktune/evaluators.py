@@ -11,6 +11,7 @@ evaluations ran.
 from __future__ import annotations
 
 import sys
+import time
 import traceback
 from dataclasses import dataclass, field
 from typing import Callable
@@ -28,10 +29,14 @@ class BatchResult:
         The log-density; NaN where the function raised an exception.
     errors : dict of int to str
         For each point whose evaluation raised, the formatted traceback.
+    busy_seconds : float
+        Seconds the workers spent evaluating, summed over workers (0 for
+        in-process evaluation, where the caller's wall time is the measure).
     """
 
     values: np.ndarray
     errors: dict = field(default_factory=dict)
+    busy_seconds: float = 0.0
 
 
 def _to_scalar(value) -> float:
@@ -93,8 +98,18 @@ class InProcessEvaluator:
 
 
 def _evaluate_chunk(log_density: Callable, vectorized: bool, points: np.ndarray) -> BatchResult:
-    """Run in a worker: evaluate a chunk of points as the in-process evaluator would."""
-    return InProcessEvaluator(log_density, vectorized)(points)
+    """Run in a worker: evaluate a chunk of points as the in-process evaluator would, timing it."""
+    t0 = time.perf_counter()
+    result = InProcessEvaluator(log_density, vectorized)(points)
+    result.busy_seconds = time.perf_counter() - t0
+    return result
+
+
+def _worker_setup() -> None:
+    """In a pool worker: leave Ctrl-C to the driver, which stops the job cleanly at the next step."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _chunks(n_points: int, parts: int) -> list:
@@ -107,10 +122,12 @@ def _chunks(n_points: int, parts: int) -> list:
 def _merge(n_points: int, pieces: list) -> BatchResult:
     values = np.empty(n_points)
     errors = {}
+    busy = 0.0
     for (start, _), result in pieces:
         values[start : start + result.values.shape[0]] = result.values
         errors.update({start + k: v for k, v in result.errors.items()})
-    return BatchResult(values, errors)
+        busy += result.busy_seconds
+    return BatchResult(values, errors, busy)
 
 
 class ProcessPoolEvaluator:
@@ -147,7 +164,7 @@ class ProcessPoolEvaluator:
         if self._pool is None:
             method = "fork" if "fork" in multiprocessing.get_all_start_methods() else None
             context = multiprocessing.get_context(method) if method else None
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context)
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context, initializer=_worker_setup)
         return self._pool
 
     def __call__(self, points: np.ndarray) -> BatchResult:

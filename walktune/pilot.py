@@ -163,6 +163,7 @@ def run_pilot(
     progress=None,
     state_log_density: np.ndarray | None = None,
     within_chains: bool = False,
+    on_stage=None,
 ) -> PilotResult:
     """Adapt the proposal in stages of doubling length until it settles or the budget ends.
 
@@ -181,6 +182,8 @@ def run_pilot(
         The log-density at ``states``, when known.
     within_chains : bool, default=False
         Estimate the covariance within chains (for chains started in separate modes).
+    on_stage : callable, optional
+        Called with the :class:`PilotResult` so far after each stage.
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -239,6 +242,8 @@ def run_pilot(
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
         settled = settled + 1 if (not adopted and good_acceptance and stage_index >= 1) else 0
         stage_index += 1
+        if on_stage is not None:
+            on_stage(result)
         if progress is not None:
             progress(spent, budget)
         if settled >= 2:

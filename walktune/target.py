@@ -51,6 +51,10 @@ class ModelSpec:
     log_prior: Callable | None = None
     prior: dict | None = None
     transforms: dict = field(default_factory=dict)
+    #: The target with a file path made absolute, so that it names the same model from any folder.
+    canonical: str = ""
+    #: SHA-256 of the model's source file (None when it has none), to tell whether a model changed.
+    source_digest: str | None = None
 
 
 def _import_file(path: Path):
@@ -110,7 +114,12 @@ def load_target(target: str) -> ModelSpec:
         raise TargetError(f"{where} has no function {function_name!r}{hint}.")
     if not callable(function):
         raise TargetError(f"{where}:{function_name} is not a function.")
-    spec = ModelSpec(function=function, label=target)
+    spec = ModelSpec(function=function, label=target, canonical=target)
+    source = getattr(module, "__file__", None)
+    if source and Path(source).is_file():
+        spec.source_digest = hashlib.sha256(Path(source).read_bytes()).hexdigest()
+    if where.endswith(".py") or "/" in where or "\\" in where:
+        spec.canonical = f"{Path(where).resolve()}:{function_name}"
     parameters = getattr(module, "PARAMETERS", None)
     if isinstance(parameters, dict):
         spec.names = [str(k) for k in parameters]

@@ -29,6 +29,7 @@ from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from ._validation import as_covariance, as_float_array, check_finite
 from .analysis import Structure, analyse
 from .diagnostics import summary
+from .checkpoint import Interrupted
 from .engine import sample
 from .errors import TargetError, WalktuneError
 from .evaluators import BatchResult, InProcessEvaluator
@@ -150,18 +151,24 @@ def _current_proposal(value, dim: int) -> np.ndarray | None:
 
 
 class _Counted:
-    """Wraps an evaluator: enforces bounds, counts evaluations, times them."""
+    """Wraps an evaluator: enforces bounds, counts evaluations, times them, records them in a checkpoint."""
 
-    def __init__(self, evaluator, bounds: np.ndarray):
+    def __init__(self, evaluator, bounds: np.ndarray, checkpoint=None):
         self.evaluator = evaluator
         self.bounds = bounds
+        self.checkpoint = checkpoint
         self.count = 0
         self.seconds = 0.0
+        self.busy_seconds = 0.0
         self.bounded = bool(np.any(np.isfinite(bounds)))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
         points = np.atleast_2d(points)
-        self.count += points.shape[0]
+        result = self._bounded(points)
+        self.count += points.shape[0]  # after the call: a batch stopped by an interruption is not counted
+        return result
+
+    def _bounded(self, points: np.ndarray) -> BatchResult:
         if self.bounded:
             inside = np.all((points > self.bounds[:, 0]) & (points < self.bounds[:, 1]), axis=1)
             if not inside.all():
@@ -176,9 +183,14 @@ class _Counted:
         return self._timed(points)
 
     def _timed(self, points):
-        t0 = time.perf_counter()
-        result = self.evaluator(points)
-        self.seconds += time.perf_counter() - t0
+        if self.checkpoint is not None:
+            result, seconds, busy = self.checkpoint.evaluate(points, self.evaluator)
+        else:
+            t0 = time.perf_counter()
+            result = self.evaluator(points)
+            seconds, busy = time.perf_counter() - t0, result.busy_seconds
+        self.seconds += seconds
+        self.busy_seconds += busy
         return result
 
     def scalar(self, theta: np.ndarray) -> float:
@@ -358,6 +370,7 @@ class TuneResult:
     partial: bool = False
     regions: list = field(default_factory=list)
     reparam: object = None
+    worker_busy: float | None = None
 
     @property
     def slowdowns(self) -> dict:
@@ -407,6 +420,7 @@ class TuneResult:
             "seconds_per_evaluation": self.seconds_per_evaluation,
             "pilot_evaluations": self.pilot_evaluations,
             "total_evaluations": self.total_evaluations,
+            "worker_busy_share": self.worker_busy,
             "pilot_converged": self.pilot.converged,
             "comparison": [row.to_dict() for row in self.comparison],
             "regions": [
@@ -435,6 +449,56 @@ class TuneResult:
         from .io import write_folder
 
         return write_folder(Path(directory), result_files(self))
+
+
+def _worker_busy(counted: _Counted, evaluator) -> float | None:
+    """Share of the evaluation wall time the workers spent evaluating (None for in-process evaluation)."""
+    workers = getattr(evaluator, "parallelism", 1)
+    if workers <= 1 or counted.seconds <= 0:
+        return None
+    return float(min(1.0, counted.busy_seconds / (counted.seconds * workers)))
+
+
+class _JobState:
+    """Where a running job is and its best estimate so far: what partial advice is made from."""
+
+    def __init__(self):
+        self.names = None
+        self.counted = None
+        self.stage = None
+        self.covariance = None
+        self.scale_factor = 1.0
+        self.basis = None
+        self.rows: list = []
+
+    def estimate(self, covariance: np.ndarray, scale_factor: float, basis: str) -> None:
+        self.covariance, self.scale_factor, self.basis = covariance, scale_factor, basis
+
+    def partial_advice(self) -> dict:
+        """Advice from the best covariance so far, marked partial; no proof unless some proof runs finished."""
+        payload = {
+            "schema": SCHEMA,
+            "partial": True,
+            "stopped_in_stage": self.stage,
+            "evaluations": self.counted.count if self.counted is not None else 0,
+            "parameter_names": self.names,
+            "basis": None,
+            "proposal_covariance": None,
+            "step_sizes": None,
+            "comparison": [row.to_dict() for row in self.rows],
+            "caution": "Partial advice from an interrupted run: not yet checked by fixed-proposal runs. " + CAUTION,
+        }
+        if self.covariance is not None:
+            try:
+                advice = advise(self.covariance, scale_factor=self.scale_factor)
+            except (WalktuneError, np.linalg.LinAlgError, ValueError):
+                return payload
+            payload.update(
+                basis=self.basis,
+                proposal_covariance=advice.proposal_covariance.tolist(),
+                step_sizes=advice.step_sizes.tolist(),
+            )
+        return payload
 
 
 def _json_float(value: float):
@@ -563,6 +627,7 @@ def tune(
     prior: dict | None = None,
     transforms: dict | None = None,
     forbid_transforms=None,
+    checkpoint=None,
 ) -> TuneResult:
     """Tune a random-walk Metropolis proposal for ``log_density`` and prove the gain.
 
@@ -605,11 +670,56 @@ def tune(
         ``{name: kind}`` forcing a transform (identity, log, neglog, logit).
     forbid_transforms : list of str, optional
         Transform kinds never to choose.
+    checkpoint : walktune.checkpoint.Checkpoint, optional
+        Records every evaluation and saves it at stage ends and intervals;
+        when it was opened with ``resume=True`` the job replays its record and
+        ends as the uninterrupted run would have, bit for bit. A stop requested
+        on it (:meth:`~walktune.checkpoint.Checkpoint.request_stop`) raises
+        :class:`~walktune.checkpoint.Interrupted` before the next evaluation,
+        carrying partial advice.
 
     Returns
     -------
     TuneResult
     """
+    state = _JobState()
+    try:
+        return _tune_job(
+            log_density, start, names=names, bounds=bounds, current_proposal=current_proposal, budget=budget,
+            chains=chains, seed=seed, vectorized=vectorized, target_ess=target_ess, evaluator=evaluator,
+            progress=progress, log_prior=log_prior, prior=prior, transforms=transforms,
+            forbid_transforms=forbid_transforms, checkpoint=checkpoint, state=state,
+        )
+    except Interrupted as stop:
+        stop.partial = state.partial_advice()
+        raise
+    except BaseException:
+        if checkpoint is not None:
+            checkpoint.save()  # keep what was evaluated (a no-op when the record did not grow)
+        raise
+
+
+def _tune_job(
+    log_density: Callable,
+    start,
+    *,
+    names=None,
+    bounds=None,
+    current_proposal=None,
+    budget: int | None = None,
+    chains: int | None = None,
+    seed=None,
+    vectorized: bool = False,
+    target_ess: int = DEFAULT_TARGET_ESS,
+    evaluator=None,
+    progress: Callable[[str, float, float], None] | None = None,
+    log_prior: Callable | None = None,
+    prior: dict | None = None,
+    transforms: dict | None = None,
+    forbid_transforms=None,
+    checkpoint=None,
+    state=None,
+) -> TuneResult:
     start = as_float_array(start, "start")
     if start.ndim == 0:
         start = start.reshape(1)
@@ -646,8 +756,22 @@ def tune(
         # Check forced transforms against the bounds now, before any evaluation.
         choose_transforms(np.tile(start, (3, 1)) + np.arange(3)[:, None] * 0.0, names, bound_array, transforms, forbid_transforms)
     base = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
-    counted = _Counted(base, bound_array)
-    report = progress or (lambda *args: None)
+    counted = _Counted(base, bound_array, checkpoint)
+    state = state if state is not None else _JobState()
+    state.names, state.counted = names, counted
+    user_progress = progress or (lambda *args: None)
+
+    def pilot_stage_ended(p, what):
+        if what == "the pilot":
+            state.estimate(p.covariance, p.scale_factor, f"{what} after {len(p.stages)} stages")
+        if checkpoint is not None:
+            checkpoint.stage_ended(f"{state.stage} stage {len(p.stages)}")
+
+    def report(stage, done, total):
+        state.stage = stage
+        if checkpoint is not None and done >= total:
+            checkpoint.stage_ended(stage)
+        user_progress(stage, done, total)
 
     first = counted(start[None, :])
     if first.errors or not np.isfinite(first.values[0]):
@@ -669,6 +793,7 @@ def tune(
     fit = find_mode(counted.scalar, start, bound_array, scales, mode_budget)
     report("mode", 1, 1)
     initial_cov = _initial_covariance(fit, bound_array, start)
+    state.estimate(initial_cov, 1.0, "the Laplace approximation at the mode")
 
     # 2. Pilot from overdispersed starts.
     rng = np.random.default_rng(mode_seed)
@@ -680,7 +805,9 @@ def tune(
         None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
         pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
         state_log_density=state_values, within_chains=len(centres) > 1,
+        on_stage=lambda p: pilot_stage_ended(p, "the pilot"),
     )
+    report("pilot", pilot.evaluations, pilot.evaluations)
     covariance = pilot.covariance
 
     # 3-4. Structure and advice.
@@ -712,7 +839,9 @@ def tune(
                 None, reparam.to_sampler(pilot.states), np.eye(dim), max(z_budget, 2 * n_chains * max(50, 10 * dim)),
                 proof_seed.spawn(1)[0], evaluator=z_evaluator,
                 progress=lambda done, total: report("pilot in new coordinates", done, total),
+                on_stage=lambda p: pilot_stage_ended(p, "the pilot in new coordinates"),
             )
+            report("pilot in new coordinates", z_pilot.evaluations, z_pilot.evaluations)
             old_map = reparam
             reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov, n_independent)
             z_states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
@@ -748,6 +877,7 @@ def tune(
     ]
     # Each run's diagnostics are computed once (walktune.diagnostics.summary) and reused below.
     rows, runs, stats = [], {}, {}
+    state.rows = rows
     proof_seeds = proof_seed.spawn(len(plan))
     for (name, text, cov, predicted), child in zip(plan, proof_seeds):
         run = _proof_run(name, cov, counted, pilot, proof_steps, child, report)
@@ -855,6 +985,7 @@ def tune(
         pilot_evaluations=pilot_evaluations,
         total_evaluations=total,
         seconds_per_evaluation=counted.seconds / max(total, 1),
+        worker_busy=_worker_busy(counted, base),
         target_ess=int(target_ess),
         warmup_steps=warmup_and_thinning(tau_max)[0] or 0,
         thinning=warmup_and_thinning(tau_max)[1],
