@@ -14,7 +14,9 @@ through exactly the states of the interrupted one (draws, adaptation state,
 random generator states and counts, including the state inside scipy's
 optimisers, which could not be saved any other way) and ends with the same
 result bit for bit. Replaying costs walktune's own arithmetic only: no
-log-density evaluation is repeated.
+log-density evaluation is repeated, except one at the start point that checks
+the model still gives the recorded value (a deterministic log-density is
+assumed, as everywhere in walktune).
 
 A checkpoint is written at stage ends, every ``every`` seconds during a stage,
 when the job is stopped and when it fails; always to a temporary file moved
@@ -237,6 +239,8 @@ class Checkpoint:
                 )
             lo, hi = np.searchsorted(self._error_keys, [self._value_offset, self._value_offset + n])
             errors = {int(k) - self._value_offset: self._errors[int(k)] for k in self._error_keys[lo:hi]}
+            if i == 0:
+                self._spot_check(points, evaluator, errors)
             self._cursor += 1
             self._value_offset += n
             return BatchResult(self._values[i].copy(), errors), self._seconds[i], self._busy[i]
@@ -261,6 +265,19 @@ class Checkpoint:
         if self.every > 0 and self.clock() - self._last_save >= self.every:
             self.save()
         return BatchResult(values.copy(), dict(result.errors)), seconds, busy
+
+    def _spot_check(self, points: np.ndarray, evaluator, errors: dict) -> None:
+        """Evaluate the first recorded batch (the start point) again: the replay answers from the
+        record and never calls the model, so this is what tells that the model itself changed."""
+        again = evaluator(points)
+        recorded = self._values[0]
+        same = np.array_equal(np.asarray(again.values, dtype=float), recorded, equal_nan=True)
+        if not same or sorted(again.errors) != sorted(errors):
+            raise WalktuneError(
+                f"the log-density now gives {np.asarray(again.values).tolist()} at the start point where the run "
+                f"checkpointed in {self.folder} recorded {recorded.tolist()}: the model changed since. Resume with "
+                "the same model, or start a new run elsewhere; the checkpoint was left as it is."
+            )
 
     def stage_ended(self, stage: str) -> None:
         """Note a finished stage and write a checkpoint if anything new was evaluated."""
