@@ -182,6 +182,7 @@ def _run_tune(
     dask: Optional[str] = None,
     resume: Optional[Path] = None,
     checkpoint_every: float = 30.0,
+    time_limit: Optional[float] = None,
 ) -> None:
     from .checkpoint import FILE_NAME, Checkpoint, Interrupted
     from .console import StageProgress, render, render_partial
@@ -265,12 +266,12 @@ def _run_tune(
 
     evaluator = None
     try:
-        if workers is not None or dask is not None:
+        if workers is not None or dask is not None or time_limit is not None:
             from .evaluators import make_evaluator
 
             if spec.log_prior is not None or spec.prior is not None:
                 raise WalktuneError("--workers/--dask with a separate prior is not supported yet; add the prior to the function.")
-            evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask)
+            evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask, time_limit=time_limit)
         if options["chains"] is None:
             # Many chains keep many workers busy. Fixed here, so that a resume on other workers runs the same chains.
             options["chains"] = max(4, getattr(evaluator, "parallelism", 1))
@@ -352,6 +353,9 @@ def tune_command(
     checkpoint_every: float = typer.Option(
         30.0, "--checkpoint-every", help="Seconds between checkpoints within a stage; stage ends always save one (0: only those)."
     ),
+    time_limit: Optional[float] = typer.Option(
+        None, "--time-limit", help="Seconds one evaluation may take (with --workers or --dask); a late one counts as failed."
+    ),
 ):
     """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison.
 
@@ -360,7 +364,7 @@ def tune_command(
     """
     with _user_errors("write outputs"):
         _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
-                  report, transform, no_transform, workers, dask, resume, checkpoint_every)
+                  report, transform, no_transform, workers, dask, resume, checkpoint_every, time_limit)
 
 
 @app.command("inspect")

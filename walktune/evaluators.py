@@ -10,6 +10,7 @@ evaluations ran.
 
 from __future__ import annotations
 
+import functools
 import sys
 import time
 import traceback
@@ -97,12 +98,106 @@ class InProcessEvaluator:
         """Release resources (none for in-process evaluation)."""
 
 
-def _evaluate_chunk(log_density: Callable, vectorized: bool, points: np.ndarray) -> BatchResult:
+#: How a timed-out evaluation is described in ``BatchResult.errors``; counted by the tuning job.
+TIMEOUT_PREFIX = "EvaluationTimeout:"
+
+
+def timeout_message(limit: float, detail: str = "") -> str:
+    return f"{TIMEOUT_PREFIX} the log-density did not return within {limit:g} s{detail}"
+
+
+class EvaluationTimeout(BaseException):
+    """Raised inside a worker's evaluation by the alarm; a BaseException so the user's ``except Exception`` lets it by."""
+
+
+def _on_alarm(signum, frame):
+    raise EvaluationTimeout()
+
+
+def _evaluate_limited(log_density: Callable, vectorized: bool, points: np.ndarray, limit: float) -> BatchResult:
+    """Evaluate point by point, each under a SIGALRM timer of ``limit`` seconds (a worker's main thread only)."""
+    import signal
+
+    evaluator = InProcessEvaluator(log_density, vectorized)
+    values = np.empty(points.shape[0])
+    errors = {}
+    previous = signal.signal(signal.SIGALRM, _on_alarm)
+    try:
+        for i in range(points.shape[0]):
+            try:
+                signal.setitimer(signal.ITIMER_REAL, limit)
+                one = evaluator(points[i : i + 1])
+                signal.setitimer(signal.ITIMER_REAL, 0)
+                values[i] = one.values[0]
+                if one.errors:
+                    errors[i] = one.errors[0]
+            except EvaluationTimeout:
+                values[i] = np.nan
+                errors[i] = timeout_message(limit)
+            finally:
+                signal.setitimer(signal.ITIMER_REAL, 0)
+    finally:
+        signal.signal(signal.SIGALRM, previous)
+    return BatchResult(values, errors)
+
+
+def _evaluate_chunk(log_density: Callable, vectorized: bool, points: np.ndarray, limit: float | None = None) -> BatchResult:
     """Run in a worker: evaluate a chunk of points as the in-process evaluator would, timing it."""
     t0 = time.perf_counter()
-    result = InProcessEvaluator(log_density, vectorized)(points)
+    if limit is None:
+        result = InProcessEvaluator(log_density, vectorized)(points)
+    else:
+        result = _evaluate_limited(log_density, vectorized, points, limit)
     result.busy_seconds = time.perf_counter() - t0
     return result
+
+
+@functools.lru_cache(maxsize=4)
+def _unpickled(payload: bytes):
+    import pickle
+
+    return pickle.loads(payload)
+
+
+def _evaluate_pickled(payload: bytes, vectorized: bool, points: np.ndarray) -> BatchResult:
+    """Run on a Dask worker: the function arrives pickled and is unpickled once per worker process."""
+    return _evaluate_chunk(_unpickled(payload), vectorized, points)
+
+
+def _timed_out(n_points: int, limit: float, detail: str) -> BatchResult:
+    """A chunk whose worker was stopped: every point counts as timed out."""
+    return BatchResult(np.full(n_points, np.nan), {i: timeout_message(limit, detail) for i in range(n_points)})
+
+
+def _check_shippable(function: Callable, how: str) -> None:
+    """Refuse, in one line, a function that cannot be pickled for the workers."""
+    import pickle
+
+    dumps = pickle.dumps
+    if how == "cloudpickle":
+        import cloudpickle
+
+        dumps = cloudpickle.dumps
+    try:
+        dumps(function)
+    except Exception as error:  # noqa: BLE001 - pickling raises many kinds of errors
+        from .errors import WalktuneError
+
+        raise WalktuneError(
+            f"the log-density cannot be sent to worker processes ({type(error).__name__}: {error}); define it at the "
+            "top level of a model file, and keep open files, locks and connections out of what it refers to "
+            "(open them inside the function), or run without --workers/--dask."
+        ) from None
+
+
+def _check_limit(limit) -> float | None:
+    if limit is None:
+        return None
+    if not isinstance(limit, (int, float)) or not np.isfinite(limit) or limit <= 0:
+        from .errors import WalktuneError
+
+        raise WalktuneError(f"the time limit must be a positive number of seconds; got {limit!r}.")
+    return float(limit)
 
 
 def _worker_setup() -> None:
@@ -138,19 +233,30 @@ class ProcessPoolEvaluator:
     loaded) reaches the workers as it is. A worker that dies mid-batch breaks
     the pool: it is rebuilt and the batch evaluated again, up to ``retries``
     times, then a :class:`~walktune.errors.SamplingError` says so.
+
+    With ``time_limit`` (seconds per evaluation) each evaluation runs under a
+    SIGALRM timer in its worker: Python code, sleeps and most blocking calls
+    are stopped there and the point counts as a failed evaluation. Code that
+    never returns to the interpreter cannot be stopped that way; when a chunk is
+    still out ``time_limit`` per point plus a grace period later, the workers are
+    killed, the pool rebuilt, and the chunk evaluated again one point at a time
+    under the same deadline, so that only the late points count as timed out.
     """
 
-    def __init__(self, log_density: Callable, vectorized: bool = False, workers: int = 2, retries: int = 2):
+    def __init__(self, log_density: Callable, vectorized: bool = False, workers: int = 2, retries: int = 2,
+                 time_limit: float | None = None):
         from concurrent.futures import ProcessPoolExecutor  # noqa: F401  (checked here, used below)
 
         if not isinstance(workers, int) or workers < 1:
             from .errors import WalktuneError
 
             raise WalktuneError(f"`workers` must be a whole number >= 1; got {workers!r}.")
+        _check_shippable(log_density, "pickle")
         self.log_density = log_density
         self.vectorized = vectorized
         self.workers = workers
         self.retries = retries
+        self.time_limit = _check_limit(time_limit)
         self._pool = None
 
     @property
@@ -176,9 +282,10 @@ class ProcessPoolEvaluator:
         for attempt in range(self.retries + 1):
             try:
                 futures = [
-                    self._executor().submit(_evaluate_chunk, self.log_density, self.vectorized, points[a:b]) for a, b in pieces
+                    self._executor().submit(_evaluate_chunk, self.log_density, self.vectorized, points[a:b], self.time_limit)
+                    for a, b in pieces
                 ]
-                results = [f.result() for f in futures]
+                results = self._collect(futures, pieces, points)
             except BrokenProcessPool:
                 self._pool = None  # a worker died: rebuild the pool and evaluate the batch again
                 if attempt == self.retries:
@@ -189,6 +296,39 @@ class ProcessPoolEvaluator:
                 continue
             return _merge(points.shape[0], list(zip(pieces, results)))
         raise AssertionError("unreachable")
+
+    def _collect(self, futures, pieces, points) -> list:
+        if self.time_limit is None:
+            return [f.result() for f in futures]
+        results = self._within_deadline(futures, max(b - a for a, b in pieces))
+        for k, (a, b) in enumerate(pieces):
+            if results[k] is None:
+                # The chunk's worker was stopped: find the late point by evaluating the chunk one point at a time.
+                singles = [
+                    self._executor().submit(_evaluate_chunk, self.log_density, self.vectorized, points[i : i + 1], self.time_limit)
+                    for i in range(a, b)
+                ]
+                per_worker = -(-(b - a) // self.workers)
+                late_detail = " and did not answer the alarm; its worker was stopped"
+                results[k] = _merge(b - a, [
+                    ((i, i + 1), r if r is not None else _timed_out(1, self.time_limit, late_detail))
+                    for i, r in enumerate(self._within_deadline(singles, per_worker))
+                ])
+        return results
+
+    def _within_deadline(self, futures, points_per_worker: int) -> list:
+        """Results of the futures back in time, None for the others (whose workers are then killed)."""
+        from concurrent.futures import wait
+
+        done, late = wait(futures, timeout=self.time_limit * points_per_worker + max(2.0, self.time_limit))
+        results = [f.result() if f in done else None for f in futures]
+        if late:
+            # Code that never returns to the interpreter: stop the workers; the pool is rebuilt on next use.
+            for process in list(getattr(self._pool, "_processes", {}).values()):
+                process.kill()
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            self._pool = None
+        return results
 
     def close(self) -> None:
         if self._pool is not None:
@@ -201,16 +341,18 @@ class DaskEvaluator:
 
     ``address`` is a scheduler address (``tcp://host:8786``) or ``local:N``
     to start a LocalCluster of N worker processes on this machine. The
-    function is shipped with cloudpickle; functions from a walktune-loaded
+    function is shipped with cloudpickle inside every task; functions from a walktune-loaded
     model file are pickled by value, so the workers need not import the file.
     Random numbers never leave the driver, so results are the same bit for bit
     as in-process. A task lost with its worker is recomputed by Dask on
     another worker.
     """
 
-    def __init__(self, log_density: Callable, vectorized: bool = False, address: str = "local:2", timeout: float = 5.0):
+    def __init__(self, log_density: Callable, vectorized: bool = False, address: str = "local:2", timeout: float = 5.0,
+                 time_limit: float | None = None):
         from .errors import WalktuneError
 
+        self.time_limit = _check_limit(time_limit)
         try:
             import cloudpickle
             from distributed import Client, LocalCluster
@@ -219,6 +361,7 @@ class DaskEvaluator:
         module = sys.modules.get(getattr(log_density, "__module__", "") or "")
         if module is not None and module.__name__.startswith("walktune_model_"):
             cloudpickle.register_pickle_by_value(module)
+        _check_shippable(log_density, "cloudpickle")
         self.log_density = log_density
         self.vectorized = vectorized
         self._cluster = None
@@ -240,20 +383,59 @@ class DaskEvaluator:
                     f"no Dask scheduler answered at {address} within {timeout:g} s ({type(error).__name__}); "
                     "check the address and that the scheduler is running."
                 ) from None
-        self._remote_function = self.client.scatter(log_density, broadcast=True)
+        # The pickled function travels with every task (a few kB): any worker, including one
+        # started to replace a lost worker, can run any task. Workers unpickle it once.
+        import cloudpickle
+
+        self._payload = cloudpickle.dumps(log_density)
 
     @property
     def parallelism(self) -> int:
         return max(1, sum(self.client.nthreads().values()))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
+        from distributed.scheduler import KilledWorker
+
+        from .errors import SamplingError
+
         pieces = _chunks(points.shape[0], self.parallelism)
         futures = [
-            self.client.submit(_evaluate_chunk, self._remote_function, self.vectorized, points[a:b], pure=False)
+            self.client.submit(_evaluate_pickled, self._payload, self.vectorized, points[a:b], pure=False)
             for a, b in pieces
         ]
-        results = self.client.gather(futures)
+        try:
+            results = self.client.gather(futures) if self.time_limit is None else self._collect(futures, pieces)
+        except KilledWorker:
+            raise SamplingError(
+                "Dask workers died repeatedly evaluating one batch (each time the task was moved to another worker); "
+                "the log-density may crash the interpreter or run out of memory. Run with --workers 1 to see its error."
+            ) from None
         return _merge(points.shape[0], list(zip(pieces, results)))
+
+    def _collect(self, futures, pieces) -> list:
+        """Gather with a deadline of ``time_limit`` per point; restart the workers of late chunks."""
+        from distributed import TimeoutError as DaskTimeout
+        from distributed import wait
+
+        longest = max(b - a for a, b in pieces)
+        try:
+            wait(futures, timeout=self.time_limit * longest + 1.0)
+        except (TimeoutError, DaskTimeout):
+            pass
+        late = [f for f in futures if not f.done()]
+        if late:
+            keys = {f.key for f in late}
+            busy = [w for w, tasks in self.client.processing().items() if keys & set(tasks)]
+            self.client.cancel(late)
+            if busy:
+                try:
+                    self.client.restart_workers(busy)  # a hung task cannot be stopped in its thread; its process can
+                except Exception:  # noqa: BLE001 - workers without a nanny cannot be restarted; go on without them
+                    pass
+        detail = " on a Dask worker, which was restarted"
+        return [
+            _timed_out(b - a, self.time_limit, detail) if f in late else f.result() for f, (a, b) in zip(futures, pieces)
+        ]
 
     def close(self) -> None:
         self.client.close()
@@ -261,17 +443,23 @@ class DaskEvaluator:
             self._cluster.close()
 
 
-def make_evaluator(log_density: Callable, vectorized: bool = False, workers: int | None = None, dask: str | None = None):
-    """The evaluator for the command line's ``--workers`` / ``--dask`` options."""
+def make_evaluator(log_density: Callable, vectorized: bool = False, workers: int | None = None, dask: str | None = None,
+                   time_limit: float | None = None):
+    """The evaluator for the command line's ``--workers`` / ``--dask`` / ``--time-limit`` options."""
     from .errors import WalktuneError
 
     if workers is not None and dask is not None:
         raise WalktuneError("give --workers or --dask, not both.")
+    _check_limit(time_limit)
     if dask is not None:
-        return DaskEvaluator(log_density, vectorized, dask)
+        return DaskEvaluator(log_density, vectorized, dask, time_limit=time_limit)
     if workers is not None:
         if workers < 1:
             raise WalktuneError(f"--workers must be at least 1; got {workers}.")
-        if workers > 1:
-            return ProcessPoolEvaluator(log_density, vectorized, workers)
+        if workers > 1 or time_limit is not None:
+            return ProcessPoolEvaluator(log_density, vectorized, workers, time_limit=time_limit)
+    if time_limit is not None:
+        raise WalktuneError(
+            "--time-limit needs --workers N or --dask: an evaluation running in this process cannot be stopped safely."
+        )
     return InProcessEvaluator(log_density, vectorized)

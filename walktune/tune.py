@@ -32,7 +32,7 @@ from .diagnostics import summary
 from .checkpoint import Interrupted
 from .engine import sample
 from .errors import TargetError, WalktuneError
-from .evaluators import BatchResult, InProcessEvaluator
+from .evaluators import TIMEOUT_PREFIX, BatchResult, InProcessEvaluator
 from .geometry import (
     boundary_findings,
     climb,
@@ -160,6 +160,7 @@ class _Counted:
         self.count = 0
         self.seconds = 0.0
         self.busy_seconds = 0.0
+        self.timeouts = 0
         self.bounded = bool(np.any(np.isfinite(bounds)))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
@@ -191,6 +192,8 @@ class _Counted:
             seconds, busy = time.perf_counter() - t0, result.busy_seconds
         self.seconds += seconds
         self.busy_seconds += busy
+        if result.errors:
+            self.timeouts += sum(text.startswith(TIMEOUT_PREFIX) for text in result.errors.values())
         return result
 
     def scalar(self, theta: np.ndarray) -> float:
@@ -449,6 +452,10 @@ class TuneResult:
         from .io import write_folder
 
         return write_folder(Path(directory), result_files(self))
+
+
+def _limit_text(limit) -> str:
+    return f" ({limit:g} s)" if limit else ""
 
 
 def _worker_busy(counted: _Counted, evaluator) -> float | None:
@@ -966,6 +973,18 @@ def _tune_job(
                     {"errors": run.error_count, "nans": run.nan_count},
                 )
             )
+
+    if counted.timeouts:
+        findings.append(
+            Finding(
+                "timed-out-evaluations", "warn", [],
+                f"{counted.timeouts} evaluations did not return within the time limit"
+                f"{_limit_text(getattr(base, 'time_limit', None))} and were rejected as failed. A chain that rejects "
+                "slow regions samples the posterior restricted to where the model answers in time: raise the limit "
+                "if those regions matter.",
+                {"timeouts": counted.timeouts},
+            )
+        )
 
     total = counted.count
     return TuneResult(
