@@ -39,6 +39,29 @@ def test_process_pool_gives_the_serial_result_bit_for_bit():
     np.testing.assert_array_equal(parallel.proposal_covariance, serial.proposal_covariance)
 
 
+def likelihood(theta):
+    return -0.5 * float(((theta - np.array([1.0, 2.0])) ** 2 / np.array([0.1, 4.0])).sum())
+
+
+def log_prior(theta):
+    return -0.5 * float(theta @ theta) / 9.0
+
+
+def test_a_separate_prior_with_workers_gives_the_serial_result_bit_for_bit():
+    # The likelihood runs on the workers and the prior on the driver; the sums are the serial ones.
+    options = dict(seed=6, budget=8_000, prior={"theta[1]": ("normal", 0.0, 5.0)}, log_prior=log_prior)
+    serial = walktune.tune(likelihood, [0.5, 0.5], **options)
+    pool = ProcessPoolEvaluator(likelihood, workers=2)
+    try:
+        parallel = walktune.tune(None, [0.5, 0.5], evaluator=pool, **options)
+    finally:
+        pool.close()
+    assert set(parallel.runs) == set(serial.runs)
+    for name, run in serial.runs.items():
+        np.testing.assert_array_equal(parallel.runs[name].draws, run.draws)
+    assert parallel.reparam.informed == serial.reparam.informed
+
+
 def crash_in_worker(theta):
     # Kills the worker process running it the first time a point lands far out.
     if theta[0] > 1.5 and os.getpid() != PARENT and not Path(CRASHED).exists():

@@ -269,8 +269,6 @@ def _run_tune(
         if workers is not None or dask is not None or time_limit is not None:
             from .evaluators import make_evaluator
 
-            if spec.log_prior is not None or spec.prior is not None:
-                raise WalktuneError("--workers/--dask with a separate prior is not supported yet; add the prior to the function.")
             evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask, time_limit=time_limit)
         if options["chains"] is None:
             # Many chains keep many workers busy. Fixed here, so that a resume on other workers runs the same chains.

@@ -18,6 +18,7 @@ Every figure in the comparison comes from fixed-proposal chains.
 from __future__ import annotations
 
 import time
+import traceback
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable
@@ -226,6 +227,26 @@ class _SamplerSpaceEvaluator:
         return BatchResult(values, errors)
 
 
+class _WithPrior:
+    """An evaluator of the likelihood (anywhere) plus a prior given apart (here, on the driver).
+
+    The sum is formed as :meth:`_PriorTerms.posterior` forms it, so results
+    match in-process evaluation bit for bit.
+    """
+
+    def __init__(self, evaluator, prior_terms):
+        self.evaluator = evaluator
+        self.prior_terms = prior_terms
+        self.parallelism = getattr(evaluator, "parallelism", 1)
+        self.time_limit = getattr(evaluator, "time_limit", None)
+
+    def __call__(self, points: np.ndarray) -> BatchResult:
+        extra, prior_errors = self.prior_terms.log_prior_values(points)
+        result = self.evaluator(points)
+        errors = {**result.errors, **prior_errors}
+        return BatchResult(np.asarray(result.values, dtype=float) + extra, errors, result.busy_seconds)
+
+
 class _PriorTerms:
     """A prior given apart from the likelihood: its log-density and its covariance."""
 
@@ -266,6 +287,21 @@ class _PriorTerms:
             return value if self.vectorized else float(value[0])
 
         return log_posterior
+
+    def log_prior_values(self, points: np.ndarray) -> tuple[np.ndarray, dict]:
+        """The prior's log-density at each point, and the tracebacks of points where it raised."""
+        extra = self._spec_log_density(points)
+        errors = {}
+        if self.log_prior is not None:
+            if self.vectorized:
+                extra = extra + np.asarray(self.log_prior(points), dtype=float).reshape(-1)
+            else:
+                for i, point in enumerate(points):
+                    try:
+                        extra[i] = extra[i] + float(np.asarray(self.log_prior(point), dtype=float).reshape(-1)[0])
+                    except Exception:  # noqa: BLE001 - a failed evaluation, reported like the likelihood's
+                        extra[i], errors[i] = np.nan, traceback.format_exc()
+        return extra, errors
 
     def covariance(self, centre: np.ndarray, posterior_sd: np.ndarray) -> np.ndarray:
         """Prior covariance: from specs; from the log-prior's Hessian at ``centre``; else very wide."""
@@ -753,10 +789,12 @@ def _tune_job(
     mode_seed, pilot_seed, proof_seed = seed_seq.spawn(3)
     prior_terms = None
     if log_prior is not None or prior is not None:
-        if evaluator is not None:
-            raise WalktuneError("give the prior inside the log-density when using a custom evaluator.")
         prior_terms = _PriorTerms(log_prior, prior, names, bound_array, vectorized)
-        log_density = prior_terms.posterior(log_density)
+        if evaluator is not None:
+            # The evaluator computes the likelihood (on workers); the prior is added here.
+            evaluator = _WithPrior(evaluator, prior_terms)
+        else:
+            log_density = prior_terms.posterior(log_density)
     if transforms:
         from .reparam import choose_transforms
 
