@@ -10,7 +10,6 @@ evaluations ran.
 
 from __future__ import annotations
 
-import functools
 import sys
 import time
 import traceback
@@ -150,18 +149,6 @@ def _evaluate_chunk(log_density: Callable, vectorized: bool, points: np.ndarray,
         result = _evaluate_limited(log_density, vectorized, points, limit)
     result.busy_seconds = time.perf_counter() - t0
     return result
-
-
-@functools.lru_cache(maxsize=4)
-def _unpickled(payload: bytes):
-    import pickle
-
-    return pickle.loads(payload)
-
-
-def _evaluate_pickled(payload: bytes, vectorized: bool, points: np.ndarray) -> BatchResult:
-    """Run on a Dask worker: the function arrives pickled and is unpickled once per worker process."""
-    return _evaluate_chunk(_unpickled(payload), vectorized, points)
 
 
 def _timed_out(n_points: int, limit: float, detail: str) -> BatchResult:
@@ -336,20 +323,39 @@ class ProcessPoolEvaluator:
             self._pool = None
 
 
+class _WorkerEvaluator:
+    """Lives on a Dask worker as an actor: holds the unpickled function and evaluates chunks sent to it."""
+
+    def __init__(self, payload: bytes, vectorized: bool):
+        import pickle
+
+        self.log_density = pickle.loads(payload)
+        self.vectorized = vectorized
+
+    def evaluate(self, points: np.ndarray) -> BatchResult:
+        return _evaluate_chunk(self.log_density, self.vectorized, points)
+
+
 class DaskEvaluator:
-    """Evaluate a batch on a Dask cluster (``walktune[cluster]``), one chunk per worker thread.
+    """Evaluate a batch on a Dask cluster (``walktune[cluster]``), one chunk per worker process.
 
     ``address`` is a scheduler address (``tcp://host:8786``) or ``local:N``
     to start a LocalCluster of N worker processes on this machine. The
-    function is shipped with cloudpickle inside every task; functions from a walktune-loaded
-    model file are pickled by value, so the workers need not import the file.
-    Random numbers never leave the driver, so results are the same bit for bit
-    as in-process. A task lost with its worker is recomputed by Dask on
-    another worker.
+    function is pickled once with cloudpickle (functions from a walktune-loaded
+    model file by value, so the workers need not import the file) and held on
+    each worker by a Dask actor; a batch is one direct call per worker, which
+    costs a third of the latency of a scheduled task. Random numbers never leave
+    the driver, so results are the same bit for bit as in-process.
+
+    A worker lost mid-batch: the actors are started again on the workers there
+    are (Dask's nannies restart lost workers) and the batch is evaluated again,
+    up to ``retries`` times. With ``time_limit``, a chunk not back within
+    ``time_limit`` per point (plus a second) counts as timed out and its worker
+    is restarted, since a running evaluation cannot be stopped inside its thread.
     """
 
     def __init__(self, log_density: Callable, vectorized: bool = False, address: str = "local:2", timeout: float = 5.0,
-                 time_limit: float | None = None):
+                 time_limit: float | None = None, retries: int = 3):
         from .errors import WalktuneError
 
         self.time_limit = _check_limit(time_limit)
@@ -364,6 +370,8 @@ class DaskEvaluator:
         _check_shippable(log_density, "cloudpickle")
         self.log_density = log_density
         self.vectorized = vectorized
+        self.retries = retries
+        self._payload = cloudpickle.dumps(log_density)
         self._cluster = None
         if address.startswith("local:"):
             try:
@@ -383,59 +391,74 @@ class DaskEvaluator:
                     f"no Dask scheduler answered at {address} within {timeout:g} s ({type(error).__name__}); "
                     "check the address and that the scheduler is running."
                 ) from None
-        # The pickled function travels with every task (a few kB): any worker, including one
-        # started to replace a lost worker, can run any task. Workers unpickle it once.
-        import cloudpickle
+        self._expected_workers = 0
+        self._actors: list = []
+        self._start_actors()
 
-        self._payload = cloudpickle.dumps(log_density)
+    def _start_actors(self) -> None:
+        from .errors import WalktuneError
+
+        try:
+            self.client.wait_for_workers(max(1, self._expected_workers), timeout=30)
+        except (TimeoutError, OSError):
+            if not self.client.scheduler_info()["workers"]:
+                raise WalktuneError("the Dask cluster has no workers; start some (dask worker ADDRESS).") from None
+        workers = sorted(self.client.scheduler_info()["workers"])
+        self._expected_workers = max(self._expected_workers, len(workers))
+        futures = [
+            self.client.submit(_WorkerEvaluator, self._payload, self.vectorized, workers=[w], allow_other_workers=False,
+                               actor=True, pure=False)
+            for w in workers
+        ]
+        self._actors = list(zip(workers, self.client.gather(futures)))
+        self._actor_futures = futures  # keep the actors alive
 
     @property
     def parallelism(self) -> int:
-        return max(1, sum(self.client.nthreads().values()))
+        return max(1, len(self._actors))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
-        from distributed.scheduler import KilledWorker
-
         from .errors import SamplingError
 
-        pieces = _chunks(points.shape[0], self.parallelism)
-        futures = [
-            self.client.submit(_evaluate_pickled, self._payload, self.vectorized, points[a:b], pure=False)
-            for a, b in pieces
-        ]
-        try:
-            results = self.client.gather(futures) if self.time_limit is None else self._collect(futures, pieces)
-        except KilledWorker:
-            raise SamplingError(
-                "Dask workers died repeatedly evaluating one batch (each time the task was moved to another worker); "
-                "the log-density may crash the interpreter or run out of memory. Run with --workers 1 to see its error."
-            ) from None
-        return _merge(points.shape[0], list(zip(pieces, results)))
+        for attempt in range(self.retries + 1):
+            pieces = _chunks(points.shape[0], self.parallelism)
+            calls = [actor.evaluate(points[a:b]) for (_, actor), (a, b) in zip(self._actors, pieces)]
+            try:
+                results = self._collect(calls, pieces)
+            except Exception:  # noqa: BLE001 - a lost worker shows as many kinds of comm errors
+                # The user's errors are caught on the worker; this is a worker or connection lost.
+                if attempt == self.retries:
+                    raise SamplingError(
+                        f"Dask workers were lost {self.retries + 1} times evaluating one batch; the log-density may "
+                        "crash the interpreter or run out of memory, or the cluster is failing. Run with --workers 1 "
+                        "to see the log-density's own error."
+                    ) from None
+                self._start_actors()
+                continue
+            return _merge(points.shape[0], list(zip(pieces, results)))
+        raise AssertionError("unreachable")
 
-    def _collect(self, futures, pieces) -> list:
-        """Gather with a deadline of ``time_limit`` per point; restart the workers of late chunks."""
-        from distributed import TimeoutError as DaskTimeout
-        from distributed import wait
-
-        longest = max(b - a for a, b in pieces)
-        try:
-            wait(futures, timeout=self.time_limit * longest + 1.0)
-        except (TimeoutError, DaskTimeout):
-            pass
-        late = [f for f in futures if not f.done()]
+    def _collect(self, calls, pieces) -> list:
+        if self.time_limit is None:
+            return [call.result() for call in calls]
+        deadline = time.monotonic() + self.time_limit * max(b - a for a, b in pieces) + 1.0
+        results, late = [], []
+        for k, call in enumerate(calls):
+            try:
+                results.append(call.result(timeout=max(0.0, deadline - time.monotonic())))
+            except TimeoutError:
+                results.append(None)
+                late.append(self._actors[k][0])
         if late:
-            keys = {f.key for f in late}
-            busy = [w for w, tasks in self.client.processing().items() if keys & set(tasks)]
-            self.client.cancel(late)
-            if busy:
-                try:
-                    self.client.restart_workers(busy)  # a hung task cannot be stopped in its thread; its process can
-                except Exception:  # noqa: BLE001 - workers without a nanny cannot be restarted; go on without them
-                    pass
-        detail = " on a Dask worker, which was restarted"
-        return [
-            _timed_out(b - a, self.time_limit, detail) if f in late else f.result() for f, (a, b) in zip(futures, pieces)
-        ]
+            # A running evaluation cannot be stopped in its thread; its worker process can be restarted.
+            try:
+                self.client.restart_workers(late)
+            except Exception:  # noqa: BLE001 - workers without a nanny cannot be restarted; go on without them
+                pass
+            self._start_actors()
+            detail = " on a Dask worker, which was restarted"
+            results = [r if r is not None else _timed_out(b - a, self.time_limit, detail) for r, (a, b) in zip(results, pieces)]
+        return results
 
     def close(self) -> None:
         self.client.close()
