@@ -27,6 +27,7 @@ bench: $(STAMP)
 	$(PY) benchmarks/bench_inspect.py
 	$(PY) benchmarks/bench_report.py
 	$(PY) benchmarks/bench_reparam.py
+	$(PY) benchmarks/bench_parallel.py
 
 clean:
 	rm -rf $(VENV) walktune-demo .pytest_cache

@@ -323,6 +323,18 @@ class ProcessPoolEvaluator:
             self._pool = None
 
 
+#: Dask settings for the LocalCluster walktune starts (``--dask local:N``): no dashboard is shown, so the
+#: statistical profiler and the monitors feeding it are turned off or slowed. On a small machine they
+#: cost half a core for 16 idle workers, which the evaluations need.
+LOCAL_CLUSTER_CONFIG = {
+    "distributed.worker.profile.enabled": False,
+    "distributed.admin.system-monitor.interval": "2s",
+    "distributed.admin.system-monitor.gil.enabled": False,
+    "distributed.worker.memory.monitor-interval": "1s",
+    "distributed.admin.tick.interval": "1s",
+}
+
+
 class _WorkerEvaluator:
     """Lives on a Dask worker as an actor: holds the unpickled function and evaluates chunks sent to it."""
 
@@ -380,8 +392,11 @@ class DaskEvaluator:
                 raise WalktuneError(f"--dask {address!r}: after 'local:' give the number of workers, e.g. local:4.") from None
             if n < 1:
                 raise WalktuneError(f"--dask {address!r}: the number of workers must be at least 1.")
-            self._cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
-                                         host="127.0.0.1")
+            import dask
+
+            with dask.config.set(LOCAL_CLUSTER_CONFIG):
+                self._cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
+                                             host="127.0.0.1")
             self.client = Client(self._cluster)
         else:
             try:
