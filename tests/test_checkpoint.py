@@ -347,3 +347,7 @@ def test_a_new_run_will_not_overwrite_a_checkpoint(copy_of, model_file):
 
 def test_resume_without_a_checkpoint(tmp_path):
     _fails(["tune", "--resume", str(tmp_path)], "no checkpoint", tmp_path)
+
+
+def test_report_of_an_interrupted_run_says_to_resume(copy_of):
+    _fails(["report", str(copy_of)], "--resume", copy_of)

@@ -73,6 +73,11 @@ def load_run(folder) -> Run:
     if not folder.is_dir():
         raise WalktuneError(f"{folder} is not a folder; point at a walktune output folder.")
     if not (folder / "advice.json").exists():
+        if (folder / "checkpoint.npz").exists():
+            raise WalktuneError(
+                f"{folder} holds an interrupted run (checkpoint.npz, partial-advice.json); finish it with "
+                f"`walktune tune --resume {folder}`, then make the report."
+            )
         raise WalktuneError(f"{folder} holds no walktune run (no advice.json); run `walktune tune` or `inspect --out` first.")
     advice = load_advice(folder)
     names = list(advice["parameter_names"])
