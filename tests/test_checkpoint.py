@@ -151,6 +151,19 @@ def test_a_changed_model_is_caught_on_replay_and_the_checkpoint_kept(tmp_path):
     assert (tmp_path / FILE_NAME).read_bytes() == before
 
 
+def test_a_stop_while_replaying_leaves_the_checkpoint_as_it_was(tmp_path):
+    box = [Checkpoint(tmp_path, {})]
+    with pytest.raises(Interrupted):
+        walktune.tune(_stopping(box, 3_000), np.ones(3), seed=5, budget=12_000, checkpoint=box[0])
+    before = (tmp_path / FILE_NAME).read_bytes()
+    resumed = Checkpoint(tmp_path, {}, resume=True)
+    resumed.request_stop(signal.SIGTERM)
+    with pytest.raises(Interrupted) as stop:
+        walktune.tune(gaussian, np.ones(3), seed=5, budget=12_000, checkpoint=resumed)
+    assert stop.value.signum == signal.SIGTERM and stop.value.checkpoint == tmp_path / FILE_NAME
+    assert (tmp_path / FILE_NAME).read_bytes() == before
+
+
 def test_other_options_leave_the_record_and_are_caught(tmp_path):
     box = [Checkpoint(tmp_path, {})]
     with pytest.raises(Interrupted):

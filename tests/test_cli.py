@@ -116,6 +116,7 @@ def broken_models(tmp_path):
     (tmp_path / "ok.py").write_text(
         "import numpy as np\nPARAMETERS = {'a': 0.0, 'b': 1.0}\nBOUNDS = {'b': (0, 10)}\n"
         "def lp(x):\n    return -0.5 * float(x @ x)\n"
+        "def nowhere(x):\n    return -np.inf\n"
     )
     return tmp_path
 
@@ -137,6 +138,7 @@ def broken_models(tmp_path):
         (["ok.py:lp", "--current-proposal", "bad.npy"], ["(2, 2)"]),
         (["ok.py:lp", "--current-proposal", "notpd.npy"], ["positive definite"]),
         (["ok.py:lp", "--budget", "50"], ["too small"]),
+        (["ok.py:nowhere"], ["start inside the support"]),  # evaluated once: still no folder, no checkpoint
     ],
 )
 def test_bad_input_gives_one_line_and_leaves_nothing(broken_models, monkeypatch, args, fragments):

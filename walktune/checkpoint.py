@@ -228,6 +228,10 @@ class Checkpoint:
 
         Returns the result, the wall seconds and the worker-busy seconds.
         """
+        if self.stop_signal is not None:
+            stop = Interrupted(self.stop_signal)
+            stop.checkpoint = self.save()  # while replaying, the checkpoint on disk is already complete
+            raise stop
         if self._cursor < self._replay:
             i = self._cursor
             n = points.shape[0]
@@ -244,10 +248,6 @@ class Checkpoint:
             self._cursor += 1
             self._value_offset += n
             return BatchResult(self._values[i].copy(), errors), self._seconds[i], self._busy[i]
-        if self.stop_signal is not None:
-            stop = Interrupted(self.stop_signal)
-            stop.checkpoint = self.save()
-            raise stop
         t0 = time.perf_counter()
         result = evaluator(points)
         seconds = time.perf_counter() - t0

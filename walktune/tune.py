@@ -32,7 +32,7 @@ from .analysis import Structure, analyse
 from .diagnostics import summary
 from .checkpoint import Interrupted
 from .engine import sample
-from .errors import TargetError, WalktuneError
+from .errors import SamplingError, TargetError, WalktuneError
 from .evaluators import TIMEOUT_PREFIX, BatchResult, InProcessEvaluator
 from .geometry import (
     boundary_findings,
@@ -736,9 +736,11 @@ def tune(
     except Interrupted as stop:
         stop.partial = state.partial_advice()
         raise
-    except BaseException:
-        if checkpoint is not None:
-            checkpoint.save()  # keep what was evaluated (a no-op when the record did not grow)
+    except BaseException as error:
+        # Keep what was evaluated (a no-op when the record did not grow), except after a user error
+        # such as a start outside the support: there is nothing worth resuming, and a fresh run must not find it.
+        if checkpoint is not None and (isinstance(error, SamplingError) or not isinstance(error, WalktuneError)):
+            checkpoint.save()
         raise
 
 
