@@ -104,6 +104,8 @@ def test_resume_after_a_stop_anywhere_is_the_uninterrupted_run(tmp_path, uninter
     recorded = read_meta(tmp_path)["evaluations"]
     assert stop_at <= recorded < stop_at + 64
     assert stop.value.partial["evaluations"] >= recorded  # also counts points outside bounds (none here)
+    snapshot = read_meta(tmp_path)["snapshot"]  # the last stage end's partial advice, kept for a hard kill
+    assert snapshot == {} or (snapshot["partial"] is True and snapshot["evaluations"] <= recorded)
 
     live = [0]
 

@@ -812,11 +812,13 @@ def _tune_job(
         if what == "the pilot":
             state.estimate(p.covariance, p.scale_factor, f"{what} after {len(p.stages)} stages")
         if checkpoint is not None:
+            checkpoint.snapshot = state.partial_advice()
             checkpoint.stage_ended(f"{state.stage} stage {len(p.stages)}")
 
     def report(stage, done, total):
         state.stage = stage
         if checkpoint is not None and done >= total:
+            checkpoint.snapshot = state.partial_advice()  # readable from the checkpoint even after a hard kill
             checkpoint.stage_ended(stage)
         user_progress(stage, done, total)
 
