@@ -232,15 +232,18 @@ def _wait_for(path: Path, proc, seconds: float = 120.0) -> None:
 
 @pytest.mark.slow
 @pytest.mark.parametrize(
-    "sig, mark_at, extra",
+    "sig, mark_at, extra, resume_extra",
     [
-        (signal.SIGINT, 150, []),  # in the mode search
-        (signal.SIGTERM, 1_800, []),  # in the pilot
-        (signal.SIGINT, 4_000, []),  # in the proof runs
-        (signal.SIGTERM, 1_500, ["--workers", "2"]),  # with a process pool (marks count per worker)
+        (signal.SIGINT, 150, [], []),  # in the mode search
+        (signal.SIGTERM, 1_800, [], []),  # in the pilot
+        (signal.SIGINT, 4_000, [], ["--workers", "2"]),  # in the proof runs; resumed on a process pool
+        (signal.SIGTERM, 1_500, ["--workers", "2"], ["--workers", "2"]),  # a process pool (marks count per worker)
+        (signal.SIGINT, 700, ["--dask", "local:2"], []),  # a Dask LocalCluster; resumed in this process
     ],
 )
-def test_signal_stops_with_partial_advice_and_resume_ends_bit_for_bit(tmp_path, model_file, reference, sig, mark_at, extra):
+def test_signal_stops_with_partial_advice_and_resume_ends_bit_for_bit(
+    tmp_path, model_file, reference, sig, mark_at, extra, resume_extra
+):
     out = tmp_path / "run"
     mark = tmp_path / "mark"
     proc = _walktune(f"{model_file}:log_density", *RUN, "--out", str(out), *extra,
@@ -256,7 +259,7 @@ def test_signal_stops_with_partial_advice_and_resume_ends_bit_for_bit(tmp_path, 
     assert read_meta(out)["evaluations"] > 0
     assert not (out / "advice.json").exists()
 
-    resumed = _walktune("--resume", str(out), "-q", *extra)
+    resumed = _walktune("--resume", str(out), "-q", *resume_extra)
     _, stderr = resumed.communicate(timeout=300)
     assert resumed.returncode == 0, stderr
     _same_outputs(out, reference)
