@@ -369,3 +369,23 @@ def test_resume_without_a_checkpoint(tmp_path):
 
 def test_report_of_an_interrupted_run_says_to_resume(copy_of):
     _fails(["report", str(copy_of)], "--resume", copy_of)
+
+
+CRASHING = MODEL.replace(
+    "    time.sleep(float(os.environ.get(\"SLEEP\", \"0\")))",
+    "    if x[0] > 1.5 and os.getpid() != int(os.environ[\"DRIVER\"]):\n"
+    "        os.kill(os.getpid(), signal.SIGKILL)  # every worker that meets this region dies",
+)
+
+
+def test_workers_dying_again_and_again_stop_the_run_with_the_checkpoint_kept(tmp_path):
+    assert "SIGKILL" in CRASHING
+    (tmp_path / "crashing.py").write_text(CRASHING)
+    out = tmp_path / "run"
+    proc = _walktune(f"{tmp_path / 'crashing.py'}:log_density", *RUN, "--out", str(out), "--workers", "2",
+                     env={"DRIVER": "0"})
+    _, stderr = proc.communicate(timeout=300)
+    assert proc.returncode == 2
+    lines = stderr.strip().splitlines()
+    assert lines[-1].startswith("error:") and "worker processes died" in lines[-1] and "Traceback" not in stderr
+    assert read_meta(out)["evaluations"] > 0  # what was evaluated before is kept for --resume
