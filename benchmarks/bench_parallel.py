@@ -1,7 +1,7 @@
 """Speed of parallel and distributed evaluation, as ratios against the serial evaluator run here.
 
-    python benchmarks/bench_parallel.py            # all three parts (about 3 minutes on 2 cores)
-    python benchmarks/bench_parallel.py pilot      # or one part: pilot, scale, overhead
+    python benchmarks/bench_parallel.py            # all four parts (about 4 minutes on 2 cores)
+    python benchmarks/bench_parallel.py pilot      # or one part: pilot, scale, overhead, threads
 
 (1) pilot: wall time of the adaptive pilot on a log-density that takes 10 ms
     (sleeping, or spinning the CPU), with 2 workers (process pool, and a Dask
@@ -13,6 +13,10 @@
 (3) overhead: per-evaluation cost of each evaluator (and of checkpoint
     recording) on a 10 microsecond log-density with 4 chains, as a ratio of
     the in-process call.
+(4) threads: whether threads help, on a 1 ms log-density that releases the GIL
+    (SHA-256 of a buffer, which hashlib computes without the GIL) and on one that
+    holds it (a Python loop): steps per second with 2 threads and 2 pool
+    workers against in-process, 4 chains.
 The same seed is used everywhere, and each parallel pilot is checked to give the
 serial pilot's covariance bit for bit.
 """
@@ -27,7 +31,7 @@ import numpy as np
 
 from walktune.checkpoint import Checkpoint
 from walktune.engine import sample
-from walktune.evaluators import DaskEvaluator, InProcessEvaluator, ProcessPoolEvaluator
+from walktune.evaluators import DaskEvaluator, InProcessEvaluator, ProcessPoolEvaluator, ThreadPoolEvaluator
 from walktune.pilot import run_pilot
 
 DIM = 3
@@ -131,6 +135,7 @@ def part_overhead() -> None:
             return self.checkpoint.evaluate(points, self.inner)[0]
 
     rows.append(("in-process + checkpoint record", Recorded(), 5_000))
+    rows.append(("threads, 2", ThreadPoolEvaluator(ten_microseconds, threads=2), 2_000))
     rows.append(("process pool, 2 workers", ProcessPoolEvaluator(ten_microseconds, workers=2), 2_000))
     rows.append(("Dask local, 2 workers", DaskEvaluator(ten_microseconds, address="local:2"), 300))
     for label, evaluator, steps in rows:
@@ -142,10 +147,43 @@ def part_overhead() -> None:
         print(f"    {label:32s} {seconds * 1e6:9.1f} us  ({seconds / bare:7.1f}x)", flush=True)
 
 
+BUFFER = bytes(range(256)) * 4096 * 2  # 2 MB: about 1 ms of SHA-256 here
+
+
+def hashing_1ms(theta):
+    import hashlib
+
+    hashlib.sha256(BUFFER).digest()  # releases the GIL while it hashes
+    return gaussian(theta)
+
+
+def python_loop_1ms(theta):
+    total = 0
+    for i in range(25_000):
+        total += i
+    return gaussian(theta)
+
+
+def part_threads(steps: int = 400) -> None:
+    print("(4) threads vs processes, 4 chains, 1 ms log-density; speed-up over in-process")
+    for label, function in (("releases the GIL (hashlib)", hashing_1ms), ("holds the GIL (Python loop)", python_loop_1ms)):
+        bare = per_evaluation(InProcessEvaluator(function), steps)
+        row = [f"    {label:28s} in-process {bare * 1e3:.2f} ms/eval"]
+        for name, make in (("2 threads", lambda: ThreadPoolEvaluator(function, threads=2)),
+                           ("2 pool workers", lambda: ProcessPoolEvaluator(function, workers=2))):
+            evaluator = make()
+            try:
+                seconds = per_evaluation(evaluator, steps)
+            finally:
+                evaluator.close()
+            row.append(f"{name} {bare / seconds:.2f}x")
+        print(", ".join(row), flush=True)
+
+
 def main(argv) -> None:
-    parts = argv or ["pilot", "scale", "overhead"]
+    parts = argv or ["pilot", "scale", "overhead", "threads"]
     for part in parts:
-        {"pilot": part_pilot, "scale": part_scale, "overhead": part_overhead}[part]()
+        {"pilot": part_pilot, "scale": part_scale, "overhead": part_overhead, "threads": part_threads}[part]()
 
 
 if __name__ == "__main__":

@@ -16,7 +16,7 @@ from typer.testing import CliRunner
 
 import walktune
 from walktune.cli import app
-from walktune.evaluators import TIMEOUT_PREFIX, ProcessPoolEvaluator
+from walktune.evaluators import TIMEOUT_PREFIX, ProcessPoolEvaluator, ThreadPoolEvaluator
 
 MODEL = Path(__file__).resolve().parent.parent / "demo_models" / "sensor_calibration.py"
 runner = CliRunner()
@@ -37,6 +37,18 @@ def test_process_pool_gives_the_serial_result_bit_for_bit():
     for name, run in serial.runs.items():
         np.testing.assert_array_equal(parallel.runs[name].draws, run.draws)
     np.testing.assert_array_equal(parallel.proposal_covariance, serial.proposal_covariance)
+
+
+def test_thread_pool_gives_the_serial_result_bit_for_bit():
+    serial = walktune.tune(correlated, [0.3, 0.2], seed=4, budget=8_000)
+    threads = ThreadPoolEvaluator(correlated, threads=3)
+    try:
+        parallel = walktune.tune(None, [0.3, 0.2], seed=4, budget=8_000, evaluator=threads)
+    finally:
+        threads.close()
+    for name, run in serial.runs.items():
+        np.testing.assert_array_equal(parallel.runs[name].draws, run.draws)
+    assert parallel.worker_busy is not None and 0 < parallel.worker_busy <= 1
 
 
 def likelihood(theta):
@@ -89,7 +101,9 @@ def test_a_killed_worker_is_replaced_and_the_result_is_unchanged():
 
 @pytest.mark.parametrize(
     "args, fragment",
-    [(["--workers", "0"], "at least 1"), (["--workers", "2", "--dask", "local:2"], "not both"),
+    [(["--workers", "0"], "at least 1"), (["--workers", "2", "--dask", "local:2"], "not several"),
+     (["--threads", "0"], "at least 1"), (["--threads", "2", "--workers", "2"], "not several"),
+     (["--threads", "2", "--time-limit", "1"], "cannot be stopped"),
      (["--dask", "tcp://127.0.0.1:9"], "no Dask scheduler answered")],
 )
 def test_bad_parallel_options(tmp_path, args, fragment):

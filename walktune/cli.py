@@ -183,6 +183,7 @@ def _run_tune(
     resume: Optional[Path] = None,
     checkpoint_every: float = 30.0,
     time_limit: Optional[float] = None,
+    threads: Optional[int] = None,
 ) -> None:
     from .checkpoint import FILE_NAME, Checkpoint, Interrupted
     from .console import StageProgress, render, render_partial
@@ -266,10 +267,11 @@ def _run_tune(
 
     evaluator = None
     try:
-        if workers is not None or dask is not None or time_limit is not None:
+        if workers is not None or dask is not None or time_limit is not None or threads is not None:
             from .evaluators import make_evaluator
 
-            evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask, time_limit=time_limit)
+            evaluator = make_evaluator(spec.function, spec.vectorized, workers=workers, dask=dask, time_limit=time_limit,
+                                       threads=threads)
         if options["chains"] is None:
             # Many chains keep many workers busy. Fixed here, so that a resume on other workers runs the same chains.
             options["chains"] = max(4, getattr(evaluator, "parallelism", 1))
@@ -345,6 +347,9 @@ def tune_command(
     no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose; repeatable."),
     workers: Optional[int] = typer.Option(None, "--workers", help="Evaluate on N local worker processes (default: in this process)."),
     dask: Optional[str] = typer.Option(None, "--dask", help="Evaluate on a Dask cluster: a scheduler address, or local:N."),
+    threads: Optional[int] = typer.Option(
+        None, "--threads", help="Evaluate on N threads of this process (only for log-densities that release the GIL)."
+    ),
     resume: Optional[Path] = typer.Option(
         None, "--resume", help="Continue the interrupted run in this folder from its checkpoint (same result, bit for bit)."
     ),
@@ -362,7 +367,7 @@ def tune_command(
     """
     with _user_errors("write outputs"):
         _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
-                  report, transform, no_transform, workers, dask, resume, checkpoint_every, time_limit)
+                  report, transform, no_transform, workers, dask, resume, checkpoint_every, time_limit, threads)
 
 
 @app.command("inspect")

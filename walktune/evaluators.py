@@ -212,6 +212,41 @@ def _merge(n_points: int, pieces: list) -> BatchResult:
     return BatchResult(values, errors, busy)
 
 
+class ThreadPoolEvaluator:
+    """Evaluate a batch on threads of this process, one chunk per thread.
+
+    Helps only a log-density that releases the GIL for most of its time
+    (compiled code, large numpy or scipy operations, I/O); Python code holding
+    the GIL runs no faster than in-process. Costs far less per batch than
+    processes, and needs no pickling. A running evaluation cannot be stopped in
+    its thread, so there is no time limit here.
+    """
+
+    def __init__(self, log_density: Callable, vectorized: bool = False, threads: int = 2):
+        from concurrent.futures import ThreadPoolExecutor
+
+        if not isinstance(threads, int) or threads < 1:
+            from .errors import WalktuneError
+
+            raise WalktuneError(f"`threads` must be a whole number >= 1; got {threads!r}.")
+        self.log_density = log_density
+        self.vectorized = vectorized
+        self.threads = threads
+        self._pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="walktune-eval")
+
+    @property
+    def parallelism(self) -> int:
+        return self.threads
+
+    def __call__(self, points: np.ndarray) -> BatchResult:
+        pieces = _chunks(points.shape[0], self.threads)
+        futures = [self._pool.submit(_evaluate_chunk, self.log_density, self.vectorized, points[a:b]) for a, b in pieces]
+        return _merge(points.shape[0], list(zip(pieces, [f.result() for f in futures])))
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=True)
+
+
 class ProcessPoolEvaluator:
     """Evaluate a batch on a pool of local worker processes, one chunk per worker.
 
@@ -482,13 +517,19 @@ class DaskEvaluator:
 
 
 def make_evaluator(log_density: Callable, vectorized: bool = False, workers: int | None = None, dask: str | None = None,
-                   time_limit: float | None = None):
-    """The evaluator for the command line's ``--workers`` / ``--dask`` / ``--time-limit`` options."""
+                   time_limit: float | None = None, threads: int | None = None):
+    """The evaluator for the command line's ``--workers`` / ``--threads`` / ``--dask`` / ``--time-limit`` options."""
     from .errors import WalktuneError
 
-    if workers is not None and dask is not None:
-        raise WalktuneError("give --workers or --dask, not both.")
+    if sum(option is not None for option in (workers, dask, threads)) > 1:
+        raise WalktuneError("give one of --workers, --threads and --dask, not several.")
     _check_limit(time_limit)
+    if threads is not None:
+        if threads < 1:
+            raise WalktuneError(f"--threads must be at least 1; got {threads}.")
+        if time_limit is not None:
+            raise WalktuneError("--time-limit needs --workers N or --dask: an evaluation in a thread cannot be stopped.")
+        return ThreadPoolEvaluator(log_density, vectorized, threads)
     if dask is not None:
         return DaskEvaluator(log_density, vectorized, dask, time_limit=time_limit)
     if workers is not None:
