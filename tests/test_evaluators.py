@@ -16,7 +16,7 @@ from typer.testing import CliRunner
 
 import walktune
 from walktune.cli import app
-from walktune.evaluators import TIMEOUT_PREFIX, ProcessPoolEvaluator, ThreadPoolEvaluator
+from walktune.evaluators import TIMEOUT_PREFIX, DaskEvaluator, ProcessPoolEvaluator, ThreadPoolEvaluator
 
 MODEL = Path(__file__).resolve().parent.parent / "demo_models" / "sensor_calibration.py"
 runner = CliRunner()
@@ -171,9 +171,10 @@ def test_timeouts_are_rejected_and_reported_by_the_tuning_job():
 
 
 def test_a_function_that_cannot_be_shipped_is_refused_clearly():
+    # Dask pickles the function (the forked pool needs no pickling); a lock cannot be pickled.
     lock = __import__("threading").Lock()
     with pytest.raises(walktune.WalktuneError, match="cannot be sent to worker processes"):
-        ProcessPoolEvaluator(lambda t: correlated(t) if lock else 0.0, workers=2)
+        DaskEvaluator(lambda t: correlated(t) if lock else 0.0, address="local:2")
 
 
 @pytest.mark.parametrize("args, fragment", [(["--time-limit", "0"], "positive"), (["--time-limit", "5"], "needs --workers")])

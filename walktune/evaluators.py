@@ -247,115 +247,161 @@ class ThreadPoolEvaluator:
         self._pool.shutdown(wait=True)
 
 
-class ProcessPoolEvaluator:
-    """Evaluate a batch on a pool of local worker processes, one chunk per worker.
+def _worker_main(conn, log_density: Callable, vectorized: bool, limit: float | None) -> None:
+    """A pool worker's loop: receive a chunk, evaluate it, send back (values, errors, busy seconds)."""
+    _worker_setup()
+    while True:
+        try:
+            points = conn.recv()
+        except (EOFError, OSError):
+            return  # the driver is gone
+        if points is None:
+            return
+        result = _evaluate_chunk(log_density, vectorized, points, limit)
+        conn.send((result.values, result.errors, result.busy_seconds))
 
-    The function is sent to the workers by pickling; on Linux the pool forks,
-    so a function from a model file (registered in ``sys.modules`` when
-    loaded) reaches the workers as it is. A worker that dies mid-batch breaks
-    the pool: it is rebuilt and the batch evaluated again, up to ``retries``
-    times, then a :class:`~walktune.errors.SamplingError` says so.
+
+class _PoolWorker:
+    """One worker process and the driver's end of its pipe."""
+
+    def __init__(self, context, log_density, vectorized, limit):
+        self.conn, child = context.Pipe()
+        self.process = context.Process(target=_worker_main, args=(child, log_density, vectorized, limit), daemon=True)
+        self.process.start()
+        child.close()
+
+    def stop(self, kill: bool = False) -> None:
+        if not kill:
+            try:
+                self.conn.send(None)
+                self.process.join(timeout=2)
+            except (OSError, ValueError):
+                pass
+        if self.process.is_alive():
+            self.process.kill()
+            self.process.join(timeout=5)
+        self.conn.close()
+
+
+class ProcessPoolEvaluator:
+    """Evaluate a batch on local worker processes, one chunk per worker, each over its own pipe.
+
+    On Linux the workers are forked, so the function reaches them as it is,
+    without pickling (elsewhere it is pickled). A plain pipe per worker costs
+    about a third of :class:`concurrent.futures.ProcessPoolExecutor`'s overhead
+    per batch (docs/benchmarks.md) and tells exactly which worker holds which
+    chunk: a worker that dies mid-batch is replaced and its chunk sent again,
+    up to ``retries`` times per batch, then a
+    :class:`~walktune.errors.SamplingError` says so.
 
     With ``time_limit`` (seconds per evaluation) each evaluation runs under a
     SIGALRM timer in its worker: Python code, sleeps and most blocking calls
     are stopped there and the point counts as a failed evaluation. Code that
     never returns to the interpreter cannot be stopped that way; when a chunk is
-    still out ``time_limit`` per point plus a grace period later, the workers are
-    killed, the pool rebuilt, and the chunk evaluated again one point at a time
+    still out ``time_limit`` per point plus a grace period later, its worker is
+    killed and replaced, and the chunk evaluated again one point at a time
     under the same deadline, so that only the late points count as timed out.
     """
 
     def __init__(self, log_density: Callable, vectorized: bool = False, workers: int = 2, retries: int = 2,
                  time_limit: float | None = None):
-        from concurrent.futures import ProcessPoolExecutor  # noqa: F401  (checked here, used below)
+        import multiprocessing
 
         if not isinstance(workers, int) or workers < 1:
             from .errors import WalktuneError
 
             raise WalktuneError(f"`workers` must be a whole number >= 1; got {workers!r}.")
-        _check_shippable(log_density, "pickle")
+        method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+        if method != "fork":
+            _check_shippable(log_density, "pickle")
+        self._context = multiprocessing.get_context(method)
         self.log_density = log_density
         self.vectorized = vectorized
         self.workers = workers
         self.retries = retries
         self.time_limit = _check_limit(time_limit)
-        self._pool = None
+        self._pool: list | None = None
 
     @property
     def parallelism(self) -> int:
         return self.workers
 
-    def _executor(self):
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
-
+    def _worker(self, k: int) -> _PoolWorker:
         if self._pool is None:
-            method = "fork" if "fork" in multiprocessing.get_all_start_methods() else None
-            context = multiprocessing.get_context(method) if method else None
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context, initializer=_worker_setup)
-        return self._pool
+            self._pool = [None] * self.workers
+        if self._pool[k] is None:
+            self._pool[k] = _PoolWorker(self._context, self.log_density, self.vectorized, self.time_limit)
+        return self._pool[k]
+
+    def _replace(self, k: int) -> None:
+        """Stop worker k for good (it died or hangs); a fresh one is forked when next needed."""
+        self._pool[k].stop(kill=True)
+        self._pool[k] = None
 
     def __call__(self, points: np.ndarray) -> BatchResult:
-        from concurrent.futures.process import BrokenProcessPool
+        pieces = _chunks(points.shape[0], self.workers)
+        results = self._run({k: points[a:b] for k, (a, b) in enumerate(pieces)})
+        late = [k for k, r in results.items() if r is None]
+        for k in late:
+            # Uninterruptible code: find the late point by sending the chunk's points one at a time.
+            a, b = pieces[k]
+            detail = " and did not answer the alarm; its worker was stopped"
+            singles = [self._run({k: points[i : i + 1]})[k] for i in range(a, b)]
+            results[k] = _merge(b - a, [
+                ((i, i + 1), r if r is not None else _timed_out(1, self.time_limit, detail)) for i, r in enumerate(singles)
+            ])
+        return _merge(points.shape[0], [(pieces[k], results[k]) for k in range(len(pieces))])
+
+    def _run(self, chunks: dict) -> dict:
+        """Evaluate chunk k on worker k; a late chunk (time limit) comes back as None."""
+        from multiprocessing.connection import wait
 
         from .errors import SamplingError
 
-        pieces = _chunks(points.shape[0], self.workers)
-        for attempt in range(self.retries + 1):
-            try:
-                futures = [
-                    self._executor().submit(_evaluate_chunk, self.log_density, self.vectorized, points[a:b], self.time_limit)
-                    for a, b in pieces
-                ]
-                results = self._collect(futures, pieces, points)
-            except BrokenProcessPool:
-                self._pool = None  # a worker died: rebuild the pool and evaluate the batch again
-                if attempt == self.retries:
-                    raise SamplingError(
-                        f"worker processes died {self.retries + 1} times evaluating one batch; the log-density may "
-                        "crash the interpreter (e.g. run out of memory). Run with --workers 1 to see its error."
-                    ) from None
-                continue
-            return _merge(points.shape[0], list(zip(pieces, results)))
-        raise AssertionError("unreachable")
-
-    def _collect(self, futures, pieces, points) -> list:
-        if self.time_limit is None:
-            return [f.result() for f in futures]
-        results = self._within_deadline(futures, max(b - a for a, b in pieces))
-        for k, (a, b) in enumerate(pieces):
-            if results[k] is None:
-                # The chunk's worker was stopped: find the late point by evaluating the chunk one point at a time.
-                singles = [
-                    self._executor().submit(_evaluate_chunk, self.log_density, self.vectorized, points[i : i + 1], self.time_limit)
-                    for i in range(a, b)
-                ]
-                per_worker = -(-(b - a) // self.workers)
-                late_detail = " and did not answer the alarm; its worker was stopped"
-                results[k] = _merge(b - a, [
-                    ((i, i + 1), r if r is not None else _timed_out(1, self.time_limit, late_detail))
-                    for i, r in enumerate(self._within_deadline(singles, per_worker))
-                ])
+        results, deaths, deadline = {}, 0, {}
+        for k, chunk in chunks.items():
+            self._send(k, chunk, deadline)
+        while len(results) < len(chunks):
+            waiting = {self._pool[k].conn: k for k in chunks if k not in results}
+            timeout = None
+            if deadline:
+                timeout = max(0.0, min(deadline[k] for k in waiting.values()) - time.monotonic())
+            for conn in wait(list(waiting), timeout=timeout):
+                k = waiting[conn]
+                try:
+                    values, errors, busy = conn.recv()
+                except (EOFError, OSError):
+                    # The worker died mid-chunk: replace it and send the chunk again.
+                    deaths += 1
+                    self._replace(k)
+                    if deaths > self.retries:
+                        raise SamplingError(
+                            f"worker processes died {deaths} times evaluating one batch; the log-density may crash "
+                            "the interpreter (e.g. run out of memory). Run with --workers 1 to see its error."
+                        ) from None
+                    self._send(k, chunks[k], deadline)
+                    continue
+                results[k] = BatchResult(values, errors, busy)
+            now = time.monotonic()
+            for k in [k for k in waiting.values() if k not in results and k in deadline and deadline[k] <= now]:
+                self._replace(k)
+                results[k] = None
         return results
 
-    def _within_deadline(self, futures, points_per_worker: int) -> list:
-        """Results of the futures back in time, None for the others (whose workers are then killed)."""
-        from concurrent.futures import wait
-
-        done, late = wait(futures, timeout=self.time_limit * points_per_worker + max(2.0, self.time_limit))
-        results = [f.result() if f in done else None for f in futures]
-        if late:
-            # Code that never returns to the interpreter: stop the workers; the pool is rebuilt on next use.
-            for process in list(getattr(self._pool, "_processes", {}).values()):
-                process.kill()
-            self._pool.shutdown(wait=False, cancel_futures=True)
-            self._pool = None
-        return results
+    def _send(self, k: int, chunk: np.ndarray, deadline: dict) -> None:
+        try:
+            self._worker(k).conn.send(chunk)
+        except (OSError, ValueError):  # the worker died between batches
+            self._replace(k)
+            self._worker(k).conn.send(chunk)
+        if self.time_limit is not None:
+            deadline[k] = time.monotonic() + self.time_limit * chunk.shape[0] + max(2.0, self.time_limit)
 
     def close(self) -> None:
-        if self._pool is not None:
-            self._pool.shutdown(wait=True, cancel_futures=True)
-            self._pool = None
+        for worker in self._pool or []:
+            if worker is not None:
+                worker.stop()
+        self._pool = None
 
 
 #: Dask settings for the LocalCluster walktune starts (``--dask local:N``): no dashboard is shown, so the
