@@ -188,10 +188,12 @@ def _check_limit(limit) -> float | None:
 
 
 def _worker_setup() -> None:
-    """In a pool worker: leave Ctrl-C to the driver, which stops the job cleanly at the next step."""
+    """In a pool worker: leave Ctrl-C to the driver, which stops the job cleanly at the next step, and
+    let SIGTERM end the worker as usual (a forked worker would otherwise inherit the driver's handler)."""
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
 def _chunks(n_points: int, parts: int) -> list:
