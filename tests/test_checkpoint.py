@@ -232,24 +232,28 @@ def _wait_for(path: Path, proc, seconds: float = 120.0) -> None:
 
 @pytest.mark.slow
 @pytest.mark.parametrize(
-    "sig, mark_at, extra, resume_extra",
+    "sig, mark_at, extra, resume_extra, group",
     [
-        (signal.SIGINT, 150, [], []),  # in the mode search
-        (signal.SIGTERM, 1_800, [], []),  # in the pilot
-        (signal.SIGINT, 4_000, [], ["--workers", "2"]),  # in the proof runs; resumed on a process pool
-        (signal.SIGTERM, 1_500, ["--workers", "2"], ["--workers", "2"]),  # a process pool (marks count per worker)
-        (signal.SIGINT, 700, ["--dask", "local:2"], []),  # a Dask LocalCluster; resumed in this process
+        (signal.SIGINT, 150, [], [], False),  # in the mode search
+        (signal.SIGTERM, 1_800, [], [], False),  # in the pilot
+        (signal.SIGINT, 4_000, [], ["--workers", "2"], False),  # in the proof runs; resumed on a process pool
+        (signal.SIGTERM, 1_500, ["--workers", "2"], ["--workers", "2"], False),  # a pool (marks count per worker)
+        (signal.SIGINT, 1_200, ["--workers", "2"], [], True),  # Ctrl-C as a terminal sends it: to the whole group
+        (signal.SIGINT, 700, ["--dask", "local:2"], [], False),  # a Dask LocalCluster; resumed in this process
     ],
 )
 def test_signal_stops_with_partial_advice_and_resume_ends_bit_for_bit(
-    tmp_path, model_file, reference, sig, mark_at, extra, resume_extra
+    tmp_path, model_file, reference, sig, mark_at, extra, resume_extra, group
 ):
     out = tmp_path / "run"
     mark = tmp_path / "mark"
     proc = _walktune(f"{model_file}:log_density", *RUN, "--out", str(out), *extra,
-                     env={"MARK_AT": str(mark_at), "MARK_FILE": str(mark), "SLEEP": "0.0004"})
+                     env={"MARK_AT": str(mark_at), "MARK_FILE": str(mark), "SLEEP": "0.0004"}, start_new_session=group)
     _wait_for(mark, proc)
-    proc.send_signal(sig)
+    if group:
+        os.killpg(proc.pid, sig)  # the driver and its worker processes alike
+    else:
+        proc.send_signal(sig)
     stdout, stderr = proc.communicate(timeout=120)
     assert proc.returncode == 128 + sig, stderr  # 130 for SIGINT, 143 for SIGTERM
     assert "PARTIAL" in stdout and f"walktune tune --resume {out}" in stdout.replace("\n", "")
