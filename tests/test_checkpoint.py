@@ -40,6 +40,8 @@ calls = 0
 def log_density(x):
     global calls
     calls += 1
+    if calls == 1 and os.environ.get("PID_DIR"):
+        open(os.path.join(os.environ["PID_DIR"], f"{os.getpid()}.pid"), "w").close()
     if calls == int(os.environ.get("MARK_AT", "0")):
         open(os.environ["MARK_FILE"], "w").close()
     if calls == int(os.environ.get("SELF_SIGNAL_AT", "0")):
@@ -269,24 +271,38 @@ def test_signal_stops_with_partial_advice_and_resume_ends_bit_for_bit(
     _same_outputs(out, reference)
 
 
+def _alive(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/status").read_text()
+    except FileNotFoundError:
+        return False
+    return "\nState:\tZ" not in state  # a zombie has exited
+
+
 @pytest.mark.slow
-def test_second_ctrl_c_exits_at_once_and_leaves_no_broken_file(tmp_path, model_file):
+@pytest.mark.parametrize("extra", [[], ["--workers", "2"]])
+def test_second_ctrl_c_exits_at_once_and_leaves_no_broken_file(tmp_path, model_file, extra):
     out = tmp_path / "run"
     mark = tmp_path / "mark"
     # From evaluation 600 on, each evaluation takes 5 s: the first Ctrl-C waits for it, the second must not.
-    proc = _walktune(f"{model_file}:log_density", *RUN, "--out", str(out),
-                     env={"MARK_AT": "600", "MARK_FILE": str(mark), "SLOW_AFTER": "600"})
+    proc = _walktune(f"{model_file}:log_density", *RUN, "--out", str(out), *extra,
+                     env={"MARK_AT": "600", "MARK_FILE": str(mark), "SLOW_AFTER": "600", "PID_DIR": str(tmp_path)})
     _wait_for(mark, proc)
     proc.send_signal(signal.SIGINT)
     time.sleep(0.5)
     sent = time.monotonic()
     proc.send_signal(signal.SIGINT)
     proc.communicate(timeout=60)
-    assert time.monotonic() - sent < 3.0
+    assert time.monotonic() - sent < 3.0  # not the 5 s an evaluation in progress takes
     assert proc.returncode == 130
     # Stage-end checkpoints were written before; whatever is there is whole.
     assert read_meta(out)["evaluations"] > 0
     assert not [p for p in out.iterdir() if p.name.endswith(".tmp")]
+    # No worker process is left running an evaluation on its own.
+    evaluating = [int(p.name.split(".")[0]) for p in tmp_path.glob("*.pid")]
+    assert len(evaluating) == (2 if extra else 1)
+    time.sleep(0.5)
+    assert not [pid for pid in evaluating if _alive(pid)]
 
 
 # ----------------------------------------------------------------- bad resume input

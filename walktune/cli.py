@@ -150,6 +150,10 @@ def _stop_on_signals(checkpoint):
     def handler(signum, frame):
         received.append(signum)
         if len(received) > 1:
+            import multiprocessing
+
+            for child in multiprocessing.active_children():  # worker processes would run on, orphaned
+                child.kill()
             os._exit(128 + signum)
         checkpoint.request_stop(signum)
         os.write(2, b"\nstopping at the next step and saving a checkpoint; press Ctrl-C again to quit at once\n")
