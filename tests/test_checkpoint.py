@@ -409,3 +409,18 @@ def test_workers_dying_again_and_again_stop_the_run_with_the_checkpoint_kept(tmp
     lines = stderr.strip().splitlines()
     assert lines[-1].startswith("error:") and "worker processes died" in lines[-1] and "Traceback" not in stderr
     assert read_meta(out)["evaluations"] > 0  # what was evaluated before is kept for --resume
+
+
+def test_a_folder_in_use_by_a_running_job_is_refused(copy_of):
+    holder = Checkpoint(copy_of, read_meta(copy_of)["identity"], resume=True)  # as a running resume holds it
+    try:
+        _fails(["tune", "--resume", str(copy_of)], "another walktune run is using", copy_of)
+    finally:
+        holder.release()
+
+
+def test_stale_temporary_files_are_cleared(copy_of):
+    stale = copy_of / f".{FILE_NAME}.abc123.tmp"
+    stale.write_bytes(b"half a checkpoint")
+    Checkpoint(copy_of, read_meta(copy_of)["identity"], resume=True).release()
+    assert not stale.exists()

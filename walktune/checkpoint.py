@@ -31,6 +31,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import os
 import time
 import zipfile
 from pathlib import Path
@@ -180,7 +181,9 @@ class Checkpoint:
         self._saved_batches = 0
         self._last_save = clock()
         self.resumed_evaluations = 0
+        self._lock = None
         if resume:
+            self._hold_folder()
             self._load()
 
     # ------------------------------------------------------------------ loading
@@ -315,11 +318,40 @@ class Checkpoint:
         np.savez(buffer, meta=np.array(json.dumps(meta, allow_nan=True, default=str)),
                  **{**arrays, "error_text": np.array(arrays["error_text"], dtype=str)})
         self.folder.mkdir(parents=True, exist_ok=True)
+        self._hold_folder()
         atomic_write_bytes(self.path, buffer.getvalue())
         self._saved_batches = len(self._sizes)
         self._last_save = self.clock()
         return self.path
 
+    def _hold_folder(self) -> None:
+        """Lock the folder for this process (released when it exits, however it exits), and clear
+        temporary files that an exit in the middle of a write left behind."""
+        if self._lock is not None:
+            return
+        try:
+            import fcntl
+        except ImportError:  # not on POSIX: no lock
+            return
+        fd = os.open(self.folder, os.O_RDONLY)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            os.close(fd)
+            raise WalktuneError(
+                f"another walktune run is using {self.folder}; wait for it to finish or stop it first."
+            ) from None
+        self._lock = fd
+        for stale in self.folder.glob(f".{FILE_NAME}.*.tmp"):
+            stale.unlink(missing_ok=True)
+
+    def release(self) -> None:
+        """Unlock the folder (done anyway when the process exits)."""
+        if self._lock is not None:
+            os.close(self._lock)
+            self._lock = None
+
     def remove(self) -> None:
-        """Delete the checkpoint once the run's results are written."""
+        """Delete the checkpoint once the run's results are written, and unlock the folder."""
         self.path.unlink(missing_ok=True)
+        self.release()

@@ -742,6 +742,9 @@ def tune(
         if checkpoint is not None and (isinstance(error, SamplingError) or not isinstance(error, WalktuneError)):
             checkpoint.save()
         raise
+    finally:
+        if checkpoint is not None:
+            checkpoint.release()  # the job is over: another process may take the folder
 
 
 def _tune_job(
