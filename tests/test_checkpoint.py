@@ -126,6 +126,24 @@ def test_resume_after_a_stop_anywhere_is_the_uninterrupted_run(tmp_path, uninter
     assert a == b
 
 
+def test_keyboard_interrupt_inside_an_evaluation_keeps_what_was_finished(tmp_path, uninterrupted):
+    calls = [0]
+
+    def interrupted_at_2500(x):
+        calls[0] += 1
+        if calls[0] == 2_500:
+            raise KeyboardInterrupt  # Ctrl-C in a notebook lands inside the user's function
+        return gaussian(x)
+
+    with pytest.raises(KeyboardInterrupt):
+        walktune.tune(interrupted_at_2500, np.ones(3), seed=5, budget=12_000, checkpoint=walktune.Checkpoint(tmp_path, {}))
+    assert read_meta(tmp_path)["evaluations"] < 2_500  # the batch in hand is not recorded
+    resumed = walktune.tune(gaussian, np.ones(3), seed=5, budget=12_000,
+                            checkpoint=walktune.Checkpoint(tmp_path, {}, resume=True))
+    for name, run in uninterrupted.runs.items():
+        np.testing.assert_array_equal(resumed.runs[name].draws, run.draws)
+
+
 def test_partial_advice_follows_the_stage_reached(tmp_path):
     box = [Checkpoint(tmp_path / "early", {})]
     with pytest.raises(Interrupted) as early:

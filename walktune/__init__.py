@@ -10,6 +10,7 @@ they have. A pilot can miss modes. Confirm results with independent runs.
 """
 
 from . import diagnostics
+from .checkpoint import Checkpoint, Interrupted
 from .engine import Chains, sample
 from .errors import SamplingError, TargetError, WalktuneError
 from .inspection import InspectionResult, inspect
@@ -20,6 +21,8 @@ __version__ = "0.1.0"
 
 __all__ = [
     "Chains",
+    "Checkpoint",
+    "Interrupted",
     "InspectionResult",
     "Reparam",
     "SamplingError",
