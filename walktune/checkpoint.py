@@ -214,12 +214,9 @@ class Checkpoint:
         self.stage = meta.get("stage")
 
     @property
-    def replaying(self) -> bool:
-        return self._cursor < self._replay
-
-    @property
     def evaluations(self) -> int:
-        return int(sum(self._sizes))
+        """Evaluations in the record (recorded before a resume, and since)."""
+        return self._value_offset if self._cursor >= self._replay else self.resumed_evaluations
 
     # ------------------------------------------------------------------ recording
     def request_stop(self, signum: int = 0) -> None:
@@ -241,8 +238,9 @@ class Checkpoint:
             if n != self._sizes[i] or fingerprint(points) != self._prints[i]:
                 raise WalktuneError(
                     f"the resumed run left the checkpoint's record at evaluation {self._value_offset + 1}: the model, "
-                    "its options or walktune's version differ from the run that wrote it. The checkpoint in "
-                    f"{self.folder} was left as it is."
+                    "its options, walktune's version or the machine differ from the run that wrote it (numerical "
+                    "libraries may round differently on another processor). Resume where the run started; the "
+                    f"checkpoint in {self.folder} was left as it is."
                 )
             lo, hi = np.searchsorted(self._error_keys, [self._value_offset, self._value_offset + n])
             errors = {int(k) - self._value_offset: self._errors[int(k)] for k in self._error_keys[lo:hi]}
