@@ -137,7 +137,7 @@ def test_pool_time_limit_fails_only_the_late_points(function, detail):
     try:
         started = time.monotonic()
         result = pool(BATCH)
-        assert time.monotonic() - started < 10  # not the 60 s of the hang
+        assert time.monotonic() - started < 30  # not the 60 s of the hang (about 7 s with the re-run point by point)
         expected = [correlated(p) for p in BATCH]
         assert result.values[0] == expected[0] and result.values[2] == expected[2]
         assert np.isnan(result.values[1]) and np.isnan(result.values[3])
