@@ -159,11 +159,17 @@ def test_partial_advice_follows_the_stage_reached(tmp_path):
     assert np.all(np.linalg.eigvalsh(cov) > 0)
 
 
-def test_a_changed_model_is_caught_on_replay_and_the_checkpoint_kept(tmp_path):
+@pytest.fixture
+def stopped_in_pilot(tmp_path):
+    """A job stopped at evaluation 3000 with its checkpoint in tmp_path; returns the checkpoint's bytes."""
     box = [Checkpoint(tmp_path, {})]
     with pytest.raises(Interrupted):
         walktune.tune(_stopping(box, 3_000), np.ones(3), seed=5, budget=12_000, checkpoint=box[0])
-    before = (tmp_path / FILE_NAME).read_bytes()
+    return (tmp_path / FILE_NAME).read_bytes()
+
+
+def test_a_changed_model_is_caught_on_replay_and_the_checkpoint_kept(tmp_path, stopped_in_pilot):
+    before = stopped_in_pilot
 
     def other(x):
         return gaussian(1.01 * x)
@@ -173,11 +179,8 @@ def test_a_changed_model_is_caught_on_replay_and_the_checkpoint_kept(tmp_path):
     assert (tmp_path / FILE_NAME).read_bytes() == before
 
 
-def test_a_stop_while_replaying_leaves_the_checkpoint_as_it_was(tmp_path):
-    box = [Checkpoint(tmp_path, {})]
-    with pytest.raises(Interrupted):
-        walktune.tune(_stopping(box, 3_000), np.ones(3), seed=5, budget=12_000, checkpoint=box[0])
-    before = (tmp_path / FILE_NAME).read_bytes()
+def test_a_stop_while_replaying_leaves_the_checkpoint_as_it_was(tmp_path, stopped_in_pilot):
+    before = stopped_in_pilot
     resumed = Checkpoint(tmp_path, {}, resume=True)
     resumed.request_stop(signal.SIGTERM)
     with pytest.raises(Interrupted) as stop:
@@ -186,11 +189,8 @@ def test_a_stop_while_replaying_leaves_the_checkpoint_as_it_was(tmp_path):
     assert (tmp_path / FILE_NAME).read_bytes() == before
 
 
-def test_other_options_leave_the_record_and_are_caught(tmp_path):
-    box = [Checkpoint(tmp_path, {})]
-    with pytest.raises(Interrupted):
-        walktune.tune(_stopping(box, 3_000), np.ones(3), seed=5, budget=12_000, checkpoint=box[0])
-    before = (tmp_path / FILE_NAME).read_bytes()
+def test_other_options_leave_the_record_and_are_caught(tmp_path, stopped_in_pilot):
+    before = stopped_in_pilot
     with pytest.raises(walktune.WalktuneError, match="left the checkpoint's record"):
         walktune.tune(gaussian, np.ones(3), seed=6, budget=12_000, checkpoint=Checkpoint(tmp_path, {}, resume=True))
     assert (tmp_path / FILE_NAME).read_bytes() == before

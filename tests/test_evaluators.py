@@ -27,27 +27,20 @@ def correlated(theta):
     return -0.5 * float(theta @ precision @ theta)
 
 
-def test_process_pool_gives_the_serial_result_bit_for_bit():
+@pytest.mark.parametrize(
+    "make", [lambda: ProcessPoolEvaluator(correlated, workers=2), lambda: ThreadPoolEvaluator(correlated, threads=3)],
+    ids=["process-pool", "threads"],
+)
+def test_local_evaluators_give_the_serial_result_bit_for_bit(make):
     serial = walktune.tune(correlated, [0.3, 0.2], seed=4, budget=8_000)
-    pool = ProcessPoolEvaluator(correlated, workers=2)
+    evaluator = make()
     try:
-        parallel = walktune.tune(None, [0.3, 0.2], seed=4, budget=8_000, evaluator=pool)
+        parallel = walktune.tune(None, [0.3, 0.2], seed=4, budget=8_000, evaluator=evaluator)
     finally:
-        pool.close()
+        evaluator.close()
     for name, run in serial.runs.items():
         np.testing.assert_array_equal(parallel.runs[name].draws, run.draws)
     np.testing.assert_array_equal(parallel.proposal_covariance, serial.proposal_covariance)
-
-
-def test_thread_pool_gives_the_serial_result_bit_for_bit():
-    serial = walktune.tune(correlated, [0.3, 0.2], seed=4, budget=8_000)
-    threads = ThreadPoolEvaluator(correlated, threads=3)
-    try:
-        parallel = walktune.tune(None, [0.3, 0.2], seed=4, budget=8_000, evaluator=threads)
-    finally:
-        threads.close()
-    for name, run in serial.runs.items():
-        np.testing.assert_array_equal(parallel.runs[name].draws, run.draws)
     assert parallel.worker_busy is not None and 0 < parallel.worker_busy <= 1
 
 

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import time
 import traceback
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable
@@ -652,6 +653,25 @@ def _row_from_run(name, description, chains, stats, predicted, baseline=None):
     return ComparisonRow(**row)
 
 
+@contextmanager
+def _guarded(checkpoint, state):
+    """Around the job: partial advice on a stop, the checkpoint kept on a failure, the folder unlocked at the end."""
+    try:
+        yield
+    except Interrupted as stop:
+        stop.partial = state.partial_advice()
+        raise
+    except BaseException as error:
+        # Keep what was evaluated (a no-op when the record did not grow), except after a user error
+        # such as a start outside the support: there is nothing worth resuming, and a fresh run must not find it.
+        if checkpoint is not None and (isinstance(error, SamplingError) or not isinstance(error, WalktuneError)):
+            checkpoint.save()
+        raise
+    finally:
+        if checkpoint is not None:
+            checkpoint.release()  # the job is over: another process may take the folder
+
+
 def tune(
     log_density: Callable,
     start,
@@ -726,338 +746,296 @@ def tune(
     TuneResult
     """
     state = _JobState()
-    try:
-        return _tune_job(
-            log_density, start, names=names, bounds=bounds, current_proposal=current_proposal, budget=budget,
-            chains=chains, seed=seed, vectorized=vectorized, target_ess=target_ess, evaluator=evaluator,
-            progress=progress, log_prior=log_prior, prior=prior, transforms=transforms,
-            forbid_transforms=forbid_transforms, checkpoint=checkpoint, state=state,
-        )
-    except Interrupted as stop:
-        stop.partial = state.partial_advice()
-        raise
-    except BaseException as error:
-        # Keep what was evaluated (a no-op when the record did not grow), except after a user error
-        # such as a start outside the support: there is nothing worth resuming, and a fresh run must not find it.
-        if checkpoint is not None and (isinstance(error, SamplingError) or not isinstance(error, WalktuneError)):
-            checkpoint.save()
-        raise
-    finally:
-        if checkpoint is not None:
-            checkpoint.release()  # the job is over: another process may take the folder
+    with _guarded(checkpoint, state):
+        start = as_float_array(start, "start")
+        if start.ndim == 0:
+            start = start.reshape(1)
+        if start.ndim != 1:
+            raise WalktuneError(f"`start` must be one point of shape (d,); got shape {start.shape}.")
+        check_finite(start, "start")
+        dim = start.shape[0]
+        names = _names(names, dim)
+        bound_array = _bounds(bounds, names, start)
+        current = _current_proposal(current_proposal, dim)
+        n_chains = 4 if chains is None else int(chains)
+        if n_chains < 2:
+            raise WalktuneError("`chains` must be at least 2, so that chains can disagree when they have not mixed.")
+        if budget is not None:
+            low = minimum_budget(dim, n_chains)
+            if budget < low:
+                raise WalktuneError(
+                    f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
+                    f"give at least {low}."
+                )
+        if not callable(log_density) and evaluator is None:
+            raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
+        seed_seq = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
+        mode_seed, pilot_seed, proof_seed = seed_seq.spawn(3)
+        prior_terms = None
+        if log_prior is not None or prior is not None:
+            prior_terms = _PriorTerms(log_prior, prior, names, bound_array, vectorized)
+            if evaluator is not None:
+                # The evaluator computes the likelihood (on workers); the prior is added here.
+                evaluator = _WithPrior(evaluator, prior_terms)
+            else:
+                log_density = prior_terms.posterior(log_density)
+        if transforms:
+            from .reparam import choose_transforms
 
+            # Check forced transforms against the bounds now, before any evaluation.
+            choose_transforms(np.tile(start, (3, 1)) + np.arange(3)[:, None] * 0.0, names, bound_array, transforms, forbid_transforms)
+        base = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
+        counted = _Counted(base, bound_array, checkpoint)
+        state.names, state.counted = names, counted
+        user_progress = progress or (lambda *args: None)
 
-def _tune_job(
-    log_density: Callable,
-    start,
-    *,
-    names=None,
-    bounds=None,
-    current_proposal=None,
-    budget: int | None = None,
-    chains: int | None = None,
-    seed=None,
-    vectorized: bool = False,
-    target_ess: int = DEFAULT_TARGET_ESS,
-    evaluator=None,
-    progress: Callable[[str, float, float], None] | None = None,
-    log_prior: Callable | None = None,
-    prior: dict | None = None,
-    transforms: dict | None = None,
-    forbid_transforms=None,
-    checkpoint=None,
-    state=None,
-) -> TuneResult:
-    start = as_float_array(start, "start")
-    if start.ndim == 0:
-        start = start.reshape(1)
-    if start.ndim != 1:
-        raise WalktuneError(f"`start` must be one point of shape (d,); got shape {start.shape}.")
-    check_finite(start, "start")
-    dim = start.shape[0]
-    names = _names(names, dim)
-    bound_array = _bounds(bounds, names, start)
-    current = _current_proposal(current_proposal, dim)
-    n_chains = 4 if chains is None else int(chains)
-    if n_chains < 2:
-        raise WalktuneError("`chains` must be at least 2, so that chains can disagree when they have not mixed.")
-    if budget is not None:
-        low = minimum_budget(dim, n_chains)
-        if budget < low:
-            raise WalktuneError(
-                f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
-                f"give at least {low}."
-            )
-    if not callable(log_density) and evaluator is None:
-        raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
-    seed_seq = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
-    mode_seed, pilot_seed, proof_seed = seed_seq.spawn(3)
-    prior_terms = None
-    if log_prior is not None or prior is not None:
-        prior_terms = _PriorTerms(log_prior, prior, names, bound_array, vectorized)
-        if evaluator is not None:
-            # The evaluator computes the likelihood (on workers); the prior is added here.
-            evaluator = _WithPrior(evaluator, prior_terms)
+        def pilot_stage_ended(p, what):
+            if what == "the pilot":
+                state.estimate(p.covariance, p.scale_factor, f"{what} after {len(p.stages)} stages")
+            if checkpoint is not None:
+                checkpoint.snapshot = state.partial_advice()
+                checkpoint.stage_ended(f"{state.stage} stage {len(p.stages)}")
+
+        def report(stage, done, total):
+            state.stage = stage
+            if checkpoint is not None and done >= total:
+                checkpoint.snapshot = state.partial_advice()  # readable from the checkpoint even after a hard kill
+                checkpoint.stage_ended(stage)
+            user_progress(stage, done, total)
+
+        first = counted(start[None, :])
+        if first.errors or not np.isfinite(first.values[0]):
+            detail = first.errors[0].strip().splitlines()[-1] if first.errors else f"value {first.values[0]}"
+            raise TargetError(f"the log-density at the start point is not finite ({detail}); choose a start inside the support.")
+
+        # Budgets.
+        if budget is None:
+            pilot_budget = pilot_budget_default(dim)
+            proof_steps = proof_steps_default(dim)
         else:
-            log_density = prior_terms.posterior(log_density)
-    if transforms:
-        from .reparam import choose_transforms
+            pilot_budget = max(int(0.4 * budget), minimum_budget(dim, n_chains) - 3 * n_chains * 200)
 
-        # Check forced transforms against the bounds now, before any evaluation.
-        choose_transforms(np.tile(start, (3, 1)) + np.arange(3)[:, None] * 0.0, names, bound_array, transforms, forbid_transforms)
-    base = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
-    counted = _Counted(base, bound_array, checkpoint)
-    state = state if state is not None else _JobState()
-    state.names, state.counted = names, counted
-    user_progress = progress or (lambda *args: None)
+        # 1. Mode and Laplace covariance.
+        report("mode", 0, 1)
+        scales = np.where(np.isfinite(bound_array).all(axis=1), (bound_array[:, 1] - bound_array[:, 0]) / 10, 1.0)
+        scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
+        mode_budget = max(20 * (dim + 1), pilot_budget // 3 - 2 * dim * dim)
+        fit = find_mode(counted.scalar, start, bound_array, scales, mode_budget)
+        report("mode", 1, 1)
+        initial_cov = _initial_covariance(fit, bound_array, start)
+        state.estimate(initial_cov, 1.0, "the Laplace approximation at the mode")
 
-    def pilot_stage_ended(p, what):
-        if what == "the pilot":
-            state.estimate(p.covariance, p.scale_factor, f"{what} after {len(p.stages)} stages")
-        if checkpoint is not None:
-            checkpoint.snapshot = state.partial_advice()
-            checkpoint.stage_ended(f"{state.stage} stage {len(p.stages)}")
+        # 2. Pilot from overdispersed starts.
+        rng = np.random.default_rng(mode_seed)
+        other_modes = _other_modes(counted, start, fit, initial_cov, bound_array, 4, rng)
+        centres = [fit.mode] + other_modes
+        states, state_values = _overdispersed_starts(counted, centres, initial_cov, n_chains, rng)
+        used = counted.count
+        pilot = run_pilot(
+            None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
+            pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
+            state_log_density=state_values, within_chains=len(centres) > 1,
+            on_stage=lambda p: pilot_stage_ended(p, "the pilot"),
+        )
+        report("pilot", pilot.evaluations, pilot.evaluations)
+        covariance = pilot.covariance
 
-    def report(stage, done, total):
-        state.stage = stage
-        if checkpoint is not None and done >= total:
-            checkpoint.snapshot = state.partial_advice()  # readable from the checkpoint even after a hard kill
-            checkpoint.stage_ended(stage)
-        user_progress(stage, done, total)
+        # 3-4. Structure and advice.
+        structure = analyse(covariance)
+        advice = advise(covariance, scale_factor=pilot.scale_factor, current=current)
+        proposal, step_sizes, single, slowdowns = (
+            advice.proposal_covariance, advice.step_sizes, advice.single_step, advice.slowdowns
+        )
 
-    first = counted(start[None, :])
-    if first.errors or not np.isfinite(first.values[0]):
-        detail = first.errors[0].strip().splitlines()[-1] if first.errors else f"value {first.values[0]}"
-        raise TargetError(f"the log-density at the start point is not finite ({detail}); choose a start inside the support.")
+        # 4b. Reparameterisation: transforms, rotated basis, informed split, and a
+        # short adaptive pilot in the new coordinates (fixed-proposal stages).
+        reparam, ridge_findings, z_plan, prior_cov = None, [], [], None
+        pooled = pilot.draws.reshape(-1, dim) if pilot.draws is not None else pilot.states
+        try:
+            prior_cov = prior_terms.covariance(fit.mode, np.sqrt(np.diag(covariance))) if prior_terms else None
+            n_independent = pooled.shape[0] / max(1.0, within_chain_iact(pilot.draws)) if pilot.draws is not None else None
+            reparam = build_reparam(pooled, names, bound_array, prior_covariance=prior_cov, force=transforms,
+                                    forbid=forbid_transforms, covariance=covariance, n_independent=n_independent)
+        except (WalktuneError, np.linalg.LinAlgError, ValueError) as error:
+            ridge_findings.append(Finding("undecided", "info", [], f"no reparameterisation: {error}", {}))
+        if reparam is not None:
+            ridge_findings += curved_ridge_findings(pooled, reparam, names)
+            transformed = any(t.kind != "identity" for t in reparam.transforms)
+            reduced = prior_terms is not None and 0 < reparam.informed < dim
+            if transformed or reduced:
+                z_budget = pilot_budget // 2 if budget is None else min(pilot_budget // 2, max(0, (budget - counted.count) // 5))
+                z_evaluator = _SamplerSpaceEvaluator(counted, reparam)
+                z_pilot = run_pilot(
+                    None, reparam.to_sampler(pilot.states), np.eye(dim), max(z_budget, 2 * n_chains * max(50, 10 * dim)),
+                    proof_seed.spawn(1)[0], evaluator=z_evaluator,
+                    progress=lambda done, total: report("pilot in new coordinates", done, total),
+                    on_stage=lambda p: pilot_stage_ended(p, "the pilot in new coordinates"),
+                )
+                report("pilot in new coordinates", z_pilot.evaluations, z_pilot.evaluations)
+                old_map = reparam
+                reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov, n_independent)
+                z_states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
+                if transformed:
+                    z_plan.append(("transformed-rotated", "random walk in the transformed, whitened coordinates",
+                                   (z_pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * np.eye(dim), None))
+                if reduced:
+                    r = reparam.informed
+                    diag = np.r_[np.full(r, theory.optimal_scale(r) ** 2), np.ones(dim - r)]
+                    z_plan.append(("reduced-basis", f"random walk in the {r} informed directions, independence proposals "
+                                   "from the fitted Gaussian in the others", np.diag(diag), np.arange(r, dim)))
+        pilot_evaluations = counted.count
 
-    # Budgets.
-    if budget is None:
-        pilot_budget = pilot_budget_default(dim)
-        proof_steps = proof_steps_default(dim)
-    else:
-        pilot_budget = max(int(0.4 * budget), minimum_budget(dim, n_chains) - 3 * n_chains * 200)
-
-    # 1. Mode and Laplace covariance.
-    report("mode", 0, 1)
-    scales = np.where(np.isfinite(bound_array).all(axis=1), (bound_array[:, 1] - bound_array[:, 0]) / 10, 1.0)
-    scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
-    mode_budget = max(20 * (dim + 1), pilot_budget // 3 - 2 * dim * dim)
-    fit = find_mode(counted.scalar, start, bound_array, scales, mode_budget)
-    report("mode", 1, 1)
-    initial_cov = _initial_covariance(fit, bound_array, start)
-    state.estimate(initial_cov, 1.0, "the Laplace approximation at the mode")
-
-    # 2. Pilot from overdispersed starts.
-    rng = np.random.default_rng(mode_seed)
-    other_modes = _other_modes(counted, start, fit, initial_cov, bound_array, 4, rng)
-    centres = [fit.mode] + other_modes
-    states, state_values = _overdispersed_starts(counted, centres, initial_cov, n_chains, rng)
-    used = counted.count
-    pilot = run_pilot(
-        None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
-        pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
-        state_log_density=state_values, within_chains=len(centres) > 1,
-        on_stage=lambda p: pilot_stage_ended(p, "the pilot"),
-    )
-    report("pilot", pilot.evaluations, pilot.evaluations)
-    covariance = pilot.covariance
-
-    # 3-4. Structure and advice.
-    structure = analyse(covariance)
-    advice = advise(covariance, scale_factor=pilot.scale_factor, current=current)
-    proposal, step_sizes, single, slowdowns = (
-        advice.proposal_covariance, advice.step_sizes, advice.single_step, advice.slowdowns
-    )
-
-    # 4b. Reparameterisation: transforms, rotated basis, informed split, and a
-    # short adaptive pilot in the new coordinates (fixed-proposal stages).
-    reparam, ridge_findings, z_plan, prior_cov = None, [], [], None
-    pooled = pilot.draws.reshape(-1, dim) if pilot.draws is not None else pilot.states
-    try:
-        prior_cov = prior_terms.covariance(fit.mode, np.sqrt(np.diag(covariance))) if prior_terms else None
-        n_independent = pooled.shape[0] / max(1.0, within_chain_iact(pilot.draws)) if pilot.draws is not None else None
-        reparam = build_reparam(pooled, names, bound_array, prior_covariance=prior_cov, force=transforms,
-                                forbid=forbid_transforms, covariance=covariance, n_independent=n_independent)
-    except (WalktuneError, np.linalg.LinAlgError, ValueError) as error:
-        ridge_findings.append(Finding("undecided", "info", [], f"no reparameterisation: {error}", {}))
-    if reparam is not None:
-        ridge_findings += curved_ridge_findings(pooled, reparam, names)
-        transformed = any(t.kind != "identity" for t in reparam.transforms)
-        reduced = prior_terms is not None and 0 < reparam.informed < dim
-        if transformed or reduced:
-            z_budget = pilot_budget // 2 if budget is None else min(pilot_budget // 2, max(0, (budget - counted.count) // 5))
-            z_evaluator = _SamplerSpaceEvaluator(counted, reparam)
-            z_pilot = run_pilot(
-                None, reparam.to_sampler(pilot.states), np.eye(dim), max(z_budget, 2 * n_chains * max(50, 10 * dim)),
-                proof_seed.spawn(1)[0], evaluator=z_evaluator,
-                progress=lambda done, total: report("pilot in new coordinates", done, total),
-                on_stage=lambda p: pilot_stage_ended(p, "the pilot in new coordinates"),
-            )
-            report("pilot in new coordinates", z_pilot.evaluations, z_pilot.evaluations)
-            old_map = reparam
-            reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov, n_independent)
-            z_states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
-            if transformed:
-                z_plan.append(("transformed-rotated", "random walk in the transformed, whitened coordinates",
-                               (z_pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * np.eye(dim), None))
-            if reduced:
-                r = reparam.informed
-                diag = np.r_[np.full(r, theory.optimal_scale(r) ** 2), np.ones(dim - r)]
-                z_plan.append(("reduced-basis", f"random walk in the {r} informed directions, independence proposals "
-                               "from the fitted Gaussian in the others", np.diag(diag), np.arange(r, dim)))
-    pilot_evaluations = counted.count
-
-    # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
-    # Evaluations kept back for the mode checks after the proof runs.
-    detection_reserve = 5 * 60 * (dim + 1) + 200 + (2 * dim * (2 * dim + 1) if dim <= MAX_CURVATURE_PROBE_DIM else 0)
-    n_runs = 3 + len(z_plan)
-    if budget is not None:
-        detection_reserve = min(detection_reserve, budget // 10)
-        # What the mode search and pilots left, shared equally by the runs.
-        proof_steps = max(50, (budget - counted.count - detection_reserve) // (n_runs * n_chains))
-    if current is not None:
-        baseline_name, baseline_cov, baseline_text = "current", current, "the proposal you use now"
-        baseline_predicted = slowdowns["current"]["slowest"]
-    else:
-        baseline_name, baseline_cov = "single-step", single**2 * np.eye(dim)
-        baseline_text = f"one tuned step size {single:.3g} for all parameters"
-        baseline_predicted = slowdowns["single_step"]["slowest"]
-    plan = [
-        (baseline_name, baseline_text, baseline_cov, baseline_predicted),
-        ("step-sizes", "tuned per-parameter step sizes", np.diag(step_sizes**2), slowdowns["step_sizes"]["slowest"]),
-        ("tuned-covariance", "the tuned full proposal covariance", proposal, 1.0),
-    ]
-    # Each run's diagnostics are computed once (walktune.diagnostics.summary) and reused below.
-    rows, runs, stats = [], {}, {}
-    state.rows = rows
-    proof_seeds = proof_seed.spawn(len(plan))
-    for (name, text, cov, predicted), child in zip(plan, proof_seeds):
-        run = _proof_run(name, cov, counted, pilot, proof_steps, child, report)
-        runs[name], stats[name] = run, summary(run.draws)
-        rows.append(_row_from_run(name, text, run, stats[name], predicted, rows[0] if rows else None))
-
-    tuned_row = rows[-1]
-    if z_plan:
-        z_evaluator = _SamplerSpaceEvaluator(counted, reparam)
-        for (name, text, cov, fresh), child in zip(z_plan, proof_seed.spawn(len(z_plan))):
-            run = sample(None, z_states, cov, proof_steps, seed=child, evaluator=z_evaluator, independent=fresh,
-                         progress=lambda done, total, name=name: report(name, done, total))
-            # Measured in the user's own parameters.
-            run = replace(run, draws=reparam.from_sampler(run.draws))
+        # 5. Proof: equal budgets, fixed proposals, from the pilot's end states.
+        # Evaluations kept back for the mode checks after the proof runs.
+        detection_reserve = 5 * 60 * (dim + 1) + 200 + (2 * dim * (2 * dim + 1) if dim <= MAX_CURVATURE_PROBE_DIM else 0)
+        n_runs = 3 + len(z_plan)
+        if budget is not None:
+            detection_reserve = min(detection_reserve, budget // 10)
+            # What the mode search and pilots left, shared equally by the runs.
+            proof_steps = max(50, (budget - counted.count - detection_reserve) // (n_runs * n_chains))
+        if current is not None:
+            baseline_name, baseline_cov, baseline_text = "current", current, "the proposal you use now"
+            baseline_predicted = slowdowns["current"]["slowest"]
+        else:
+            baseline_name, baseline_cov = "single-step", single**2 * np.eye(dim)
+            baseline_text = f"one tuned step size {single:.3g} for all parameters"
+            baseline_predicted = slowdowns["single_step"]["slowest"]
+        plan = [
+            (baseline_name, baseline_text, baseline_cov, baseline_predicted),
+            ("step-sizes", "tuned per-parameter step sizes", np.diag(step_sizes**2), slowdowns["step_sizes"]["slowest"]),
+            ("tuned-covariance", "the tuned full proposal covariance", proposal, 1.0),
+        ]
+        # Each run's diagnostics are computed once (walktune.diagnostics.summary) and reused below.
+        rows, runs, stats = [], {}, {}
+        state.rows = rows
+        proof_seeds = proof_seed.spawn(len(plan))
+        for (name, text, cov, predicted), child in zip(plan, proof_seeds):
+            run = _proof_run(name, cov, counted, pilot, proof_steps, child, report)
             runs[name], stats[name] = run, summary(run.draws)
-            rows.append(_row_from_run(name, text, run, stats[name], float("nan"), rows[0]))
-    tuned = runs["tuned-covariance"]
-    posterior_mean = tuned.draws.reshape(-1, dim).mean(axis=0)
-    mcse = stats["tuned-covariance"].mcse
-    tuned_rhat = stats["tuned-covariance"].rhat
-    tau_max = tuned_row.iact_max
+            rows.append(_row_from_run(name, text, run, stats[name], predicted, rows[0] if rows else None))
 
-    # 6. Findings.
-    findings: list[Finding] = []
-    findings += correlation_findings(structure, names)
-    findings += conditioning_findings(structure, names)
-    findings += convergence_findings(tuned_rhat, names, "tuned-covariance")
-    findings += identification_findings(np.sqrt(np.diag(covariance)), bound_array, names)
-    if prior_terms is not None and prior_cov is not None:
-        findings += prior_dominated_findings(
-            np.diag(covariance), np.diag(prior_cov), names,
-            reparam.informed if reparam is not None and reparam.prior_variance_ratio is not None else None, dim,
-        )
-    findings += acceptance_findings(rows)
-    detection_budget = None if budget is None else max(0, budget - counted.count)
-    # The detectors look at every proof run: all are fixed-proposal continuations of the pilot's chains.
-    proof_draws = np.concatenate([run.draws for run in runs.values()], axis=0)
-    tau_within = within_chain_iact(proof_draws)
-    regions, undecided_modes = find_regions(
-        counted.scalar, proof_draws, tau_within, extra_centres=centres[1:], seed=0, budget=detection_budget,
-        chain_ids=[c % n_chains for c in range(proof_draws.shape[0])],
-    )
-    multimodal = multimodal_finding(regions, names)
-    if multimodal is not None:
-        findings.append(multimodal)
-    funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
-    probe_cost = 2 * dim * (2 * dim + 1) + 2 * dim + 1
-    if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget is None or budget - counted.count >= probe_cost):
-        # The model itself can show a funnel the draws were too few to show.
-        funnel = funnel_findings_from_curvature(counted.scalar, posterior_mean, np.sqrt(np.diag(covariance)), names)
-        if funnel:
-            undecided_scale = None
-    findings += funnel
-    findings += boundary_findings(tuned.draws, bound_array, names)
-    findings += heavy_tail_findings(tuned.draws, stats["tuned-covariance"].bulk_ess, names)
-    for note in (undecided_modes, undecided_scale):
-        if note:
-            findings.append(Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {}))
-    findings += ridge_findings
-    if not tuned_row.ess_reliable:
-        findings.append(
-            Finding(
-                "short-chains", "warn", [],
-                "the tuned run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
-                "chain); its ESS and the speed-ups are rough. Raise the budget.",
-                {"iact_max": tau_max, "steps": proof_steps},
+        tuned_row = rows[-1]
+        if z_plan:
+            z_evaluator = _SamplerSpaceEvaluator(counted, reparam)
+            for (name, text, cov, fresh), child in zip(z_plan, proof_seed.spawn(len(z_plan))):
+                run = sample(None, z_states, cov, proof_steps, seed=child, evaluator=z_evaluator, independent=fresh,
+                             progress=lambda done, total, name=name: report(name, done, total))
+                # Measured in the user's own parameters.
+                run = replace(run, draws=reparam.from_sampler(run.draws))
+                runs[name], stats[name] = run, summary(run.draws)
+                rows.append(_row_from_run(name, text, run, stats[name], float("nan"), rows[0]))
+        tuned = runs["tuned-covariance"]
+        posterior_mean = tuned.draws.reshape(-1, dim).mean(axis=0)
+        mcse = stats["tuned-covariance"].mcse
+        tuned_rhat = stats["tuned-covariance"].rhat
+        tau_max = tuned_row.iact_max
+
+        # 6. Findings.
+        findings: list[Finding] = []
+        findings += correlation_findings(structure, names)
+        findings += conditioning_findings(structure, names)
+        findings += convergence_findings(tuned_rhat, names, "tuned-covariance")
+        findings += identification_findings(np.sqrt(np.diag(covariance)), bound_array, names)
+        if prior_terms is not None and prior_cov is not None:
+            findings += prior_dominated_findings(
+                np.diag(covariance), np.diag(prior_cov), names,
+                reparam.informed if reparam is not None and reparam.prior_variance_ratio is not None else None, dim,
             )
+        findings += acceptance_findings(rows)
+        detection_budget = None if budget is None else max(0, budget - counted.count)
+        # The detectors look at every proof run: all are fixed-proposal continuations of the pilot's chains.
+        proof_draws = np.concatenate([run.draws for run in runs.values()], axis=0)
+        tau_within = within_chain_iact(proof_draws)
+        regions, undecided_modes = find_regions(
+            counted.scalar, proof_draws, tau_within, extra_centres=centres[1:], seed=0, budget=detection_budget,
+            chain_ids=[c % n_chains for c in range(proof_draws.shape[0])],
         )
-    if not pilot.converged:
-        findings.append(
-            Finding(
-                "pilot-unsettled", "info", [],
-                "the pilot's covariance was still changing when its budget ran out; the advice may improve "
-                "with a larger budget.",
-                {"pilot_evaluations": pilot_evaluations},
-            )
-        )
-    for name, run in runs.items():
-        if run.error_count or run.nan_count:
+        multimodal = multimodal_finding(regions, names)
+        if multimodal is not None:
+            findings.append(multimodal)
+        funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
+        probe_cost = 2 * dim * (2 * dim + 1) + 2 * dim + 1
+        if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget is None or budget - counted.count >= probe_cost):
+            # The model itself can show a funnel the draws were too few to show.
+            funnel = funnel_findings_from_curvature(counted.scalar, posterior_mean, np.sqrt(np.diag(covariance)), names)
+            if funnel:
+                undecided_scale = None
+        findings += funnel
+        findings += boundary_findings(tuned.draws, bound_array, names)
+        findings += heavy_tail_findings(tuned.draws, stats["tuned-covariance"].bulk_ess, names)
+        for note in (undecided_modes, undecided_scale):
+            if note:
+                findings.append(Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {}))
+        findings += ridge_findings
+        if not tuned_row.ess_reliable:
             findings.append(
                 Finding(
-                    "failed-evaluations", "warn", [],
-                    f"in the {name} run the log-density raised {run.error_count} times and returned NaN "
-                    f"{run.nan_count} times; those proposals were rejected. First: "
-                    f"{(run.first_error or '').strip().splitlines()[-1] if run.first_error else 'NaN'}",
-                    {"errors": run.error_count, "nans": run.nan_count},
+                    "short-chains", "warn", [],
+                    "the tuned run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
+                    "chain); its ESS and the speed-ups are rough. Raise the budget.",
+                    {"iact_max": tau_max, "steps": proof_steps},
+                )
+            )
+        if not pilot.converged:
+            findings.append(
+                Finding(
+                    "pilot-unsettled", "info", [],
+                    "the pilot's covariance was still changing when its budget ran out; the advice may improve "
+                    "with a larger budget.",
+                    {"pilot_evaluations": pilot_evaluations},
+                )
+            )
+        for name, run in runs.items():
+            if run.error_count or run.nan_count:
+                findings.append(
+                    Finding(
+                        "failed-evaluations", "warn", [],
+                        f"in the {name} run the log-density raised {run.error_count} times and returned NaN "
+                        f"{run.nan_count} times; those proposals were rejected. First: "
+                        f"{(run.first_error or '').strip().splitlines()[-1] if run.first_error else 'NaN'}",
+                        {"errors": run.error_count, "nans": run.nan_count},
+                    )
+                )
+
+        if counted.timeouts:
+            findings.append(
+                Finding(
+                    "timed-out-evaluations", "warn", [],
+                    f"{counted.timeouts} evaluations did not return within the time limit"
+                    f"{_limit_text(getattr(base, 'time_limit', None))} and were rejected as failed. A chain that rejects "
+                    "slow regions samples the posterior restricted to where the model answers in time: raise the limit "
+                    "if those regions matter.",
+                    {"timeouts": counted.timeouts},
                 )
             )
 
-    if counted.timeouts:
-        findings.append(
-            Finding(
-                "timed-out-evaluations", "warn", [],
-                f"{counted.timeouts} evaluations did not return within the time limit"
-                f"{_limit_text(getattr(base, 'time_limit', None))} and were rejected as failed. A chain that rejects "
-                "slow regions samples the posterior restricted to where the model answers in time: raise the limit "
-                "if those regions matter.",
-                {"timeouts": counted.timeouts},
-            )
+        total = counted.count
+        return TuneResult(
+            parameter_names=names,
+            bounds=bound_array,
+            mode_fit=fit,
+            proposal_covariance=proposal,
+            posterior_mean=posterior_mean,
+            posterior_mean_mcse=mcse,
+            posterior_covariance=covariance,
+            step_sizes=step_sizes,
+            single_step=single,
+            expected_acceptance=advice.expected_acceptance,
+            structure=structure,
+            comparison=rows,
+            findings=findings,
+            pilot_evaluations=pilot_evaluations,
+            total_evaluations=total,
+            seconds_per_evaluation=counted.seconds / max(total, 1),
+            worker_busy=_worker_busy(counted, base),
+            target_ess=int(target_ess),
+            warmup_steps=warmup_and_thinning(tau_max)[0] or 0,
+            thinning=warmup_and_thinning(tau_max)[1],
+            pilot=pilot,
+            advice=advice,
+            runs=runs,
+            current_proposal=current,
+            seed=seed_seq.entropy,
+            regions=regions if len(regions) > 1 else [],
+            reparam=reparam,
         )
-
-    total = counted.count
-    return TuneResult(
-        parameter_names=names,
-        bounds=bound_array,
-        mode_fit=fit,
-        proposal_covariance=proposal,
-        posterior_mean=posterior_mean,
-        posterior_mean_mcse=mcse,
-        posterior_covariance=covariance,
-        step_sizes=step_sizes,
-        single_step=single,
-        expected_acceptance=advice.expected_acceptance,
-        structure=structure,
-        comparison=rows,
-        findings=findings,
-        pilot_evaluations=pilot_evaluations,
-        total_evaluations=total,
-        seconds_per_evaluation=counted.seconds / max(total, 1),
-        worker_busy=_worker_busy(counted, base),
-        target_ess=int(target_ess),
-        warmup_steps=warmup_and_thinning(tau_max)[0] or 0,
-        thinning=warmup_and_thinning(tau_max)[1],
-        pilot=pilot,
-        advice=advice,
-        runs=runs,
-        current_proposal=current,
-        seed=seed_seq.entropy,
-        regions=regions if len(regions) > 1 else [],
-        reparam=reparam,
-    )
