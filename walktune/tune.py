@@ -162,6 +162,7 @@ class _Counted:
         self.count = 0
         self.seconds = 0.0
         self.busy_seconds = 0.0
+        self.worker_seconds = 0.0
         self.timeouts = 0
         self.bounded = bool(np.any(np.isfinite(bounds)))
 
@@ -193,7 +194,9 @@ class _Counted:
             result = self.evaluator(points)
             seconds, busy = time.perf_counter() - t0, result.busy_seconds
         self.seconds += seconds
-        self.busy_seconds += busy
+        if busy > 0:  # ran on workers (a resumed run may have started in this process)
+            self.busy_seconds += busy
+            self.worker_seconds += seconds
         if result.errors:
             self.timeouts += sum(text.startswith(TIMEOUT_PREFIX) for text in result.errors.values())
         return result
@@ -496,11 +499,12 @@ def _limit_text(limit) -> str:
 
 
 def _worker_busy(counted: _Counted, evaluator) -> float | None:
-    """Share of the evaluation wall time the workers spent evaluating (None for in-process evaluation)."""
+    """Share of the wall time of batches evaluated on workers that the workers spent evaluating
+    (None for in-process evaluation)."""
     workers = getattr(evaluator, "parallelism", 1)
-    if workers <= 1 or counted.seconds <= 0:
+    if workers <= 1 or counted.worker_seconds <= 0:
         return None
-    return float(min(1.0, counted.busy_seconds / (counted.seconds * workers)))
+    return float(min(1.0, counted.busy_seconds / (counted.worker_seconds * workers)))
 
 
 class _JobState:
