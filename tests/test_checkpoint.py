@@ -212,8 +212,7 @@ def test_checkpoints_are_written_on_the_interval(tmp_path):
     # The clock is read once per evaluated batch and once per write: a write every 30 batches
     # at least, besides the stage ends (some of which fall together with an interval write).
     assert at_stage_ends >= 5
-    assert with_interval >= batches // 31
-    assert with_interval > at_stage_ends + batches // 31 - at_stage_ends
+    assert with_interval >= batches // 31 > 2 * at_stage_ends
 
 
 # ----------------------------------------------------------------- real processes
