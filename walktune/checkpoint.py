@@ -280,9 +280,12 @@ class Checkpoint:
                 "the same model, or start a new run elsewhere; the checkpoint was left as it is."
             )
 
-    def stage_ended(self, stage: str) -> None:
-        """Note a finished stage and write a checkpoint if anything new was evaluated."""
+    def stage_ended(self, stage: str, snapshot: dict | None = None) -> None:
+        """Note a finished stage (and the job's partial advice then) and write a checkpoint if anything
+        new was evaluated."""
         self.stage = stage
+        if snapshot is not None:
+            self.snapshot = snapshot
         self.save()
 
     # ------------------------------------------------------------------ saving

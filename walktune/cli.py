@@ -115,11 +115,9 @@ RESULT_OPTIONS = ("target", "names", "start", "bound", "budget", "chains", "seed
                   "transform", "no_transform")
 
 
-def _resumed_options(folder: Path, given: dict) -> dict:
-    """The options of the checkpointed run in ``folder``, checked against those given again."""
-    from .checkpoint import read_meta
-
-    stored = read_meta(folder).get("identity", {}).get("options")
+def _resumed_options(folder: Path, identity: dict, given: dict) -> dict:
+    """The options of the run checkpointed in ``folder`` (its ``identity``), checked against those given again."""
+    stored = identity.get("options")
     if not isinstance(stored, dict):
         raise WalktuneError(f"the checkpoint in {folder} was not written by `walktune tune`; resume it from Python.")
     merged = dict(stored)
@@ -204,8 +202,11 @@ def _run_tune(
     if resume is not None:
         if out is not None and out.resolve() != resume.resolve():
             raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
+        from .checkpoint import read_meta
+
         out = resume
-        options = _resumed_options(resume, options)
+        stored_identity = read_meta(resume).get("identity", {})
+        options = _resumed_options(resume, stored_identity, options)
     else:
         out = out if out is not None else Path("walktune-output")
         if target is None:
@@ -219,14 +220,11 @@ def _run_tune(
             # Fix the seed now, so that an interrupted run can be resumed bit for bit.
             options["seed"] = int(np.random.SeedSequence().entropy % 2**63)
     spec = load_target(options["target"])
-    if resume is not None:
-        from .checkpoint import read_meta
-
-        if read_meta(resume)["identity"].get("model_digest") != spec.source_digest:
-            raise WalktuneError(
-                f"the model file of {spec.canonical} changed since the run in {resume} was checkpointed; a resumed run "
-                "needs the same model. Restore it, or start a new run with another --out."
-            )
+    if resume is not None and stored_identity.get("model_digest") != spec.source_digest:
+        raise WalktuneError(
+            f"the model file of {spec.canonical} changed since the run in {resume} was checkpointed; a resumed run "
+            "needs the same model. Restore it, or start a new run with another --out."
+        )
     options["target"] = spec.canonical
     names_list = _split_list(options["names"], "names") or spec.names
     if options["start"] is not None:

@@ -281,30 +281,32 @@ class _PriorTerms:
                 total += np.where((theta[:, i] > a) & (theta[:, i] < b), 0.0, -np.inf)
         return total
 
+    def log_prior_at(self, theta: np.ndarray) -> np.ndarray:
+        """Specs plus log-prior at one point (d,), or at a batch (n, d) when vectorized; may raise."""
+        extra = self._spec_log_density(theta)
+        if self.log_prior is not None:
+            extra = extra + np.asarray(self.log_prior(theta), dtype=float).reshape(-1)
+        return extra
+
     def posterior(self, log_likelihood):
         def log_posterior(theta):
             theta = np.asarray(theta, dtype=float)
-            extra = self._spec_log_density(theta)
-            if self.log_prior is not None:
-                extra = extra + np.asarray(self.log_prior(theta), dtype=float).reshape(-1)
-            value = np.asarray(log_likelihood(theta), dtype=float).reshape(-1) + extra
+            value = np.asarray(log_likelihood(theta), dtype=float).reshape(-1) + self.log_prior_at(theta)
             return value if self.vectorized else float(value[0])
 
         return log_posterior
 
     def log_prior_values(self, points: np.ndarray) -> tuple[np.ndarray, dict]:
         """The prior's log-density at each point, and the tracebacks of points where it raised."""
-        extra = self._spec_log_density(points)
+        if self.vectorized:
+            return self.log_prior_at(points), {}
+        extra = np.empty(points.shape[0])
         errors = {}
-        if self.log_prior is not None:
-            if self.vectorized:
-                extra = extra + np.asarray(self.log_prior(points), dtype=float).reshape(-1)
-            else:
-                for i, point in enumerate(points):
-                    try:
-                        extra[i] = extra[i] + float(np.asarray(self.log_prior(point), dtype=float).reshape(-1)[0])
-                    except Exception:  # noqa: BLE001 - a failed evaluation, reported like the likelihood's
-                        extra[i], errors[i] = np.nan, traceback.format_exc()
+        for i, point in enumerate(points):
+            try:
+                extra[i] = self.log_prior_at(point)[0]
+            except Exception:  # noqa: BLE001 - a failed evaluation, reported like the likelihood's
+                extra[i], errors[i] = np.nan, traceback.format_exc()
         return extra, errors
 
     def covariance(self, centre: np.ndarray, posterior_sd: np.ndarray) -> np.ndarray:
@@ -793,18 +795,20 @@ def tune(
         state.names, state.counted = names, counted
         user_progress = progress or (lambda *args: None)
 
-        def pilot_stage_ended(p, what):
-            if what == "the pilot":
-                state.estimate(p.covariance, p.scale_factor, f"{what} after {len(p.stages)} stages")
+        def end_stage(name):
+            """A checkpoint at a stage end, holding the partial advice so far (readable even after a hard kill)."""
             if checkpoint is not None:
-                checkpoint.snapshot = state.partial_advice()
-                checkpoint.stage_ended(f"{state.stage} stage {len(p.stages)}")
+                checkpoint.stage_ended(name, state.partial_advice())
+
+        def pilot_stage_ended(p, estimate: bool):
+            if estimate:
+                state.estimate(p.covariance, p.scale_factor, f"the pilot after {len(p.stages)} stages")
+            end_stage(f"{state.stage} stage {len(p.stages)}")
 
         def report(stage, done, total):
             state.stage = stage
-            if checkpoint is not None and done >= total:
-                checkpoint.snapshot = state.partial_advice()  # readable from the checkpoint even after a hard kill
-                checkpoint.stage_ended(stage)
+            if done >= total:
+                end_stage(stage)
             user_progress(stage, done, total)
 
         first = counted(start[None, :])
@@ -839,7 +843,7 @@ def tune(
             None, states, initial_cov, max(pilot_budget - used, n_chains * 2 * max(50, 10 * dim)),
             pilot_seed, evaluator=counted, progress=lambda done, total: report("pilot", done, total),
             state_log_density=state_values, within_chains=len(centres) > 1,
-            on_stage=lambda p: pilot_stage_ended(p, "the pilot"),
+            on_stage=lambda p: pilot_stage_ended(p, estimate=True),
         )
         report("pilot", pilot.evaluations, pilot.evaluations)
         covariance = pilot.covariance
@@ -873,7 +877,7 @@ def tune(
                     None, reparam.to_sampler(pilot.states), np.eye(dim), max(z_budget, 2 * n_chains * max(50, 10 * dim)),
                     proof_seed.spawn(1)[0], evaluator=z_evaluator,
                     progress=lambda done, total: report("pilot in new coordinates", done, total),
-                    on_stage=lambda p: pilot_stage_ended(p, "the pilot in new coordinates"),
+                    on_stage=lambda p: pilot_stage_ended(p, estimate=False),
                 )
                 report("pilot in new coordinates", z_pilot.evaluations, z_pilot.evaluations)
                 old_map = reparam
