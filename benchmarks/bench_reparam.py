@@ -21,7 +21,7 @@ import numpy as np
 import walktune
 from walktune.evaluators import InProcessEvaluator
 from walktune.reparam import TransformChoice, fit_map
-from walktune.tune import _Counted, _SamplerSpaceEvaluator
+from walktune.posterior import CountedEvaluator, SamplerSpaceEvaluator
 
 
 def reduced_basis_ratio():
@@ -59,8 +59,8 @@ def overhead_ratio(repeats=3000, batch=4):
     rng = np.random.default_rng(1)
     a = rng.standard_normal((d, d)) * 0.1
     reparam = fit_map(names, choices, np.zeros(d), a @ a.T + 0.05 * np.eye(d))
-    bare = _Counted(InProcessEvaluator(ten_microseconds), np.array(bounds))
-    mapped = _SamplerSpaceEvaluator(bare, reparam)
+    bare = CountedEvaluator(InProcessEvaluator(ten_microseconds), np.array(bounds))
+    mapped = SamplerSpaceEvaluator(bare, reparam)
     repeats = repeats * 4 // batch
     z = rng.standard_normal((repeats, batch, d)) * 0.5
     theta = reparam.from_sampler(z)

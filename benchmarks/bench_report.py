@@ -72,7 +72,7 @@ def timed(code, arg, repeats, cold=False):
 
 def tuning_folder(folder: Path) -> Path:
     import walktune
-    from walktune.tune import pilot_budget_default
+    from walktune.stages import pilot_budget_default
 
     dim = 100
     rng = np.random.default_rng(1)

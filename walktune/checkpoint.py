@@ -356,3 +356,63 @@ class Checkpoint:
         """Delete the checkpoint once the run's results are written, and unlock the folder."""
         self.path.unlink(missing_ok=True)
         self.release()
+
+
+# --------------------------------------------------------------------------- options of a run from the command line
+
+#: Tuning options that shape the result; a resumed run takes them from the checkpoint.
+RESULT_OPTIONS = ("target", "names", "start", "bound", "budget", "chains", "seed", "current_proposal", "target_ess",
+                  "transform", "no_transform")
+
+
+def options_for_new_run(folder: Path, given: dict) -> dict:
+    """The options of a new run into ``folder``: refused where an interrupted run waits; the seed fixed now.
+
+    A seed drawn here and recorded is what lets an interrupted run be resumed bit for bit.
+    """
+    folder = Path(folder)
+    if (folder / FILE_NAME).exists():
+        raise WalktuneError(
+            f"{folder} holds the checkpoint of an interrupted run; continue it with `walktune tune --resume {folder}`, "
+            f"choose another --out, or delete {folder / FILE_NAME} to start afresh."
+        )
+    options = dict(given)
+    if options.get("seed") is None:
+        options["seed"] = int(np.random.SeedSequence().entropy % 2**63)
+    return options
+
+
+def options_for_resume(folder: Path, given: dict, canonical_target) -> tuple[dict, dict]:
+    """The options of the run checkpointed in ``folder``, checked against those given again, and its identity.
+
+    ``given`` holds the command line's options (None or [] where not given);
+    ``canonical_target(text)`` turns a TARGET into the form recorded. An
+    option given again must equal the recorded one.
+    """
+    identity = read_meta(folder).get("identity", {})
+    stored = identity.get("options")
+    if not isinstance(stored, dict):
+        raise WalktuneError(f"the checkpoint in {folder} was not written by `walktune tune`; resume it from Python.")
+    merged = dict(stored)
+    for key in RESULT_OPTIONS:
+        value = given.get(key)
+        if value is None or value == []:
+            continue
+        if key == "target":
+            value = canonical_target(value)
+        if value != stored.get(key):
+            flag = "TARGET" if key == "target" else "--" + key.replace("_", "-")
+            raise WalktuneError(
+                f"{flag} {value!r} differs from the interrupted run's {stored.get(key)!r} in {folder}; "
+                f"drop {flag} to resume with the run's own options, or start a new run with another --out."
+            )
+    return merged, identity
+
+
+def check_model_unchanged(folder: Path, identity: dict, model_digest: str, label: str) -> None:
+    """A resumed run needs the model file the checkpointed run used (compared by digest)."""
+    if identity.get("model_digest") != model_digest:
+        raise WalktuneError(
+            f"the model file of {label} changed since the run in {folder} was checkpointed; a resumed run "
+            "needs the same model. Restore it, or start a new run with another --out."
+        )

@@ -110,34 +110,6 @@ def _read_proposal(path: Path) -> np.ndarray:
     raise WalktuneError(f"current proposal {path} must be a .npy, .csv or .json file.")
 
 
-#: Tuning options that shape the result; a resumed run takes them from the checkpoint.
-RESULT_OPTIONS = ("target", "names", "start", "bound", "budget", "chains", "seed", "current_proposal", "target_ess",
-                  "transform", "no_transform")
-
-
-def _resumed_options(folder: Path, identity: dict, given: dict) -> dict:
-    """The options of the run checkpointed in ``folder`` (its ``identity``), checked against those given again."""
-    stored = identity.get("options")
-    if not isinstance(stored, dict):
-        raise WalktuneError(f"the checkpoint in {folder} was not written by `walktune tune`; resume it from Python.")
-    merged = dict(stored)
-    for key in RESULT_OPTIONS:
-        value = given.get(key)
-        if value is None or value == []:
-            continue
-        if key == "target":
-            from .target import load_target
-
-            value = load_target(value).canonical
-        if value != stored.get(key):
-            flag = "TARGET" if key == "target" else "--" + key.replace("_", "-")
-            raise WalktuneError(
-                f"{flag} {value!r} differs from the interrupted run's {stored.get(key)!r} in {folder}; "
-                f"drop {flag} to resume with the run's own options, or start a new run with another --out."
-            )
-    return merged
-
-
 @contextmanager
 def _stop_on_signals(checkpoint):
     """First Ctrl-C or SIGTERM: stop at the next step and save. Second: exit at once (files are written atomically)."""
@@ -164,68 +136,8 @@ def _stop_on_signals(checkpoint):
             signal.signal(sig, old)
 
 
-def _run_tune(
-    target: Optional[str],
-    names: Optional[str],
-    start: Optional[str],
-    bounds: List[str],
-    budget: Optional[int],
-    chains: Optional[int],
-    seed: Optional[int],
-    out: Optional[Path],
-    current_proposal: Optional[Path],
-    target_ess: Optional[int],
-    as_json: bool,
-    quiet: bool,
-    report: bool = False,
-    transform: Optional[List[str]] = None,
-    no_transform: Optional[List[str]] = None,
-    workers: Optional[int] = None,
-    dask: Optional[str] = None,
-    resume: Optional[Path] = None,
-    checkpoint_every: float = 30.0,
-    time_limit: Optional[float] = None,
-    threads: Optional[int] = None,
-) -> None:
-    from .checkpoint import FILE_NAME, Checkpoint, Interrupted
-    from .console import StageProgress, render, render_partial
-    from .target import load_target
-    from .tune import tune
-
-    console = _console()
-    options = {
-        "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
-        "chains": chains, "seed": seed, "target_ess": target_ess, "transform": list(transform or []),
-        "no_transform": list(no_transform or []),
-        "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
-    }
-    if resume is not None:
-        if out is not None and out.resolve() != resume.resolve():
-            raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
-        from .checkpoint import read_meta
-
-        out = resume
-        stored_identity = read_meta(resume).get("identity", {})
-        options = _resumed_options(resume, stored_identity, options)
-    else:
-        out = out if out is not None else Path("walktune-output")
-        if target is None:
-            raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
-        if (out / FILE_NAME).exists():
-            raise WalktuneError(
-                f"{out} holds the checkpoint of an interrupted run; continue it with `walktune tune --resume {out}`, "
-                f"choose another --out, or delete {out / FILE_NAME} to start afresh."
-            )
-        if options["seed"] is None:
-            # Fix the seed now, so that an interrupted run can be resumed bit for bit.
-            options["seed"] = int(np.random.SeedSequence().entropy % 2**63)
-    spec = load_target(options["target"])
-    if resume is not None and stored_identity.get("model_digest") != spec.source_digest:
-        raise WalktuneError(
-            f"the model file of {spec.canonical} changed since the run in {resume} was checkpointed; a resumed run "
-            "needs the same model. Restore it, or start a new run with another --out."
-        )
-    options["target"] = spec.canonical
+def _tune_arguments(options: dict, spec) -> dict:
+    """The library's tune() arguments from the command line's options and the model file's settings."""
     names_list = _split_list(options["names"], "names") or spec.names
     if options["start"] is not None:
         try:
@@ -257,16 +169,101 @@ def _run_tune(
         unknown = [k for k in bound_map if isinstance(k, str) and k not in names_list]
         if unknown:
             raise WalktuneError(f"bounds name unknown parameter {unknown[0]!r}; known: {', '.join(names_list)}.")
-    proposal = np.asarray(options["current_proposal"], dtype=float) if options["current_proposal"] is not None else None
     forced = dict(spec.transforms)
     for text in options["transform"]:
         key, sep, kind = text.partition("=")
         if not sep or not key.strip() or not kind.strip():
             raise WalktuneError(f"--transform {text!r} must look like NAME=KIND (identity, log, neglog or logit).")
         forced[key.strip()] = kind.strip()
+    proposal = options["current_proposal"]
+    return dict(
+        start=start_values, names=names_list, bounds=bound_map or None,
+        current_proposal=np.asarray(proposal, dtype=float) if proposal is not None else None,
+        budget=options["budget"], seed=options["seed"], vectorized=spec.vectorized,
+        target_ess=400 if options["target_ess"] is None else options["target_ess"],
+        log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
+        forbid_transforms=list(options["no_transform"]) or None,
+    )
+
+
+def _run_options(given: dict, out: Optional[Path], resume: Optional[Path]):
+    """The output folder, the options of the run (a resumed run's own), the model, and the checkpoint identity."""
+    from .checkpoint import check_model_unchanged, options_for_new_run, options_for_resume
+    from .target import load_target
+
+    if resume is not None:
+        if out is not None and out.resolve() != resume.resolve():
+            raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
+        out = resume
+        options, stored = options_for_resume(resume, given, lambda text: load_target(text).canonical)
+    else:
+        out = out if out is not None else Path("walktune-output")
+        if given["target"] is None:
+            raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
+        options = options_for_new_run(out, given)
+    spec = load_target(options["target"])
+    if resume is not None:
+        check_model_unchanged(resume, stored, spec.source_digest, spec.canonical)
+    options["target"] = spec.canonical
     if out.exists() and not out.is_dir():
         raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
+    return out, options, spec
 
+
+def _interrupted(stop, out: Path, console: Console, as_json: bool, quiet: bool) -> None:
+    """Save and show the partial advice of a stopped run; exit 128 + the signal."""
+    from .console import render_partial
+    from .io import atomic_write_bytes, json_bytes
+
+    partial = stop.partial or {"partial": True}
+    partial["checkpoint"] = str(stop.checkpoint) if stop.checkpoint else None
+    if stop.checkpoint is not None:
+        atomic_write_bytes(out / "partial-advice.json", json_bytes(partial))
+    if as_json:
+        typer.echo(json.dumps(partial, indent=2))
+    elif quiet:
+        _console(stderr=True).print(f"interrupted; checkpoint in {out}; resume with: walktune tune --resume {out}")
+    else:
+        render_partial(console, partial, str(out))
+    raise typer.Exit(128 + (stop.signum or 2)) from None
+
+
+def _run_tune(
+    target: Optional[str],
+    names: Optional[str],
+    start: Optional[str],
+    bounds: List[str],
+    budget: Optional[int],
+    chains: Optional[int],
+    seed: Optional[int],
+    out: Optional[Path],
+    current_proposal: Optional[Path],
+    target_ess: Optional[int],
+    as_json: bool,
+    quiet: bool,
+    report: bool = False,
+    transform: Optional[List[str]] = None,
+    no_transform: Optional[List[str]] = None,
+    workers: Optional[int] = None,
+    dask: Optional[str] = None,
+    resume: Optional[Path] = None,
+    checkpoint_every: float = 30.0,
+    time_limit: Optional[float] = None,
+    threads: Optional[int] = None,
+) -> None:
+    from .checkpoint import FILE_NAME, Checkpoint, Interrupted
+    from .console import StageProgress, render
+    from .tune import tune
+
+    console = _console()
+    given = {
+        "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
+        "chains": chains, "seed": seed, "target_ess": target_ess, "transform": list(transform or []),
+        "no_transform": list(no_transform or []),
+        "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
+    }
+    out, options, spec = _run_options(given, out, resume)
+    arguments = _tune_arguments(options, spec)
     evaluator = None
     try:
         if workers is not None or dask is not None or time_limit is not None or threads is not None:
@@ -285,28 +282,10 @@ def _run_tune(
                 "without calling the model, then going on", highlight=False,
             )
         with _stop_on_signals(checkpoint), StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
-            result = tune(
-                None if evaluator is not None else spec.function, start_values, names=names_list,
-                bounds=bound_map or None, current_proposal=proposal, budget=options["budget"], chains=options["chains"],
-                seed=options["seed"], vectorized=spec.vectorized,
-                target_ess=400 if options["target_ess"] is None else options["target_ess"], progress=progress,
-                log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
-                forbid_transforms=list(options["no_transform"]) or None, evaluator=evaluator, checkpoint=checkpoint,
-            )
+            result = tune(None if evaluator is not None else spec.function, chains=options["chains"],
+                          evaluator=evaluator, checkpoint=checkpoint, progress=progress, **arguments)
     except Interrupted as stop:
-        from .io import atomic_write_bytes, json_bytes
-
-        partial = stop.partial or {"partial": True}
-        partial["checkpoint"] = str(stop.checkpoint) if stop.checkpoint else None
-        if stop.checkpoint is not None:
-            atomic_write_bytes(out / "partial-advice.json", json_bytes(partial))
-        if as_json:
-            typer.echo(json.dumps(partial, indent=2))
-        elif quiet:
-            _console(stderr=True).print(f"interrupted; checkpoint in {out}; resume with: walktune tune --resume {out}")
-        else:
-            render_partial(console, partial, str(out))
-        raise typer.Exit(128 + (stop.signum or 2)) from None
+        _interrupted(stop, out, console, as_json, quiet)
     finally:
         if evaluator is not None and hasattr(evaluator, "close"):
             evaluator.close()

@@ -5,6 +5,8 @@ Only the command-line layer imports this module; the library never prints.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 from rich.console import Console
 from rich.panel import Panel
@@ -13,7 +15,10 @@ from rich.table import Table
 from rich.text import Text
 
 from . import theory
-from .tune import CAUTION, TuneResult
+from .constants import CAUTION
+
+if TYPE_CHECKING:  # for annotations only: showing an inspection needs no tuning code
+    from .tune import TuneResult
 
 SEVERITY_STYLE = {"info": "cyan", "warn": "yellow", "critical": "bold red"}
 STAGE_LABELS = {

@@ -16,10 +16,11 @@ from pathlib import Path
 
 import numpy as np
 
+from .constants import ADVICE_SCHEMA
 from .errors import WalktuneError
 from .io import csv_bytes, json_bytes, npy_bytes, npz_bytes, write_folder
 
-SUPPORTED_SCHEMAS = ("walktune.advice/1",)
+SUPPORTED_SCHEMAS = (ADVICE_SCHEMA,)
 
 
 def result_files(result) -> dict:

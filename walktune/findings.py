@@ -187,3 +187,92 @@ def prior_dominated_findings(posterior_variance, prior_variance, names, informed
             )
         )
     return out
+
+
+def short_chain_findings(row, steps: int) -> list:
+    """``short-chains`` when the tuned run's ESS rests on too few autocorrelation times."""
+    if row.ess_reliable:
+        return []
+    return [
+        Finding(
+            "short-chains", "warn", [],
+            "the tuned run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
+            "chain); its ESS and the speed-ups are rough. Raise the budget.",
+            {"iact_max": row.iact_max, "steps": steps},
+        )
+    ]
+
+
+def pilot_findings(converged: bool, pilot_evaluations: int) -> list:
+    if converged:
+        return []
+    return [
+        Finding(
+            "pilot-unsettled", "info", [],
+            "the pilot's covariance was still changing when its budget ran out; the advice may improve "
+            "with a larger budget.",
+            {"pilot_evaluations": pilot_evaluations},
+        )
+    ]
+
+
+def failed_evaluation_findings(runs: dict) -> list:
+    """``failed-evaluations`` for each run in which the log-density raised or returned NaN."""
+    out = []
+    for name, run in runs.items():
+        if run.error_count or run.nan_count:
+            first = (run.first_error or "").strip().splitlines()[-1] if run.first_error else "NaN"
+            out.append(
+                Finding(
+                    "failed-evaluations", "warn", [],
+                    f"in the {name} run the log-density raised {run.error_count} times and returned NaN "
+                    f"{run.nan_count} times; those proposals were rejected. First: {first}",
+                    {"errors": run.error_count, "nans": run.nan_count},
+                )
+            )
+    return out
+
+
+def timeout_findings(timeouts: int, limit: float | None) -> list:
+    if not timeouts:
+        return []
+    limit_text = f" ({limit:g} s)" if limit else ""
+    return [
+        Finding(
+            "timed-out-evaluations", "warn", [],
+            f"{timeouts} evaluations did not return within the time limit{limit_text} and were rejected as "
+            "failed. A chain that rejects slow regions samples the posterior restricted to where the model "
+            "answers in time: raise the limit if those regions matter.",
+            {"timeouts": timeouts},
+        )
+    ]
+
+
+def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords, proof, checks) -> list:
+    """Every finding of a tuning job, from its stage results (see :mod:`walktune.stages`), in a fixed order.
+
+    Structure first (correlations, conditioning), then convergence and
+    identification, acceptance, the hard-geometry checks, the new coordinates'
+    findings, and last what limits the run itself (short chains, an unsettled
+    pilot, failed or timed-out evaluations).
+    """
+    names = posterior.names
+    sd = np.sqrt(np.diag(pilot.covariance))
+    findings = correlation_findings(structure, names) + conditioning_findings(structure, names)
+    findings += convergence_findings(proof.tuned_stats.rhat, names, "tuned-covariance")
+    findings += identification_findings(sd, posterior.bounds, names)
+    if posterior.prior_terms is not None and coords.prior_covariance is not None:
+        reparam = coords.reparam
+        informed = reparam.informed if reparam is not None and reparam.prior_variance_ratio is not None else None
+        findings += prior_dominated_findings(np.diag(pilot.covariance), np.diag(coords.prior_covariance), names,
+                                             informed, posterior.dim)
+    findings += acceptance_findings(proof.rows)
+    findings += checks.multimodal + checks.funnel + checks.boundary + checks.heavy_tails
+    findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
+                 for note in checks.undecided]
+    findings += coords.findings
+    findings += short_chain_findings(proof.tuned_row, proof.steps)
+    findings += pilot_findings(pilot.converged, pilot_evaluations)
+    findings += failed_evaluation_findings(proof.runs)
+    findings += timeout_findings(posterior.counted.timeouts, posterior.time_limit)
+    return findings

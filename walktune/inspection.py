@@ -22,7 +22,7 @@ from .analysis import Structure, analyse
 from .diagnostics import Summary, summary
 from .errors import WalktuneError
 from .findings import Finding, conditioning_findings, convergence_findings, correlation_findings
-from .tune import CAUTION, DEFAULT_TARGET_ESS, SCHEMA
+from .constants import ADVICE_SCHEMA as SCHEMA, CAUTION, DEFAULT_TARGET_ESS
 
 #: A chain whose state changes in less than this share of steps is called stuck (common practice).
 STUCK_MOVE_RATE = 0.01
@@ -209,6 +209,81 @@ def _verdicts(names, s: Summary, chain_moves, needed_ess) -> list:
     return out
 
 
+def _inspection_findings(structure, s: Summary, names: list, chain_moves: np.ndarray, rate: float) -> list:
+    """Structure, convergence, stuck chains, acceptance far from optimal, and too-short chains."""
+    m, d = chain_moves.shape[0], len(names)
+    findings: list = []
+    findings += correlation_findings(structure, names)
+    findings += conditioning_findings(structure, names)
+    findings += convergence_findings(s.rhat, names, "inspected")
+    stuck = np.flatnonzero(chain_moves < STUCK_MOVE_RATE)
+    if stuck.size:
+        findings.append(
+            Finding(
+                "stuck-chain", "critical", [],
+                f"chain(s) {', '.join(map(str, stuck))} change state in under {STUCK_MOVE_RATE:.0%} of steps: "
+                "their proposal is far too large, or they sit in a region they cannot leave.",
+                {"chain_move_rate": chain_moves.tolist()},
+            )
+        )
+    if stuck.size < m and (rate < 0.1 or rate > 0.7):
+        findings.append(
+            Finding(
+                "poor-acceptance", "warn", [],
+                f"the state changes in {rate:.1%} of steps (for random-walk Metropolis, the acceptance rate); "
+                f"about {theory.target_acceptance(d):.2f} is best for {d} parameters.",
+                {"acceptance": rate},
+            )
+        )
+    if np.any(s.bulk_too_short):
+        findings.append(
+            Finding(
+                "short-chains", "warn", [names[i] for i in np.flatnonzero(s.bulk_too_short)],
+                "these parameters have fewer than 50 autocorrelation times per chain: their ESS is rough.",
+                {},
+            )
+        )
+    return findings
+
+
+def _chosen_draws(draws, names, params, warmup: int, thin: int) -> tuple[np.ndarray, list]:
+    """The draws as (chains, draws, params), restricted to ``params``, after warm-up and thinning; and their names."""
+    array = draws if isinstance(draws, np.ndarray) else np.asarray(draws)
+    if array.dtype.kind not in "fiu":
+        try:
+            array = np.asarray(array, dtype=float)
+        except (TypeError, ValueError):
+            raise WalktuneError("draws must be numbers shaped (chains, draws, params) or (draws, params).") from None
+    if array.ndim == 2:
+        array = array[None]
+    if array.ndim != 3:
+        raise WalktuneError(f"draws must be shaped (chains, draws, params) or (draws, params); got {array.ndim} dimensions.")
+    m, n, d = array.shape
+    names = [f"theta[{i}]" for i in range(d)] if names is None else [str(x) for x in names]
+    if len(names) != d:
+        raise WalktuneError(f"{len(names)} names for {d} parameters; give one name per parameter.")
+    if params is not None:
+        index = []
+        for p in params:
+            if isinstance(p, (int, np.integer)) and 0 <= p < d:
+                index.append(int(p))
+            elif p in names:
+                index.append(names.index(p))
+            else:
+                raise WalktuneError(f"parameter {p!r} is not in the draws; known: {', '.join(names)}.")
+        array = array[:, :, index]
+        names = [names[i] for i in index]
+    if warmup < 0 or thin < 1:
+        raise WalktuneError("warm-up must be >= 0 and thin >= 1.")
+    if warmup >= n:
+        raise WalktuneError(f"warm-up of {warmup} draws leaves nothing of chains with {n} draws.")
+    array = array[:, warmup::thin]
+    n = array.shape[1]
+    if n < 4:
+        raise WalktuneError(f"each chain needs at least 4 draws after warm-up and thinning; got {n}.")
+    return array, names
+
+
 def inspect(
     draws,
     names=None,
@@ -245,40 +320,8 @@ def inspect(
     sources, chain_column : optional
         Where the draws came from, recorded in advice.json so a report can read them again.
     """
-    array = draws if isinstance(draws, np.ndarray) else np.asarray(draws)
-    if array.dtype.kind not in "fiu":
-        try:
-            array = np.asarray(array, dtype=float)
-        except (TypeError, ValueError):
-            raise WalktuneError("draws must be numbers shaped (chains, draws, params) or (draws, params).") from None
-    if array.ndim == 2:
-        array = array[None]
-    if array.ndim != 3:
-        raise WalktuneError(f"draws must be shaped (chains, draws, params) or (draws, params); got {array.ndim} dimensions.")
+    array, names = _chosen_draws(draws, names, params, warmup, thin)
     m, n, d = array.shape
-    names = [f"theta[{i}]" for i in range(d)] if names is None else [str(x) for x in names]
-    if len(names) != d:
-        raise WalktuneError(f"{len(names)} names for {d} parameters; give one name per parameter.")
-    if params is not None:
-        index = []
-        for p in params:
-            if isinstance(p, (int, np.integer)) and 0 <= p < d:
-                index.append(int(p))
-            elif p in names:
-                index.append(names.index(p))
-            else:
-                raise WalktuneError(f"parameter {p!r} is not in the draws; known: {', '.join(names)}.")
-        array = array[:, :, index]
-        names = [names[i] for i in index]
-        d = len(index)
-    if warmup < 0 or thin < 1:
-        raise WalktuneError("warm-up must be >= 0 and thin >= 1.")
-    if warmup >= n:
-        raise WalktuneError(f"warm-up of {warmup} draws leaves nothing of chains with {n} draws.")
-    array = array[:, warmup::thin]
-    n = array.shape[1]
-    if n < 4:
-        raise WalktuneError(f"each chain needs at least 4 draws after warm-up and thinning; got {n}.")
     current = None
     if proposal is not None:
         proposal = np.asarray(proposal, dtype=float)
@@ -302,38 +345,8 @@ def inspect(
     more_observed = np.maximum(0.0, needed / per_draw - total)
     advised_total = needed / theory.optimal_efficiency(d)
 
-    findings: list = []
-    findings += correlation_findings(structure, names)
-    findings += conditioning_findings(structure, names)
-    findings += convergence_findings(s.rhat, names, "inspected")
-    stuck = np.flatnonzero(chain_moves < STUCK_MOVE_RATE)
-    if stuck.size:
-        findings.append(
-            Finding(
-                "stuck-chain", "critical", [],
-                f"chain(s) {', '.join(map(str, stuck))} change state in under {STUCK_MOVE_RATE:.0%} of steps: "
-                "their proposal is far too large, or they sit in a region they cannot leave.",
-                {"chain_move_rate": chain_moves.tolist()},
-            )
-        )
     rate = float(np.mean(chain_moves))
-    if stuck.size < m and (rate < 0.1 or rate > 0.7):
-        findings.append(
-            Finding(
-                "poor-acceptance", "warn", [],
-                f"the state changes in {rate:.1%} of steps (for random-walk Metropolis, the acceptance rate); "
-                f"about {theory.target_acceptance(d):.2f} is best for {d} parameters.",
-                {"acceptance": rate},
-            )
-        )
-    if np.any(s.bulk_too_short):
-        findings.append(
-            Finding(
-                "short-chains", "warn", [names[i] for i in np.flatnonzero(s.bulk_too_short)],
-                "these parameters have fewer than 50 autocorrelation times per chain: their ESS is rough.",
-                {},
-            )
-        )
+    findings = _inspection_findings(structure, s, names, chain_moves, rate)
     return InspectionResult(
         parameter_names=names,
         summary=s,

@@ -1,0 +1,528 @@
+"""The stages of the tuning job, each a function with explicit inputs and a small result.
+
+:func:`walktune.tune` strings them together::
+
+    start   = find_start(posterior, budget, rng, tracker)          # mode, Laplace covariance, other modes, chain starts
+    pilot   = run_main_pilot(posterior, start, budget, seed, tracker)
+    advice  = advise(pilot.covariance, ...)                       # walktune.advice, walktune.analysis
+    coords  = new_coordinates(posterior, pilot, start, budget, seed, tracker, ...)
+    proof   = run_proofs(posterior, pilot, advice, coords, budget, current, seed, tracker)
+    checks  = check_geometry(posterior, proof, start, pilot, budget)
+
+Each stage decides its own evaluation budget from :class:`Budget` (the job's
+total, the pilot's share) and the evaluations already spent
+(``posterior.counted.count``); the formulas are beside the stage.
+
+Every evaluation goes through ``posterior.counted`` (the checkpoint records it),
+every random number comes from the seed a stage is handed, and every figure in
+the comparison comes from fixed-proposal chains (adaptation is for the pilots).
+The ``tracker`` is the job's progress and checkpoint channel: stages report
+progress and their best covariance so far through it, and nothing else.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from . import theory
+from .advice import Advice
+from .diagnostics import Summary, summary
+from .engine import Chains, sample
+from .errors import WalktuneError
+from .findings import Finding
+from .geometry import (
+    boundary_findings,
+    climb,
+    find_regions,
+    funnel_findings_from_curvature,
+    heavy_tail_findings,
+    multimodal_finding,
+    separated,
+    varying_scale_findings,
+    within_chain_iact,
+)
+from .mode import ModeFit, find_mode
+from .pilot import PilotResult, run_pilot
+from .posterior import Posterior, SamplerSpaceEvaluator
+from .reparam import build_reparam, curved_ridge_findings
+
+#: Up to this dimension the funnel detector also probes the log-density's
+#: curvature (2 d (2 d + 1) evaluations).
+MAX_CURVATURE_PROBE_DIM = 20
+
+
+# --------------------------------------------------------------------------- budgets
+
+
+def pilot_budget_default(dim: int) -> int:
+    """Default pilot evaluations: ``20 d^2 + 2000`` (mode search included)."""
+    return 20 * dim * dim + 2000
+
+
+def proof_steps_default(dim: int) -> int:
+    """Steps per chain of each proof run: enough for about 65 IACTs (IACT ~ 3 d) in each half-chain."""
+    return max(2000, 400 * dim)
+
+
+def minimum_budget(dim: int, chains: int) -> int:
+    """Smallest budget that can do anything useful: the mode, two pilot stages, three short proofs."""
+    return (2 * dim * dim + 50 * dim + 200) + 2 * chains * max(50, 10 * dim) + 3 * chains * 200
+
+
+def _minimum_pilot(dim: int, chains: int) -> int:
+    """Two pilot stages of at least 50 (or 10 d) steps per chain."""
+    return chains * 2 * max(50, 10 * dim)
+
+
+@dataclass(frozen=True)
+class Budget:
+    """The job's evaluation budget: the cap on the whole job (None: defaults) and the pilots' share."""
+
+    total: int | None
+    pilot: int
+    chains: int
+    dim: int
+
+    @classmethod
+    def plan(cls, total: int | None, dim: int, chains: int) -> "Budget":
+        if total is None:
+            return cls(None, pilot_budget_default(dim), chains, dim)
+        return cls(total, max(int(0.4 * total), minimum_budget(dim, chains) - 3 * chains * 200), chains, dim)
+
+
+# --------------------------------------------------------------------------- mode and starts
+
+
+@dataclass(frozen=True)
+class StartingPoints:
+    """The mode, the covariance the pilot starts from, and the chains' starting states.
+
+    Attributes
+    ----------
+    fit : ModeFit
+    initial_covariance : ndarray of shape (d, d)
+        Laplace covariance at the mode, or a guess from the bounds and the start.
+    centres : list of ndarray of shape (d,)
+        The mode and any separate modes found by the extra climbs.
+    states, values : ndarray of shape (chains, d) and (chains,)
+        Overdispersed starting states and their log-densities.
+    """
+
+    fit: ModeFit
+    initial_covariance: np.ndarray
+    centres: list
+    states: np.ndarray
+    values: np.ndarray
+
+
+def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> np.ndarray:
+    if fit.laplace_covariance is not None:
+        return fit.laplace_covariance
+    width = bounds[:, 1] - bounds[:, 0]
+    guess = np.where(np.isfinite(width), width / 6.0, 0.1 * np.maximum(np.abs(start), 1.0))
+    return np.diag(guess**2)
+
+
+def _overdispersed_starts(counted, centres, cov, chains: int, rng):
+    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite.
+
+    Chain ``c`` starts around ``centres[c % len(centres)]``, so that chains
+    begin in every separate mode the optimizer found. Returns the points
+    (chains, d) and their log-densities (chains,).
+    """
+    chol = np.linalg.cholesky(cov)
+    points = np.empty((chains, centres[0].shape[0]))
+    values = np.empty(chains)
+    for c in range(chains):
+        centre = centres[c % len(centres)]
+        z = rng.standard_normal(centre.shape[0])
+        for spread in (2.0, 1.0, 0.5, 0.25, 0.1, 0.0):
+            candidate = centre + spread * (chol @ z)
+            value = counted.scalar(candidate)
+            if np.isfinite(value):
+                break
+        points[c], values[c] = candidate, value
+    return points, values
+
+
+def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
+    """Climb from ``count`` points spread widely around the start; return modes separate from ``fit.mode``.
+
+    The points are drawn around the start with, per parameter, the largest of
+    5 Laplace sds, the distance from the start to the mode, and half the
+    mode's magnitude (a tight posterior far from zero may have a mirror image),
+    clipped inside the bounds. A climb's end point counts as another mode only
+    when the log-density dips between it and every mode already known
+    (:func:`walktune.geometry.separated`).
+    """
+    dim = start.shape[0]
+    sd = np.sqrt(np.diag(cov))
+    spread = np.maximum.reduce([5.0 * sd, np.abs(fit.mode - start), 0.5 * np.abs(fit.mode)])
+    known = [(fit.mode, fit.log_density)]
+    low = np.where(np.isfinite(bounds[:, 0]), bounds[:, 0] + 1e-3 * sd, -np.inf)
+    high = np.where(np.isfinite(bounds[:, 1]), bounds[:, 1] - 1e-3 * sd, np.inf)
+    for _ in range(count):
+        point = np.clip(start + spread * rng.standard_normal(dim), low, high)
+        if not np.isfinite(counted.scalar(point)):
+            continue
+        end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
+        if not (converged and np.isfinite(value)):
+            continue
+        if all(separated(counted.scalar, end, mode, value, lp) for mode, lp in known):
+            known.append((end, value))
+    return [mode for mode, _ in known[1:]]
+
+
+def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, tracker) -> StartingPoints:
+    """Mode search (a third of the pilot's budget, less the Hessian's), then 4 climbs for other modes and the starts."""
+    bounds, start, dim = posterior.bounds, posterior.start, posterior.dim
+    counted = posterior.counted
+    tracker("mode", 0, 1)
+    scales = np.where(np.isfinite(bounds).all(axis=1), (bounds[:, 1] - bounds[:, 0]) / 10, 1.0)
+    scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
+    mode_budget = max(20 * (dim + 1), budget.pilot // 3 - 2 * dim * dim)
+    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget)
+    tracker("mode", 1, 1)
+    initial = _initial_covariance(fit, bounds, start)
+    tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
+    other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
+    centres = [fit.mode] + other_modes
+    states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng)
+    return StartingPoints(fit, initial, centres, states, values)
+
+
+# --------------------------------------------------------------------------- pilot
+
+
+def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, seed, tracker) -> PilotResult:
+    """The adaptive pilot in the user's coordinates: what the pilot's budget leaves after the mode search."""
+    counted = posterior.counted
+    pilot = run_pilot(
+        None, start.states, start.initial_covariance,
+        max(budget.pilot - counted.count, _minimum_pilot(posterior.dim, budget.chains)),
+        seed, evaluator=counted, progress=lambda done, total: tracker("pilot", done, total),
+        state_log_density=start.values, within_chains=len(start.centres) > 1,
+        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
+    )
+    tracker("pilot", pilot.evaluations, pilot.evaluations)
+    return pilot
+
+
+# --------------------------------------------------------------------------- new coordinates
+
+
+@dataclass(frozen=True)
+class PlannedRun:
+    """A fixed-proposal proof run to make: its name, description and proposal covariance.
+
+    ``predicted`` is the predicted slow-down against the tuned covariance (NaN
+    when there is none); ``independent`` lists coordinates proposed
+    independently (the reduced-basis run), or None.
+    """
+
+    name: str
+    description: str
+    covariance: np.ndarray
+    predicted: float = float("nan")
+    independent: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class NewCoordinates:
+    """The map to sampling coordinates, what it showed, and the runs it proposes.
+
+    Attributes
+    ----------
+    reparam : walktune.reparam.Reparam or None
+    findings : list of Finding
+        Curved ridges, or why no map could be built.
+    prior_covariance : ndarray of shape (d, d) or None
+        Of a prior given apart.
+    plan : list of PlannedRun
+        Proof runs in the new coordinates (empty when they would change nothing).
+    states : ndarray of shape (chains, d) or None
+        The chains' states in the refitted new coordinates.
+    """
+
+    reparam: object
+    findings: list
+    prior_covariance: np.ndarray | None
+    plan: list = field(default_factory=list)
+    states: np.ndarray | None = None
+
+
+def _pooled_draws(pilot: PilotResult, dim: int) -> np.ndarray:
+    return pilot.draws.reshape(-1, dim) if pilot.draws is not None else pilot.states
+
+
+def new_coordinates(posterior: Posterior, pilot: PilotResult, start: StartingPoints, budget: Budget, seed,
+                    tracker, transforms, forbid_transforms) -> NewCoordinates:
+    """Transforms, the whitened/rotated basis and the informed split; a short pilot in them when they change anything.
+
+    The pilot in new coordinates gets half the pilot's budget, and with a cap
+    on the job at most a fifth of what is left.
+    """
+    dim, names, counted, prior_terms = posterior.dim, posterior.names, posterior.counted, posterior.prior_terms
+    covariance = pilot.covariance
+    findings, prior_cov, reparam = [], None, None
+    pooled = _pooled_draws(pilot, dim)
+    n_independent = None
+    try:
+        prior_cov = prior_terms.covariance(start.fit.mode, np.sqrt(np.diag(covariance))) if prior_terms else None
+        n_independent = pooled.shape[0] / max(1.0, within_chain_iact(pilot.draws)) if pilot.draws is not None else None
+        reparam = build_reparam(pooled, names, posterior.bounds, prior_covariance=prior_cov, force=transforms,
+                                forbid=forbid_transforms, covariance=covariance, n_independent=n_independent)
+    except (WalktuneError, np.linalg.LinAlgError, ValueError) as error:
+        findings.append(Finding("undecided", "info", [], f"no reparameterisation: {error}", {}))
+    if reparam is None:
+        return NewCoordinates(None, findings, prior_cov)
+    findings += curved_ridge_findings(pooled, reparam, names)
+    transformed = any(t.kind != "identity" for t in reparam.transforms)
+    reduced = prior_terms is not None and 0 < reparam.informed < dim
+    if not (transformed or reduced):
+        return NewCoordinates(reparam, findings, prior_cov)
+    if budget.total is None:
+        z_budget = budget.pilot // 2
+    else:
+        z_budget = min(budget.pilot // 2, max(0, (budget.total - counted.count) // 5))
+    z_pilot = run_pilot(
+        None, reparam.to_sampler(pilot.states), np.eye(dim), max(z_budget, _minimum_pilot(dim, budget.chains)),
+        seed.spawn(1)[0], evaluator=SamplerSpaceEvaluator(counted, reparam),
+        progress=lambda done, total: tracker("pilot in new coordinates", done, total),
+        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=False),
+    )
+    tracker("pilot in new coordinates", z_pilot.evaluations, z_pilot.evaluations)
+    old_map = reparam
+    reparam = reparam.refit(z_pilot.draws.reshape(-1, dim).mean(axis=0), z_pilot.covariance, prior_cov, n_independent)
+    states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
+    plan = []
+    if transformed:
+        plan.append(PlannedRun("transformed-rotated", "random walk in the transformed, whitened coordinates",
+                               (z_pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * np.eye(dim)))
+    if reduced:
+        r = reparam.informed
+        diag = np.r_[np.full(r, theory.optimal_scale(r) ** 2), np.ones(dim - r)]
+        plan.append(PlannedRun("reduced-basis", f"random walk in the {r} informed directions, independence proposals "
+                               "from the fitted Gaussian in the others", np.diag(diag), independent=np.arange(r, dim)))
+    return NewCoordinates(reparam, findings, prior_cov, plan, states)
+
+
+# --------------------------------------------------------------------------- proof
+
+
+@dataclass(frozen=True)
+class ComparisonRow:
+    """One fixed-proposal run of the proof.
+
+    ``ess_per_1000`` is the smallest bulk ESS over parameters per 1000
+    evaluations; ``speedup`` its ratio to the baseline's. When the baseline
+    chain was too short to estimate its ESS, the speed-up is a lower bound.
+    """
+
+    proposal: str
+    description: str
+    acceptance: float
+    ess_per_1000: float
+    median_ess_per_1000: float
+    evaluations: int
+    speedup: float
+    speedup_is_lower_bound: bool
+    ess_reliable: bool
+    predicted_slowdown: float
+    max_rhat: float
+    iact_max: float
+
+    def to_dict(self) -> dict:
+        return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in self.__dict__.items()}
+
+
+def _row_from_run(name, description, chains, stats, predicted, baseline=None):
+    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.Summary)."""
+    ess = stats.bulk_ess
+    evaluations = chains.evaluations
+    ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
+    if not np.isfinite(ess_min):
+        # A chain that never moved: its ESS is at most the number of distinct states.
+        ess_min = float(np.sum(chains.accepted) + chains.n_chains)
+    per_1000 = 1000 * ess_min / evaluations
+    median = 1000 * float(np.nanmedian(np.where(np.isfinite(ess), ess, ess_min))) / evaluations
+    reliable = not np.any(stats.bulk_too_short)
+    row = dict(
+        proposal=name,
+        description=description,
+        acceptance=chains.acceptance_rate,
+        ess_per_1000=per_1000,
+        median_ess_per_1000=median,
+        evaluations=evaluations,
+        ess_reliable=reliable,
+        predicted_slowdown=predicted,
+        max_rhat=float(np.nanmax(stats.rhat)),
+        iact_max=float(np.nanmax(stats.iact)),
+    )
+    if baseline is None:
+        row.update(speedup=1.0, speedup_is_lower_bound=False)
+    else:
+        row.update(
+            speedup=per_1000 / baseline.ess_per_1000 if baseline.ess_per_1000 > 0 else float("inf"),
+            # An unreliable baseline ESS is an overestimate (its IACT is underestimated),
+            # so the true speed-up is at least the printed one.
+            # (This run's own ESS must be trustworthy for that to hold.)
+            speedup_is_lower_bound=(not baseline.ess_reliable) and reliable,
+        )
+    return ComparisonRow(**row)
+
+
+@dataclass(frozen=True)
+class Proof:
+    """The fixed-proposal runs, their diagnostics (computed once) and their comparison rows.
+
+    Attributes
+    ----------
+    rows : list of ComparisonRow
+        The baseline first.
+    runs : dict of str to Chains
+        Draws in the user's parameters, by proposal name.
+    stats : dict of str to walktune.diagnostics.Summary
+    steps : int
+        Steps per chain of every run.
+    """
+
+    rows: list
+    runs: dict
+    stats: dict
+    steps: int
+
+    @property
+    def tuned(self) -> Chains:
+        return self.runs["tuned-covariance"]
+
+    @property
+    def tuned_stats(self) -> Summary:
+        return self.stats["tuned-covariance"]
+
+    @property
+    def tuned_row(self) -> ComparisonRow:
+        return next(row for row in self.rows if row.proposal == "tuned-covariance")
+
+
+def detection_reserve(dim: int, total: int | None) -> int:
+    """Evaluations kept back from the proof for the mode and funnel checks after it."""
+    reserve = 5 * 60 * (dim + 1) + 200 + (2 * dim * (2 * dim + 1) if dim <= MAX_CURVATURE_PROBE_DIM else 0)
+    return reserve if total is None else min(reserve, total // 10)
+
+
+def _user_space_plan(advice: Advice, current: np.ndarray | None, dim: int) -> list:
+    """The baseline (the user's proposal, or one tuned step size), per-parameter steps, the tuned covariance."""
+    slowdowns = advice.slowdowns
+    if current is not None:
+        baseline = PlannedRun("current", "the proposal you use now", current, slowdowns["current"]["slowest"])
+    else:
+        single = advice.single_step
+        baseline = PlannedRun("single-step", f"one tuned step size {single:.3g} for all parameters",
+                              single**2 * np.eye(dim), slowdowns["single_step"]["slowest"])
+    return [
+        baseline,
+        PlannedRun("step-sizes", "tuned per-parameter step sizes", np.diag(advice.step_sizes**2),
+                   slowdowns["step_sizes"]["slowest"]),
+        PlannedRun("tuned-covariance", "the tuned full proposal covariance", advice.proposal_covariance, 1.0),
+    ]
+
+
+def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords: NewCoordinates, budget: Budget,
+               current: np.ndarray | None, seed, tracker) -> Proof:
+    """Equal budgets, fixed proposals, from the pilot's end states.
+
+    Steps per chain: the default, or with a cap on the job what the mode search
+    and pilots left (less the detection reserve), shared equally by the runs.
+    """
+    dim, counted = posterior.dim, posterior.counted
+    steps = proof_steps_default(dim)
+    if budget.total is not None:
+        left = budget.total - counted.count - detection_reserve(dim, budget.total)
+        steps = max(50, left // ((3 + len(coords.plan)) * budget.chains))
+    plan = _user_space_plan(advice, current, dim)
+    rows, runs, stats = [], {}, {}
+    tracker.proof_rows(rows)
+    for run_plan, child in zip(plan, seed.spawn(len(plan))):
+        name = run_plan.name
+        run = sample(
+            None, pilot.states, run_plan.covariance, steps, seed=child, evaluator=counted,
+            start_log_density=pilot.state_log_density,
+            progress=lambda done, total, name=name: tracker(name, done, total),
+        )
+        runs[name], stats[name] = run, summary(run.draws)
+        rows.append(_row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
+                                  rows[0] if rows else None))
+    if coords.plan:
+        z_evaluator = SamplerSpaceEvaluator(counted, coords.reparam)
+        for run_plan, child in zip(coords.plan, seed.spawn(len(coords.plan))):
+            name = run_plan.name
+            run = sample(None, coords.states, run_plan.covariance, steps, seed=child, evaluator=z_evaluator,
+                         independent=run_plan.independent,
+                         progress=lambda done, total, name=name: tracker(name, done, total))
+            # Measured in the user's own parameters.
+            run = replace(run, draws=coords.reparam.from_sampler(run.draws))
+            runs[name], stats[name] = run, summary(run.draws)
+            rows.append(_row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
+    return Proof(rows, runs, stats, steps)
+
+
+# --------------------------------------------------------------------------- geometry checks
+
+
+@dataclass(frozen=True)
+class GeometryChecks:
+    """What the hard-geometry detectors found in the proof draws (and, for funnels, the model's curvature).
+
+    Attributes
+    ----------
+    regions : list of walktune.geometry.Region
+        Separated regions (one when there is no second).
+    multimodal, funnel, boundary, heavy_tails : list of Finding
+    undecided : list of str
+        Checks the draws were too few to settle.
+    """
+
+    regions: list
+    multimodal: list
+    funnel: list
+    boundary: list
+    heavy_tails: list
+    undecided: list
+
+
+def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pilot: PilotResult,
+                   budget: Budget) -> GeometryChecks:
+    """Separated modes, funnels, pile-up at bounds and heavy tails, within what the budget leaves.
+
+    The detectors look at every proof run: all are fixed-proposal continuations
+    of the pilot's chains. The curvature probe for funnels runs only when the
+    draws showed none, d <= MAX_CURVATURE_PROBE_DIM and the budget has room.
+    """
+    counted, names, dim = posterior.counted, posterior.names, posterior.dim
+    detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
+    proof_draws = np.concatenate([run.draws for run in proof.runs.values()], axis=0)
+    tau_within = within_chain_iact(proof_draws)
+    regions, undecided_modes = find_regions(
+        counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
+        chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
+    )
+    multimodal = multimodal_finding(regions, names)
+    funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
+    probe_cost = 2 * dim * (2 * dim + 1) + 2 * dim + 1
+    if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget.total is None or budget.total - counted.count >= probe_cost):
+        # The model itself can show a funnel the draws were too few to show.
+        posterior_mean = proof.tuned.draws.reshape(-1, dim).mean(axis=0)
+        funnel = funnel_findings_from_curvature(counted.scalar, posterior_mean, np.sqrt(np.diag(pilot.covariance)), names)
+        if funnel:
+            undecided_scale = None
+    return GeometryChecks(
+        regions=regions,
+        multimodal=[multimodal] if multimodal is not None else [],
+        funnel=list(funnel),
+        boundary=boundary_findings(proof.tuned.draws, posterior.bounds, names),
+        heavy_tails=heavy_tail_findings(proof.tuned.draws, proof.tuned_stats.bulk_ess, names),
+        undecided=[note for note in (undecided_modes, undecided_scale) if note],
+    )
