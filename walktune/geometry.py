@@ -35,25 +35,16 @@ from sklearn.mixture import GaussianMixture
 
 from .diagnostics import iact
 from .findings import Finding
+from .funnels import (  # noqa: F401  (the funnel detectors live in walktune.funnels)
+    MIN_DRAWS_FOR_SPREAD,
+    curvature_probe_cost,
+    funnel_findings_from_curvature,
+    local_spread_ratio,
+    varying_scale_findings,
+)
 
 #: Fewer (roughly independent) draws than this and a detector declines to decide.
 MIN_DRAWS_TO_DECIDE = 100
-
-#: The funnel detector compares spreads that differ 4-fold or more, and only
-#: where the difference is also significant (see :func:`log_spread_ratio_se`);
-#: below 50 independent draws (10 per fifth) it declines to decide.
-MIN_DRAWS_FOR_SPREAD = 50
-
-#: Family-wise false-alarm rate the funnel detector allows on a Gaussian (all
-#: candidate parameters together); a calibration target of this project, checked
-#: by simulation in tests/test_funnels.py.
-FUNNEL_FALSE_ALARM = 0.005
-
-#: Asymptotic variance of log(MAD) per draw for a Gaussian: ``1 / (16 phi(q)^2 q^2)``
-#: with ``q = Phi^-1(0.75)`` (the sample median's variance ``p (1 - p) / (n f^2)``
-#: applied to ``|X|``, whose density at its median q is ``2 phi(q)``); about 1.36.
-_LOG_MAD_VARIANCE = 1.0 / (16.0 * stats.norm.pdf(stats.norm.ppf(0.75)) ** 2 * stats.norm.ppf(0.75) ** 2)
-
 
 #: A log-density dip of this many nats between two modes separates them (common practice:
 #: e^-3 ~ 0.05 of the lower peak's density).
@@ -243,176 +234,6 @@ def multimodal_finding(regions: list, names: list) -> Finding | None:
             ]
         },
     )
-
-
-def local_spread_ratio(draws: np.ndarray, index: int, bins: int = 5) -> np.ndarray:
-    """How much the conditional spread of each parameter changes along parameter ``index``.
-
-    ``draws`` is (n, d). Every other parameter is regressed linearly on
-    parameter ``index`` (which removes the trend of a correlated Gaussian,
-    whose conditional spread is constant); the robust sd (1.4826 x median
-    absolute deviation) of the residuals is compared between the top and the
-    bottom ``1/bins`` of the draws sorted by parameter ``index``. Returns the
-    ratio top / bottom per parameter (1 for ``index`` itself).
-    """
-    n, d = draws.shape
-    v = draws[:, index]
-    centred = draws - draws.mean(axis=0)
-    vc = centred[:, index]
-    slope = vc @ centred / max(vc @ vc, np.finfo(float).tiny)  # least squares on v, closed form
-    residual = centred - np.outer(vc, slope)
-    order = np.argsort(v, kind="stable")
-    size = n // bins
-
-    def robust_sd(rows):
-        part = residual[rows]
-        return 1.4826 * np.median(np.abs(part - np.median(part, axis=0)), axis=0)
-
-    low, high = robust_sd(order[:size]), robust_sd(order[-size:])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(low > 0, high / low, np.inf)
-    ratio[index] = 1.0
-    return ratio
-
-
-def log_spread_ratio_se(n_per_fifth: float) -> float:
-    """Standard error of ``log(top / bottom)`` robust sds on a Gaussian, each from ``n_per_fifth`` independent draws.
-
-    ``sqrt(2 v / (n - 1.5))`` with ``v`` the asymptotic variance of log(MAD)
-    per draw (:data:`_LOG_MAD_VARIANCE`, about 1.36); the ``- 1.5`` is a
-    small-sample correction calibrated here by simulation (20,000 Gaussian
-    samples each of n = 10, 20, 50 and 200 draws: variance of log(MAD) times n
-    was 1.56, 1.46, 1.41, 1.36). About 0.56 with 10 draws per fifth.
-    """
-    return float(np.sqrt(2.0 * _LOG_MAD_VARIANCE / max(n_per_fifth - 1.5, 1.0)))
-
-
-def significance_level(d: int, n_per_fifth: float, family: float = FUNNEL_FALSE_ALARM) -> float:
-    """How many standard errors a log spread ratio must exceed so that a Gaussian raises a finding with probability <= ``family``.
-
-    A finding needs, for one of the ``d`` candidate parameters, at least
-    ``k = ceil((d - 1) / 2)`` of the other ``d - 1`` ratios significant. By
-    Markov's inequality on the count of significant ratios (which holds
-    however correlated they are), P(count >= k) <= (d - 1) p / k <= 2 p, so
-    a per-ratio level ``p = family / (2 d)`` keeps the chance over all ``d``
-    candidates below ``family`` (for d = 2, one ratio per candidate: p = family / d).
-
-    The log ratio of two MADs from few draws has heavier tails than a normal:
-    its two-sided quantiles at p = 0.0025, 0.001 and 0.0002 (400,000 simulated
-    pairs per size, calibrated here) lie inside those of a Student-t with
-    ``2 n`` degrees of freedom for n = 10 to 100 draws per fifth, so the
-    critical value is taken from that t.
-    """
-    m = max(d - 1, 1)
-    k = int(np.ceil(m / 2))
-    p = family * k / (m * d)
-    return float(stats.t.isf(p / 2, df=max(2.0 * n_per_fifth, 1.0)))
-
-
-def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold: float = 4.0):
-    """``varying-scale`` findings from (chains, n, d) draws; and a note when undecidable.
-
-    ``tau`` is a typical within-chain IACT; the draws must hold at least
-    :data:`MIN_DRAWS_FOR_SPREAD` of them. A parameter counts as affected
-    along a candidate when its spread ratio is at least ``threshold``-fold
-    and its log is significant at :func:`significance_level` standard errors
-    (:func:`log_spread_ratio_se`, from the independent draws per fifth).
-    """
-    m, n, d = draws.shape
-    if d < 2:
-        return [], None
-    flat = draws.reshape(-1, d)
-    n_independent = flat.shape[0] / max(tau, 1.0)
-    flat = flat[:: max(1, flat.shape[0] // 20_000)]  # 20,000 rows are plenty for five bins
-    if n_independent < MIN_DRAWS_FOR_SPREAD:
-        return [], f"only about {n_independent:.0f} roughly independent draws; too few to measure how local spread changes"
-    needed = max(np.log(threshold), significance_level(d, n_independent / 5) * log_spread_ratio_se(n_independent / 5))
-    strongest = {}
-    for j in range(d):
-        with np.errstate(divide="ignore"):
-            size = np.abs(np.log(local_spread_ratio(flat, j)))
-        size[j] = 0.0
-        affected = [i for i in range(d) if size[i] >= needed]
-        # A funnel parameter changes the spread of most of the others, not of one partner.
-        if affected and len(affected) >= (d - 1) / 2:
-            strongest[j] = (float(np.exp(np.median(size[affected]))), affected)
-    return _varying_scale(strongest, names, "the spread of the draws"), None
-
-
-def curvature_spread_ratio(log_density, centre: np.ndarray, sd: np.ndarray, index: int, reach: float = 2.0) -> np.ndarray:
-    """Local spread of every parameter at ``centre -/+ reach sd`` along parameter ``index``, as a ratio.
-
-
-    The local spread of parameter i at a point is ``(-d^2 log p / d theta_i^2)^{-1/2}``
-    (central differences, step 1e-3 sd_i). Returns, per parameter, the ratio
-    of the local spread at the upper point to that at the lower one; NaN where
-    the log-density is not concave in that parameter at either point, and 1 for
-    ``index`` itself. For a Gaussian every ratio is exactly 1; in Neal's funnel
-    the x's ratio is ``exp(reach sd_v)``.
-    """
-    low, high = centre.copy(), centre.copy()
-    low[index] -= reach * sd[index]
-    high[index] += reach * sd[index]
-    ratio = _local_sd(log_density, high, sd) / _local_sd(log_density, low, sd)
-    ratio[index] = 1.0
-    return ratio
-
-
-def _local_sd(log_density, point: np.ndarray, sd: np.ndarray) -> np.ndarray:
-    """``(-d^2 log p / d theta_i^2)^{-1/2}`` per parameter by central differences; NaN where not concave."""
-    d = point.shape[0]
-    f0 = log_density(point)
-    out = np.full(d, np.nan)
-    for i in range(d):
-        h = 1e-3 * sd[i]
-        step = np.zeros(d)
-        step[i] = h
-        second = (log_density(point + step) - 2 * f0 + log_density(point - step)) / h**2
-        if np.isfinite(second) and second < 0:
-            out[i] = 1.0 / np.sqrt(-second)
-    return out
-
-
-def funnel_findings_from_curvature(log_density, centre, sd, names, threshold: float = 4.0) -> list:
-    """``varying-scale`` from how the local curvature of the log-density changes along each parameter.
-
-    Each parameter is probed 2 spreads either side of ``centre``, the spread
-    being the larger of ``sd`` (from the draws) and the local spread from the
-    curvature at ``centre``: chains stuck in a funnel's neck have a small sd
-    that would hide the funnel.
-    """
-    d = centre.shape[0]
-    if d < 2:
-        return []
-    sd = np.maximum(sd, np.nan_to_num(_local_sd(log_density, centre, sd), nan=0.0))
-    strongest = {}
-    for j in range(d):
-        ratio = curvature_spread_ratio(log_density, centre, sd, j)
-        factor = np.where(ratio >= 1, ratio, 1.0 / ratio)
-        factor[j] = 1.0
-        affected = [i for i in range(d) if np.isfinite(factor[i]) and factor[i] >= threshold]
-        if affected and len(affected) >= (d - 1) / 2:
-            strongest[j] = (float(np.median(factor[affected])), affected)
-    return _varying_scale(strongest, names, "the curvature of the log-density")
-
-
-def _varying_scale(strongest: dict, names: list, evidence: str) -> list:
-    out = []
-    for j, (factor, affected) in sorted(strongest.items(), key=lambda kv: -kv[1][0])[:1]:
-        out.append(
-            Finding(
-                "varying-scale",
-                "critical" if factor >= 10 else "warn",
-                [names[j]] + [names[i] for i in affected],
-                f"the spread of {', '.join(names[i] for i in affected[:5])}{' ...' if len(affected) > 5 else ''} changes "
-                f"about {factor:.0f}-fold along {names[j]} (a funnel; from {evidence}): no single step size fits both "
-                f"ends. If {names[j]} is a group-level scale, use the non-centred parameterisation (Papaspiliopoulos, "
-                f"Roberts and Sköld 2007): sample standardised effects z and set effect = mean + exp({names[j]}) * z "
-                "(or scale * z).",
-                {"parameter": names[j], "spread_factor": factor, "affected": [names[i] for i in affected]},
-            )
-        )
-    return out
 
 
 def boundary_findings(draws: np.ndarray, bounds: np.ndarray, names: list) -> list:

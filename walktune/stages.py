@@ -35,6 +35,7 @@ from .findings import Finding
 from .geometry import (
     boundary_findings,
     climb,
+    curvature_probe_cost,
     find_regions,
     funnel_findings_from_curvature,
     heavy_tail_findings,
@@ -510,13 +511,14 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
     )
     multimodal = multimodal_finding(regions, names)
-    funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
-    probe_cost = 2 * dim * (2 * dim + 1) + 2 * dim + 1
+    tau_median = within_chain_iact(proof_draws, np.median)
+    funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds)
+    probe_cost = curvature_probe_cost(dim)
     if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget.total is None or budget.total - counted.count >= probe_cost):
-        # The model itself can show a funnel the draws were too few to show.
-        posterior_mean = proof.tuned.draws.reshape(-1, dim).mean(axis=0)
-        funnel = funnel_findings_from_curvature(counted.scalar, posterior_mean, np.sqrt(np.diag(pilot.covariance)), names)
-        if funnel:
+        # The model itself can show a funnel the draws do not show plainly (chains kept out of its neck);
+        # it is reported as more than a hypothesis only where the draws confirm it.
+        funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds)
+        if funnel and funnel[0].severity != "info":
             undecided_scale = None
     return GeometryChecks(
         regions=regions,
