@@ -48,6 +48,11 @@ MIN_DRAWS_FOR_SPREAD = 50
 #: by simulation in tests/test_funnels.py.
 FUNNEL_FALSE_ALARM = 0.005
 
+#: One-sided level at which the draws confirm a funnel the curvature suggests: the
+#: curvature has already named the candidate and the direction, so this is one
+#: test, not a search (common practice: 5%).
+CONFIRMATION_LEVEL = 0.05
+
 #: Asymptotic variance of log(MAD) per draw for a Gaussian: ``1 / (16 phi(q)^2 q^2)``
 #: with ``q = Phi^-1(0.75)`` (the sample median's variance ``p (1 - p) / (n f^2)``
 #: applied to ``|X|``, whose density at its median q is ``2 phi(q)``); about 1.36.
@@ -118,26 +123,48 @@ def significance_level(d: int, n_per_fifth: float, family: float = FUNNEL_FALSE_
     return float(stats.t.isf(p / 2, df=max(2.0 * n_per_fifth, 1.0)))
 
 
-def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold: float = 4.0, bounds=None):
+def independent_draws(draws: np.ndarray, tau: float, ess=None) -> np.ndarray:
+    """Roughly independent draws behind each parameter's bins, shape (d,).
+
+    ``draws.size / d / tau`` (``tau`` a typical within-chain IACT), capped by
+    each parameter's multi-chain bulk ESS ``ess`` when given: where chains
+    disagree (R-hat far above 1) the fifths of a parameter are filled by
+    different chains, and their spreads compare chains, not regions.
+    """
+    m, n, d = draws.shape
+    pooled = np.full(d, m * n / max(tau, 1.0))
+    if ess is None:
+        return pooled
+    ess = np.asarray(ess, dtype=float)
+    return np.minimum(pooled, np.where(np.isfinite(ess), ess, 0.0))
+
+
+def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold: float = 4.0, bounds=None, ess=None):
     """``varying-scale`` findings from (chains, n, d) draws; and a note when undecidable.
 
-    ``tau`` is a typical within-chain IACT; the draws must hold at least
-    :data:`MIN_DRAWS_FOR_SPREAD` of them. A parameter counts as affected
-    along a candidate when its spread ratio is at least ``threshold``-fold
-    and its log is significant at :func:`significance_level` standard errors
-    (:func:`log_spread_ratio_se`, from the independent draws per fifth).
+    ``tau`` is a typical within-chain IACT and ``ess`` (d,) the multi-chain
+    bulk ESS (optional; see :func:`independent_draws`); a candidate needs at
+    least :data:`MIN_DRAWS_FOR_SPREAD` independent draws. A parameter counts
+    as affected along a candidate when its spread ratio is at least
+    ``threshold``-fold and its log is significant at
+    :func:`significance_level` standard errors (:func:`log_spread_ratio_se`,
+    from the candidate's independent draws per fifth).
     """
     m, n, d = draws.shape
     if d < 2:
         return [], None
     flat = draws.reshape(-1, d)
-    n_independent = flat.shape[0] / max(tau, 1.0)
+    n_independent = independent_draws(draws, tau, ess)
     flat = flat[:: max(1, flat.shape[0] // 20_000)]  # 20,000 rows are plenty for five bins
-    if n_independent < MIN_DRAWS_FOR_SPREAD:
-        return [], f"only about {n_independent:.0f} roughly independent draws; too few to measure how local spread changes"
-    needed = max(np.log(threshold), significance_level(d, n_independent / 5) * log_spread_ratio_se(n_independent / 5))
+    if np.max(n_independent) < MIN_DRAWS_FOR_SPREAD:
+        return [], (f"only about {np.max(n_independent):.0f} roughly independent draws; too few to measure how "
+                    "local spread changes")
     strongest = {}
     for j in range(d):
+        if n_independent[j] < MIN_DRAWS_FOR_SPREAD:
+            continue
+        n_fifth = n_independent[j] / 5
+        needed = max(np.log(threshold), significance_level(d, n_fifth) * log_spread_ratio_se(n_fifth))
         with np.errstate(divide="ignore"):
             size = np.abs(np.log(local_spread_ratio(flat, j)))
         size[j] = 0.0
@@ -201,7 +228,7 @@ def curvature_probe_cost(d: int) -> int:
 
 
 def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, names: list, bounds=None,
-                                   threshold: float = 4.0, reach: float = 2.5) -> list:
+                                   threshold: float = 4.0, reach: float = 2.5, ess=None) -> list:
     """``varying-scale`` suspected from the model's curvature, and whether the draws confirm it.
 
     For each candidate parameter j, the local spread of every other parameter,
@@ -215,7 +242,8 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     ``threshold``-fold is a hypothesis until the draws confirm it: the median
     over the affected parameters of the draws' log spread ratio
     (:func:`local_spread_ratio`) must point the same way, be significant
-    (one-sided, :data:`FUNNEL_FALSE_ALARM`, :func:`log_spread_ratio_se`) and
+    (one-sided, :data:`CONFIRMATION_LEVEL`, :func:`log_spread_ratio_se` from
+    the affected parameters' independent draws) and
     reach half the log ratio the curvature predicts between the medians of
     the draws' bottom and top fifths. Confirmed: warn (critical at 10-fold).
     Not confirmed: info, saying what would settle it.
@@ -225,7 +253,8 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     log_density : callable
         ``log p(theta)`` for theta of shape (d,).
     draws : ndarray of shape (chains, n, d)
-        Fixed-proposal draws; ``tau`` a typical within-chain IACT of them.
+        Fixed-proposal draws; ``tau`` a typical within-chain IACT of them and
+        ``ess`` (d,) their multi-chain bulk ESS (optional; :func:`independent_draws`).
     names : list of str
     bounds : ndarray of shape (d, 2), optional
     Returns
@@ -258,13 +287,15 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     if strongest is None:
         return []
     j, size, affected, values, sign = strongest
-    confirmation = _confirm_in_draws(log_density, flat, tau, centre, covariance, sd, j, affected, sign)
+    # The spreads compared are the affected parameters': their independent draws set the noise (the bins
+    # themselves are where the curvature's prediction is evaluated, so the candidate's own mixing matters less).
+    n_independent = float(np.median(independent_draws(draws, tau, ess)[affected]))
+    confirmation = _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, j, affected, sign)
     return [_funnel_finding(j, float(np.exp(size)), affected, names, bounds, flat, values, confirmation)]
 
 
-def _confirm_in_draws(log_density, flat, tau, centre, covariance, sd, j, affected, sign) -> dict:
+def _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, j, affected, sign) -> dict:
     """What the draws say about a funnel along ``j`` the curvature suggested (see :func:`funnel_findings_from_curvature`)."""
-    n_independent = flat.shape[0] / max(tau, 1.0)
     n_fifth = n_independent / 5
     order = np.sort(flat[:, j])
     size = flat.shape[0] // 5
@@ -276,13 +307,14 @@ def _confirm_in_draws(log_density, flat, tau, centre, covariance, sd, j, affecte
     predicted = float(sign * np.nanmedian(predicted[affected])) if np.any(np.isfinite(predicted[affected])) else 0.0
     measured = float(np.median(measured[affected]))
     se = log_spread_ratio_se(n_fifth)
-    critical = float(stats.t.isf(FUNNEL_FALSE_ALARM, df=max(2.0 * n_fifth, 1.0)))
+    critical = float(stats.t.isf(CONFIRMATION_LEVEL, df=max(2.0 * n_fifth, 1.0)))
     confirmed = bool(n_independent >= MIN_DRAWS_FOR_SPREAD and measured >= critical * se and measured >= 0.5 * predicted)
     # Independent draws at which half the predicted log ratio would be `critical` standard errors.
     needed = np.inf if predicted <= 0.05 else 5 * (2 * _LOG_MAD_VARIANCE * (2 * critical / predicted) ** 2 + 1.5)
     return {"confirmed": confirmed, "measured_factor": float(np.exp(sign * measured)), "standard_error": se,
             "predicted_factor_between_fifths": float(np.exp(sign * predicted)), "independent_draws": n_independent,
-            "independent_draws_needed": float(needed), "tau": float(tau)}
+            "independent_draws_needed": float(needed),
+            "draws_per_independent": flat.shape[0] / max(n_independent, 1.0)}
 
 
 def _location_parameter(flat: np.ndarray, scale: int, affected: list) -> int | None:
@@ -347,7 +379,8 @@ def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmati
             f"step size fits both ends, and a fixed proposal under-samples the narrow end. {rewrite}",
             {**evidence, "status": "confirmed"},
         )
-    n, needed, tau = confirmation["independent_draws"], confirmation["independent_draws_needed"], confirmation["tau"]
+    n, needed = confirmation["independent_draws"], confirmation["independent_draws_needed"]
+    tau = confirmation["draws_per_independent"]
     if not np.isfinite(needed):
         settle = (f"the change lies outside the range of the draws of {names[j]}, so more draws of this posterior "
                   "will not settle it; a run of the non-centred form beside this one would")

@@ -512,12 +512,16 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     )
     multimodal = multimodal_finding(regions, names)
     tau_median = within_chain_iact(proof_draws, np.median)
-    funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds)
+    # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
+    proof_ess = summary(proof_draws).bulk_ess
+    funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds,
+                                                     ess=proof_ess)
     probe_cost = curvature_probe_cost(dim)
     if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget.total is None or budget.total - counted.count >= probe_cost):
         # The model itself can show a funnel the draws do not show plainly (chains kept out of its neck);
         # it is reported as more than a hypothesis only where the draws confirm it.
-        funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds)
+        funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
+                                                ess=proof_ess)
         if funnel and funnel[0].severity != "info":
             undecided_scale = None
     return GeometryChecks(
