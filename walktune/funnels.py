@@ -193,16 +193,18 @@ def _probe_values(column: np.ndarray, low: float, high: float, reach: float, flo
     return inverse(kind, float(np.mean(u)) + np.array([-reach, reach]) * spread, low, high)
 
 
-def _on_ridge(centre: np.ndarray, covariance: np.ndarray, index: int, values: np.ndarray) -> np.ndarray:
+def _on_ridge(centre: np.ndarray, covariance: np.ndarray, index: int, values: np.ndarray, lowest: np.ndarray,
+             highest: np.ndarray) -> np.ndarray:
     """Points (len(values), d) where parameter ``index`` takes ``values`` and the others their linear conditional mean.
 
     Probing along the regression line of the others on the candidate keeps the
     probe inside the posterior: a correlated posterior (a regression with an
     uncentred covariate) moved along one axis alone leaves it, and its
-    curvature there says nothing about the draws.
+    curvature there says nothing about the draws. The others are kept within
+    the range of their draws (``lowest``, ``highest``, shape (d,)), inside any bound.
     """
     slope = covariance[:, index] / covariance[index, index]
-    points = centre + np.outer(np.asarray(values) - centre[index], slope)
+    points = np.clip(centre + np.outer(np.asarray(values) - centre[index], slope), lowest, highest)
     points[:, index] = values
     return points
 
@@ -243,20 +245,25 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     over the affected parameters of the draws' log spread ratio
     (:func:`local_spread_ratio`) must point the same way, be significant
     (one-sided, :data:`CONFIRMATION_LEVEL`, :func:`log_spread_ratio_se` from
-    the affected parameters' independent draws) and
+    the within-chain independent draws) and
     reach half the log ratio the curvature predicts between the medians of
     the draws' bottom and top fifths. Confirmed: warn (critical at 10-fold).
-    Not confirmed: info, saying what would settle it.
+    Not confirmed: info, saying what would settle it. Nothing at all when
+    the curvature predicts less than ``sqrt(threshold)``-fold (half the
+    threshold's log) between the medians of the draws' fifths: the change it
+    sees lies in tails the draws hardly reach.
 
     Parameters
     ----------
     log_density : callable
         ``log p(theta)`` for theta of shape (d,).
     draws : ndarray of shape (chains, n, d)
-        Fixed-proposal draws; ``tau`` a typical within-chain IACT of them and
-        ``ess`` (d,) their multi-chain bulk ESS (optional; :func:`independent_draws`).
+        Fixed-proposal draws; ``tau`` a typical within-chain IACT of them.
+        ``ess`` is accepted for symmetry with :func:`varying_scale_findings`
+        and not used: the confirmation tests a prediction, not a search.
     names : list of str
     bounds : ndarray of shape (d, 2), optional
+
     Returns
     -------
     list of Finding
@@ -273,9 +280,12 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     strongest = None
     for j in range(d):
         low, high = bounds[j]
-        slope = np.exp(-log_jacobian(candidates(low, high)[-1], forward(candidates(low, high)[-1], centre[j], low, high), low, high))
-        values = _probe_values(flat[:, j], low, high, reach, floor=float(local[j] * slope))
-        points = _on_ridge(centre, covariance, j, values)
+        kind = candidates(low, high)[-1]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            opening = np.exp(-log_jacobian(kind, forward(kind, centre[j], low, high), low, high))  # du/dtheta
+        floor = float(np.nan_to_num(local[j] * opening, nan=0.0, posinf=0.0))
+        values = _probe_values(flat[:, j], low, high, reach, floor=floor)
+        points = _on_ridge(centre, covariance, j, values, flat.min(axis=0), flat.max(axis=0))
         with np.errstate(divide="ignore", invalid="ignore"):
             log_ratio = np.log(_local_sd(log_density, points[1], sd) / _local_sd(log_density, points[0], sd))
         log_ratio[j] = 0.0
@@ -287,10 +297,14 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     if strongest is None:
         return []
     j, size, affected, values, sign = strongest
-    # The spreads compared are the affected parameters': their independent draws set the noise (the bins
-    # themselves are where the curvature's prediction is evaluated, so the candidate's own mixing matters less).
-    n_independent = float(np.median(independent_draws(draws, tau, ess)[affected]))
+    # The within-chain count, not the multi-chain ESS: the curvature has predicted the change at the very
+    # fifths the draws fill, so chains that disagree (stuck in a neck) cannot fake the agreement.
+    n_independent = float(independent_draws(draws, tau)[j])
     confirmation = _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, j, affected, sign)
+    if abs(np.log(confirmation["predicted_factor_between_fifths"])) < 0.5 * np.log(threshold):
+        # Within the draws' range the curvature predicts little change: the funnel it sees lies in tails the
+        # draws (and a random walk) hardly reach, as a non-centred model's does where the data would pin the effects.
+        return []
     return [_funnel_finding(j, float(np.exp(size)), affected, names, bounds, flat, values, confirmation)]
 
 
@@ -300,7 +314,7 @@ def _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, 
     order = np.sort(flat[:, j])
     size = flat.shape[0] // 5
     medians = np.array([np.median(order[:size]), np.median(order[-size:])])
-    points = _on_ridge(centre, covariance, j, medians)
+    points = _on_ridge(centre, covariance, j, medians, flat.min(axis=0), flat.max(axis=0))
     with np.errstate(divide="ignore", invalid="ignore"):
         predicted = np.log(_local_sd(log_density, points[1], sd) / _local_sd(log_density, points[0], sd))
         measured = sign * np.log(local_spread_ratio(flat[:: max(1, flat.shape[0] // 20_000)], j))
