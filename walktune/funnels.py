@@ -230,7 +230,8 @@ def curvature_probe_cost(d: int) -> int:
 
 
 def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, names: list, bounds=None,
-                                   threshold: float = 4.0, reach: float = 2.5, ess=None) -> list:
+                                   threshold: float = 4.0, reach: float = 2.5, spread=None,
+                                   log_densities=None) -> list:
     """``varying-scale`` suspected from the model's curvature, and whether the draws confirm it.
 
     For each candidate parameter j, the local spread of every other parameter,
@@ -259,8 +260,12 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
         ``log p(theta)`` for theta of shape (d,).
     draws : ndarray of shape (chains, n, d)
         Fixed-proposal draws; ``tau`` a typical within-chain IACT of them.
-        ``ess`` is accepted for symmetry with :func:`varying_scale_findings`
-        and not used: the confirmation tests a prediction, not a search.
+    spread : ndarray of shape (d,), optional
+        Another estimate of each parameter's sd (e.g. the pilot's): the probe
+        reaches at least that far, so chains stuck in a neck do not hide it.
+    log_densities : ndarray of shape (chains, n), optional
+        ``log p`` of the draws: chains stranded apart (:func:`chains_apart`)
+        take no part in the confirmation.
     names : list of str
     bounds : ndarray of shape (d, 2), optional
 
@@ -283,7 +288,8 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
         kind = candidates(low, high)[-1]
         with np.errstate(divide="ignore", invalid="ignore"):
             opening = np.exp(-log_jacobian(kind, forward(kind, centre[j], low, high), low, high))  # du/dtheta
-        floor = float(np.nan_to_num(local[j] * opening, nan=0.0, posinf=0.0))
+        widest = max(local[j], 0.0 if spread is None else float(spread[j]))
+        floor = float(np.nan_to_num(widest * opening, nan=0.0, posinf=0.0))
         values = _probe_values(flat[:, j], low, high, reach, floor=floor)
         points = _on_ridge(centre, covariance, j, values, flat.min(axis=0), flat.max(axis=0))
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -300,16 +306,52 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     # The within-chain count, not the multi-chain ESS: the curvature has predicted the change at the very
     # fifths the draws fill, so chains that disagree (stuck in a neck) cannot fake the agreement.
     n_independent = float(independent_draws(draws, tau)[j])
-    confirmation = _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, j, affected, sign)
-    if abs(np.log(confirmation["predicted_factor_between_fifths"])) < 0.5 * np.log(threshold):
+    kept = draws if log_densities is None else draws[~chains_apart(np.asarray(log_densities))]
+    confirmation = _confirm_in_draws(log_density, kept, n_independent * kept.shape[0] / draws.shape[0], centre,
+                                     covariance, sd, j, affected, sign)
+    small = abs(np.log(confirmation["predicted_factor_between_fifths"])) < 0.5 * np.log(threshold)
+    if small and confirmation["chains_fill_fifths"]:
         # Within the draws' range the curvature predicts little change: the funnel it sees lies in tails the
         # draws (and a random walk) hardly reach, as a non-centred model's does where the data would pin the effects.
         return []
     return [_funnel_finding(j, float(np.exp(size)), affected, names, bounds, flat, values, confirmation)]
 
 
-def _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, j, affected, sign) -> dict:
+#: Each fifth of the candidate's draws must hold at least this many chains (each with 5% of
+#: it or more) for the draws to confirm or rule out a funnel: otherwise the fifths compare
+#: chains that sit in different places, not regions of one posterior (common practice).
+MIN_CHAINS_PER_FIFTH = 3
+
+
+def chains_per_fifth(draws: np.ndarray, index: int) -> int:
+    """Chains holding at least 5% of the bottom and of the top fifth of parameter ``index`` (the smaller count).
+
+    ``draws`` is (chains, n, d).
+    """
+    m, n, _ = draws.shape
+    order = np.argsort(draws[:, :, index].ravel(), kind="stable")
+    chain = np.repeat(np.arange(m), n)
+    size = max(order.shape[0] // 5, 1)
+    counts = [np.bincount(chain[rows], minlength=m) for rows in (order[:size], order[-size:])]
+    return int(min(np.sum(c >= 0.05 * size) for c in counts))
+
+
+def chains_apart(log_densities: np.ndarray) -> np.ndarray:
+    """Chains whose log-density never reaches the bulk of the best chain's, shape (chains,), bool.
+
+    A chain whose 95th percentile of log p lies below the 5th percentile of the
+    chain with the highest median sits in a region the others do not visit
+    (stranded far out in a tail); its draws say nothing about how the spread
+    changes inside the posterior. ``log_densities`` is (chains, n).
+    """
+    best = int(np.argmax(np.median(log_densities, axis=1)))
+    floor = np.quantile(log_densities[best], 0.05)
+    return np.quantile(log_densities, 0.95, axis=1) < floor
+
+
+def _confirm_in_draws(log_density, draws, n_independent, centre, covariance, sd, j, affected, sign) -> dict:
     """What the draws say about a funnel along ``j`` the curvature suggested (see :func:`funnel_findings_from_curvature`)."""
+    flat = draws.reshape(-1, draws.shape[2])
     n_fifth = n_independent / 5
     order = np.sort(flat[:, j])
     size = flat.shape[0] // 5
@@ -322,10 +364,12 @@ def _confirm_in_draws(log_density, flat, n_independent, centre, covariance, sd, 
     measured = float(np.median(measured[affected]))
     se = log_spread_ratio_se(n_fifth)
     critical = float(stats.t.isf(CONFIRMATION_LEVEL, df=max(2.0 * n_fifth, 1.0)))
-    confirmed = bool(n_independent >= MIN_DRAWS_FOR_SPREAD and measured >= critical * se and measured >= 0.5 * predicted)
+    mixed = chains_per_fifth(draws, j) >= MIN_CHAINS_PER_FIFTH
+    confirmed = bool(mixed and n_independent >= MIN_DRAWS_FOR_SPREAD and measured >= critical * se
+                     and measured >= 0.5 * predicted)
     # Independent draws at which half the predicted log ratio would be `critical` standard errors.
     needed = np.inf if predicted <= 0.05 else 5 * (2 * _LOG_MAD_VARIANCE * (2 * critical / predicted) ** 2 + 1.5)
-    return {"confirmed": confirmed, "measured_factor": float(np.exp(sign * measured)), "standard_error": se,
+    return {"confirmed": confirmed, "chains_fill_fifths": bool(mixed), "measured_factor": float(np.exp(sign * measured)), "standard_error": se,
             "predicted_factor_between_fifths": float(np.exp(sign * predicted)), "independent_draws": n_independent,
             "independent_draws_needed": float(needed),
             "draws_per_independent": flat.shape[0] / max(n_independent, 1.0)}
@@ -379,6 +423,11 @@ def _noncentred_rewrite(scale: int, affected: list, names: list, bounds: np.ndar
             "N(0, 1) on each z.")
 
 
+def _fold(factor: float) -> str:
+    """'about 21-fold', or a bound where a central-difference ratio is past any useful precision."""
+    return f"about {factor:.0f}-fold" if factor < 1000 else "over 1000-fold"
+
+
 def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmation) -> Finding:
     listed = f"{', '.join(names[i] for i in affected[:5])}{' ...' if len(affected) > 5 else ''}"
     rewrite = _noncentred_rewrite(j, affected, names, bounds, flat)
@@ -387,7 +436,7 @@ def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmati
     if confirmation["confirmed"]:
         return Finding(
             "varying-scale", "critical" if factor >= 10 else "warn", [names[j]] + [names[i] for i in affected],
-            f"the spread of {listed} changes about {factor:.0f}-fold along {names[j]} (a funnel; from the model's "
+            f"the spread of {listed} changes {_fold(factor)} along {names[j]} (a funnel; from the model's "
             f"curvature between {names[j]} = {values[0]:.3g} and {values[1]:.3g}, and the draws confirm it: "
             f"{confirmation['measured_factor']:.2g}-fold between their bottom and top fifths of {names[j]}). No single "
             f"step size fits both ends, and a fixed proposal under-samples the narrow end. {rewrite}",
@@ -395,7 +444,11 @@ def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmati
         )
     n, needed = confirmation["independent_draws"], confirmation["independent_draws_needed"]
     tau = confirmation["draws_per_independent"]
-    if not np.isfinite(needed):
+    if not confirmation["chains_fill_fifths"]:
+        settle = (f"the chains sit in different places along {names[j]} (fewer than {MIN_CHAINS_PER_FIFTH} fill each "
+                  "fifth of its draws), so the draws compare chains, not regions; runs that mix (or a run of the "
+                  "non-centred form beside this one) would settle it")
+    elif not np.isfinite(needed):
         settle = (f"the change lies outside the range of the draws of {names[j]}, so more draws of this posterior "
                   "will not settle it; a run of the non-centred form beside this one would")
     elif needed > n:
@@ -407,8 +460,8 @@ def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmati
                   "form says otherwise")
     return Finding(
         "varying-scale", "info", [names[j]] + [names[i] for i in affected],
-        f"suspected, not confirmed: the model's curvature changes the local spread of {listed} about "
-        f"{factor:.0f}-fold between {names[j]} = {values[0]:.3g} and {values[1]:.3g}, but the draws change it "
+        f"suspected, not confirmed: the model's curvature changes the local spread of {listed} "
+        f"{_fold(factor)} between {names[j]} = {values[0]:.3g} and {values[1]:.3g}, but the draws change it "
         f"{confirmation['measured_factor']:.2g}-fold between their bottom and top fifths of {names[j]} (standard "
         f"error of the log {confirmation['standard_error']:.2f}; the curvature predicts "
         f"{confirmation['predicted_factor_between_fifths']:.2g}-fold there). To settle it: {settle}.",

@@ -521,7 +521,8 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         # The model itself can show a funnel the draws do not show plainly (chains kept out of its neck);
         # it is reported as more than a hypothesis only where the draws confirm it.
         funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
-                                                ess=proof_ess)
+                                                spread=np.sqrt(np.diag(pilot.covariance)),
+                                                log_densities=np.concatenate([run.log_density for run in proof.runs.values()]))
         if funnel and funnel[0].severity != "info":
             undecided_scale = None
     return GeometryChecks(
