@@ -250,3 +250,30 @@ def test_correlated_gaussians_raise_no_funnel_modes_or_ridge(seed):
     result = walktune.tune(lambda x: -0.5 * x @ precision @ x, np.ones(5), seed=seed)
     found = {f.kind for f in result.findings}
     assert not found & {"varying-scale", "multimodal", "curved-ridge"}, [f.message for f in result.findings]
+
+
+def test_rewrite_names_location_scale_and_effects_of_a_centred_model():
+    # Exact draws of a centred hierarchy (mu ~ N(0, 1), log tau ~ N(0, 1), theta_j ~ N(mu, tau^2)):
+    # the effects are conditionally independent given (mu, tau), so mu is their location.
+    from walktune.funnels import _noncentred_rewrite
+
+    rng = np.random.default_rng(11)
+    n, groups = 4000, 6
+    mu, log_tau = rng.standard_normal(n), rng.standard_normal(n)
+    theta = mu[:, None] + np.exp(log_tau)[:, None] * rng.standard_normal((n, groups))
+    flat = np.column_stack([mu, log_tau, theta])
+    names = ["mu", "log_tau"] + [f"school_{j}" for j in range(groups)]
+    bounds = np.tile([-np.inf, np.inf], (groups + 2, 1))
+    text = _noncentred_rewrite(1, list(range(2, groups + 2)), names, bounds, flat)
+    assert "school_0 = mu + exp(log_tau) * z_school_0" in text
+    # On the natural scale, bounded at 0, the scale enters as itself.
+    bounds[1] = [0.0, np.inf]
+    natural = np.column_stack([mu, np.exp(log_tau), theta])
+    assert "school_0 = mu + log_tau * z_school_0" in _noncentred_rewrite(1, list(range(2, groups + 2)), names, bounds,
+                                                                          natural)
+    # Neal's funnel has no location: the rewrite says so rather than invent one.
+    v = rng.normal(0, 3, n)
+    x = rng.standard_normal((n, 5)) * np.exp(v / 2)[:, None]
+    text = _noncentred_rewrite(0, list(range(1, 6)), ["v"] + [f"x{i}" for i in range(5)],
+                               np.tile([-np.inf, np.inf], (6, 1)), np.column_stack([v, x]))
+    assert "x0 = m + exp(v) * z_x0" in text
