@@ -230,13 +230,14 @@ def curvature_probe_cost(d: int) -> int:
 
 
 def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, names: list, bounds=None,
-                                   threshold: float = 4.0, reach: float = 2.5, spread=None,
+                                   threshold: float = 4.0, reach: float = 3.0, spread=None,
                                    log_densities=None) -> list:
     """``varying-scale`` suspected from the model's curvature, and whether the draws confirm it.
 
     For each candidate parameter j, the local spread of every other parameter,
     ``(-d^2 log p / d theta_i^2)^{-1/2}``, is compared between two points
-    ``reach`` spreads either side of the draws' centre along j (in log or
+    ``reach`` spreads either side of the draws' centre along j (past the
+    draws' own 1% points: the draws of a funnel under-represent its neck; in log or
     logit coordinates for a bounded j; see :func:`_probe_values`), the others
     at their conditional mean given j (:func:`_on_ridge`). For a Gaussian every
     ratio is 1; in Neal's funnel it is ``exp(reach sd_v)``.
