@@ -55,7 +55,8 @@ def _below_target(hits: int, reps: int) -> bool:
 @pytest.mark.parametrize("kind", ["independent", "correlated"])
 def test_funnel_false_alarms_below_one_percent_at_small_d(d, kind):
     # d = 2 and 3 need one affected parameter of 1-2 for a finding: the hardest case (10% before).
-    reps = 3000
+    # Over other seeds the d = 2 rate was 0.23-0.37% (3000 replicates each); 5000 keep the check clear of the edge.
+    reps = 5000
     hits = _false_alarm_count(d, reps, seed=100 + d, kind=kind)
     assert _below_target(hits, reps), f"{hits} false findings in {reps}"
 
