@@ -1,0 +1,164 @@
+"""Predicted slow-downs (walktune.theory.slowdown) against simulation with known truth.
+
+The sampler and the IACT estimator are written here, independent of walktune's
+engine and diagnostics: a plain random-walk Metropolis on ``N(0, S)``, started
+from exact draws of the target (no warm-up needed), and Geyer's (1992) initial
+monotone sequence estimator with the true mean and variance.
+
+Sources:
+- Roberts, Gelman and Gilks (1997), Annals of Applied Probability 7(1), and
+  Roberts and Rosenthal (2001), Statistical Science 16(4): the diffusion limit
+  behind the predictions (acceptance ``2 Phi(-sqrt(sum 1/mu)/2)``, direction
+  IACT ``4 mu_k / a``). The per-parameter IACT is derived from it in walktune.theory.
+- Sokal (1997), lecture notes "Monte Carlo methods in statistical mechanics":
+  the variance of a windowed IACT estimate, ``2 (2M + 1) / N tau^2``, which sets
+  the Monte Carlo tolerances.
+
+The predictions are asymptotic in d. What was measured here (100 chains x
+20,000 steps each) is recorded in docs/method.md; the allowance for the
+finite-d error of the limit is stated beside each check, and the Monte Carlo
+error is added to it.
+"""
+
+import numpy as np
+import pytest
+from scipy import fft, linalg
+from threadpoolctl import threadpool_limits
+
+from walktune import theory as T
+
+CHAINS, STEPS = 100, 20_000
+
+
+@pytest.fixture(autouse=True)
+def one_blas_thread():
+    # Matrices of (100, d) x (d, d): threads only add contention on a shared machine.
+    with threadpool_limits(limits=1):
+        yield
+
+
+def random_walk(covariance, proposal, seed, chains=CHAINS, steps=STEPS):
+    """Plain random-walk Metropolis on N(0, covariance); draws (steps, chains, d) as float32."""
+    rng = np.random.default_rng(seed)
+    d = covariance.shape[0]
+    chol = np.linalg.cholesky(covariance)
+    whiten = linalg.solve_triangular(chol, np.eye(d), lower=True).T  # x @ whiten = L^-1 x
+    step = np.linalg.cholesky(proposal).T
+    x = rng.standard_normal((chains, d)) @ chol.T  # exact draws: the chains start stationary
+    log_p = -0.5 * np.sum((x @ whiten) ** 2, axis=1)
+    draws = np.empty((steps, chains, d), dtype=np.float32)
+    block = 1000
+    for start in range(0, steps, block):
+        increments = rng.standard_normal((block, chains, d)) @ step
+        log_u = np.log(rng.random((block, chains)))
+        for t in range(block):
+            y = x + increments[t]
+            log_y = -0.5 * np.sum((y @ whiten) ** 2, axis=1)
+            accept = log_u[t] < log_y - log_p
+            x[accept] = y[accept]
+            log_p[accept] = log_y[accept]
+            draws[start + t] = x
+    return draws
+
+
+def iact(series, variance):
+    """Geyer's initial monotone sequence estimate from (steps, chains) draws of known mean 0.
+
+    Returns the IACT and its relative standard error sqrt(2 (2M + 1) / N)
+    (Sokal 1997) with M the truncation lag and N all draws.
+    """
+    n, m = series.shape
+    size = fft.next_fast_len(2 * n)
+    spectrum = fft.rfft(series.T, size, axis=1)  # float32 in, complex64: ample for an autocorrelation
+    autocov = fft.irfft(spectrum * np.conj(spectrum), size, axis=1)[:, :n].mean(axis=0, dtype=float) / n
+    rho = autocov / variance
+    pairs = rho[: 2 * (n // 2)].reshape(-1, 2).sum(axis=1)
+    negative = np.flatnonzero(pairs <= 0)
+    pairs = np.minimum.accumulate(pairs[: negative[0] if negative.size else pairs.size])
+    window = 2 * pairs.size
+    return -1.0 + 2.0 * pairs.sum(), np.sqrt(2 * (2 * window + 1) / (n * m))
+
+
+def matched_iact(dim, seed):
+    """IACT of the optimally scaled matched proposal, and its relative error.
+
+    An affine map takes ``N(0, S)`` with proposal ``ell^2 S`` to ``N(0, I)`` with
+    ``ell^2 I``, which is symmetric under rotations: every linear combination
+    of the parameters has the same IACT, so the mean over coordinates is used.
+    """
+    draws = random_walk(np.eye(dim), T.optimal_proposal(np.eye(dim)), seed)
+    estimates = [iact(draws[:, :, j], 1.0) for j in range(dim)]
+    return np.mean([e[0] for e in estimates]), max(e[1] for e in estimates)
+
+
+def measured_slowdowns(covariance, proposal_shape, groups, seed):
+    """Simulated slow-downs of ``proposal_shape`` scaled as walktune's advice scales it.
+
+    The scale puts the diffusion-limit acceptance at 0.234, as ``best_step_sizes``
+    and ``best_isotropic_step`` do. ``groups`` lists parameters exchangeable
+    under a symmetry of target and proposal; their IACTs are averaged. Returns
+    the parameter ratio and the direction ratio, each with its relative
+    standard error.
+    """
+    dim = covariance.shape[0]
+    mu, vectors = linalg.eigh(covariance, proposal_shape)
+    scale2 = T.ASYMPTOTIC_SCALE**2 / np.sum(1.0 / mu)
+    draws = random_walk(covariance, scale2 * proposal_shape, seed)
+    reference, reference_error = matched_iact(dim, seed + 1)
+    per_parameter = [iact(draws[:, :, j], covariance[j, j]) for j in range(dim)]
+    tau = np.array([p[0] for p in per_parameter])
+    worst = max(groups, key=lambda g: tau[g].mean())
+    # Members of a group are correlated: the error of their mean is taken as one member's.
+    parameter_error = np.hypot(max(per_parameter[j][1] for j in worst), reference_error)
+    # The slowest direction: v_k^T theta has variance mu_k (V^T S V = diag(mu)).
+    direction, direction_error = iact(draws @ vectors[:, -1].astype(np.float32), mu[-1])
+    return ((tau[worst].mean() / reference, parameter_error),
+            (direction / reference, np.hypot(direction_error, reference_error)))
+
+
+def equicorrelated(dim, rho):
+    return (1 - rho) * np.eye(dim) + rho * np.ones((dim, dim))
+
+
+def rotated_spread(dim, decades, seed):
+    rng = np.random.default_rng(seed)
+    rotation, _ = np.linalg.qr(rng.standard_normal((dim, dim)))
+    return rotation @ np.diag(np.logspace(0, decades, dim)) @ rotation.T
+
+
+def blocks():
+    # Three blocks of 6: correlations 0.9, 0.5 and 0, with sds 1, 3 and 0.5.
+    parts = [equicorrelated(6, 0.9), 9 * equicorrelated(6, 0.5), 0.25 * np.eye(6)]
+    return linalg.block_diag(*parts)
+
+
+CASES = {
+    # name: (covariance, groups of exchangeable parameters, seed)
+    "equicorrelated-0.5-d10": (equicorrelated(10, 0.5), [list(range(10))], 11),
+    "equicorrelated-0.1-d40": (equicorrelated(40, 0.1), [list(range(40))], 12),
+    "rotation-1-decade-d20": (rotated_spread(20, 1.0, 5), [[j] for j in range(20)], 13),
+    "blocks-d18": (blocks(), [list(range(0, 6)), list(range(6, 12)), list(range(12, 18))], 14),
+}
+
+#: The diffusion limit overstates slow-downs at finite d (a real chain at these
+#: scales accepts more often and moves further than the limit says). Measured
+#: here with the seeds above, the measured/predicted ratio fell short of 1 by
+#: up to ALLOWANCE (docs/method.md has each case); the checks allow that
+#: shortfall below the prediction and Monte Carlo error (3 standard errors) either side.
+ALLOWANCE = 0.20
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", list(CASES))
+def test_step_size_slowdown_matches_simulation(name):
+    # The advice's per-parameter step sizes against its tuned covariance, as the proof runs compare them.
+    covariance, groups, seed = CASES[name]
+    steps = T.best_step_sizes(covariance)
+    predicted = T.slowdown(np.diag(steps**2), covariance)
+    (parameter, parameter_error), (direction, direction_error) = measured_slowdowns(
+        covariance, np.diag(steps**2), groups, seed)
+    for measured, error, expected in [(parameter, parameter_error, predicted.slowest_parameter),
+                                      (direction, direction_error, predicted.slowest_direction)]:
+        # Relative standard errors below 0.1 make the check sharper than the gap between the two predictions.
+        assert error < 0.1
+        assert 1 - ALLOWANCE - 3 * error <= measured / expected <= 1 + 3 * error
