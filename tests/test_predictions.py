@@ -10,9 +10,9 @@ Sources:
   Roberts and Rosenthal (2001), Statistical Science 16(4): the diffusion limit
   behind the predictions (acceptance ``2 Phi(-sqrt(sum 1/mu)/2)``, direction
   IACT ``4 mu_k / a``). The per-parameter IACT is derived from it in walktune.theory.
-- Sokal (1997), lecture notes "Monte Carlo methods in statistical mechanics":
-  the variance of a windowed IACT estimate, ``2 (2M + 1) / N tau^2``, which sets
-  the Monte Carlo tolerances.
+- Geyer (1992), Statistical Science 7(4): the initial monotone sequence
+  estimator of the IACT. Its Monte Carlo error is measured here from the
+  spread over 10 groups of 10 chains.
 
 The predictions are asymptotic in d. What was measured here (100 chains x
 20,000 steps each) is recorded in docs/method.md; the allowance for the
@@ -61,22 +61,28 @@ def random_walk(covariance, proposal, seed, chains=CHAINS, steps=STEPS):
     return draws
 
 
-def iact(series, variance):
-    """Geyer's initial monotone sequence estimate from (steps, chains) draws of known mean 0.
+def _geyer(rho):
+    """Initial monotone sequence estimate (Geyer 1992) from autocorrelations ``rho`` (lag 0 first)."""
+    pairs = rho[: 2 * (rho.size // 2)].reshape(-1, 2).sum(axis=1)
+    negative = np.flatnonzero(pairs <= 0)
+    pairs = np.minimum.accumulate(pairs[: negative[0] if negative.size else pairs.size])
+    return -1.0 + 2.0 * pairs.sum()
 
-    Returns the IACT and its relative standard error sqrt(2 (2M + 1) / N)
-    (Sokal 1997) with M the truncation lag and N all draws.
+
+def iact(series, variance, groups=10):
+    """IACT from (steps, chains) draws of known mean 0 and variance, and its relative standard error.
+
+    The autocovariance is pooled over all chains; the standard error is the
+    spread of the same estimate over ``groups`` disjoint groups of chains,
+    divided by ``sqrt(groups)``.
     """
     n, m = series.shape
     size = fft.next_fast_len(2 * n)
     spectrum = fft.rfft(series.T, size, axis=1)  # float32 in, complex64: ample for an autocorrelation
-    autocov = fft.irfft(spectrum * np.conj(spectrum), size, axis=1)[:, :n].mean(axis=0, dtype=float) / n
-    rho = autocov / variance
-    pairs = rho[: 2 * (n // 2)].reshape(-1, 2).sum(axis=1)
-    negative = np.flatnonzero(pairs <= 0)
-    pairs = np.minimum.accumulate(pairs[: negative[0] if negative.size else pairs.size])
-    window = 2 * pairs.size
-    return -1.0 + 2.0 * pairs.sum(), np.sqrt(2 * (2 * window + 1) / (n * m))
+    autocov = fft.irfft(spectrum * np.conj(spectrum), size, axis=1)[:, :n].astype(float) / n
+    tau = _geyer(autocov.mean(axis=0) / variance)
+    by_group = [_geyer(part.mean(axis=0) / variance) for part in np.array_split(autocov, groups)]
+    return tau, np.std(by_group, ddof=1) / np.sqrt(groups) / tau
 
 
 def matched_iact(dim, seed):
@@ -140,11 +146,11 @@ CASES = {
     "blocks-d18": (blocks(), [list(range(0, 6)), list(range(6, 12)), list(range(12, 18))], 14),
 }
 
-#: The diffusion limit overstates slow-downs at finite d (a real chain at these
-#: scales accepts more often and moves further than the limit says). Measured
-#: here with the seeds above, the measured/predicted ratio fell short of 1 by
-#: up to ALLOWANCE (docs/method.md has each case); the checks allow that
-#: shortfall below the prediction and Monte Carlo error (3 standard errors) either side.
+#: The diffusion limit overstates slow-downs at finite d. Measured here with the
+#: seeds above, the measured/predicted ratio fell short of 1 by 3% to 16%
+#: (docs/method.md has each case); ALLOWANCE rounds the largest up. The checks
+#: allow that shortfall below the prediction, and Monte Carlo error (3 standard
+#: errors) either side.
 ALLOWANCE = 0.20
 
 
@@ -159,6 +165,11 @@ def test_step_size_slowdown_matches_simulation(name):
         covariance, np.diag(steps**2), groups, seed)
     for measured, error, expected in [(parameter, parameter_error, predicted.slowest_parameter),
                                       (direction, direction_error, predicted.slowest_direction)]:
-        # Relative standard errors below 0.1 make the check sharper than the gap between the two predictions.
-        assert error < 0.1
+        # The simulation must be precise enough for the check to mean something: 3 standard
+        # errors below 45%, against a gap of 1.7x (d = 10) and 3.5x (d = 40) between the two
+        # predictions in the equicorrelated cases.
+        assert error < 0.15
         assert 1 - ALLOWANCE - 3 * error <= measured / expected <= 1 + 3 * error
+    if predicted.slowest_direction > 1.5 * predicted.slowest_parameter:
+        # The slowest-direction figure does not predict the smallest ESS over parameters.
+        assert parameter < (1 - ALLOWANCE - 3 * parameter_error) * predicted.slowest_direction

@@ -4,10 +4,13 @@ Sources:
 - Roberts, Gelman and Gilks (1997), Annals of Applied Probability 7(1): the
   diffusion limit, acceptance 0.234 at scale 2.38/sqrt(d).
 - Roberts and Rosenthal (2001), Statistical Science 16(4): proposals of the
-  wrong shape are slower; the slowest-direction factor is derived in
-  walktune.theory and checked here against simulation.
+  wrong shape are slower; the per-parameter and slowest-direction factors are
+  derived in walktune.theory, checked here in closed form and against
+  simulation in tests/test_predictions.py.
 - Gelman, Roberts and Gilks (1996), Bayesian Statistics 5: acceptance 0.44 at
   proposal sd 2.4 for N(0, 1) (recalled value).
+- Shared REFERENCES: optimal efficiencies simulated at d = 1..20 (200 chains x
+  20,000 steps), checked again here at d = 5.
 """
 
 import numpy as np
@@ -91,11 +94,15 @@ def test_optimal_efficiency_follows_the_simulated_table():
 
 def test_optimal_efficiency_at_d5_against_simulation():
     # Simulation with known truth: isotropic N(0, I_5), the matched proposal at walktune's scale
-    # 2.38/sqrt(5); efficiency = 1/IACT, averaged over the 5 exchangeable coordinates.
+    # 2.38/sqrt(5), chains started from exact draws; efficiency = 1/IACT, averaged over the 5
+    # exchangeable coordinates. Shared REFERENCES has 0.060 at d = 5 from a simulation at the optimum.
     draws = walktune.sample(diagonal_gaussian(np.ones(5)), np.random.default_rng(0).standard_normal((50, 5)),
                             T.optimal_proposal(np.eye(5)), 8000, seed=7, vectorized=True).draws
-    tau = D.iact(draws)
-    efficiency = np.mean(1.0 / tau)
-    # Relative sd of one IACT estimate about sqrt(2 (2M+1) / N) (Sokal 1997), M ~ 5 tau, N = 400,000:
-    # 1.4%; the optimum is flat, so the scale used loses little. Allow 3 sd plus 3% for the flat optimum.
-    assert efficiency == pytest.approx(T.optimal_efficiency(5), rel=3 * 0.014 + 0.03)
+    efficiency = np.mean(1.0 / D.iact(draws))
+    # Monte Carlo error from the spread over 10 groups of 5 chains.
+    groups = [np.mean(1.0 / D.iact(part)) for part in np.array_split(draws, 10)]
+    error = np.std(groups, ddof=1) / np.sqrt(10)
+    # The optimum is flat (shared REFERENCES): the scale used loses little; 3% allowed for it.
+    assert abs(efficiency - T.optimal_efficiency(5)) <= 3 * error + 0.03 * T.optimal_efficiency(5)
+    # The former asymptotic value 0.33 / 5 = 0.066 is outside.
+    assert abs(efficiency - 0.066) > 3 * error
