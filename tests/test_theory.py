@@ -106,3 +106,15 @@ def test_optimal_efficiency_at_d5_against_simulation():
     assert abs(efficiency - T.optimal_efficiency(5)) <= 3 * error + 0.03 * T.optimal_efficiency(5)
     # The former asymptotic value 0.33 / 5 = 0.066 is outside.
     assert abs(efficiency - 0.066) > 3 * error
+
+
+def test_loadings_rebuild_the_covariance():
+    # Linear algebra: theta = sum_k c_k z_k with independent unit z_k has covariance c c^T = S.
+    rng = np.random.default_rng(4)
+    a, b = rng.standard_normal((2, 6, 6))
+    cov, proposal = a @ a.T + np.eye(6), b @ b.T + np.eye(6)
+    mu, loadings = T.principal_loadings(proposal, cov)
+    np.testing.assert_allclose(loadings @ loadings.T, cov, rtol=1e-10, atol=1e-10)
+    np.testing.assert_allclose(mu, np.sort(np.linalg.eigvals(np.linalg.solve(proposal, cov)).real), rtol=1e-10)
+    # Equal direction IACTs give every parameter that IACT.
+    np.testing.assert_allclose(T.parameter_iact(loadings, np.full(6, 7.0)), 7.0)
