@@ -416,8 +416,8 @@ def heavy_tail_findings(draws: np.ndarray, ess: np.ndarray, names: list) -> list
                     "heavy-tails",
                     "warn",
                     [names[i]],
-                    f"{names[i]} has excess kurtosis {k:.1f}, against 0 +/- {se:.2f} for a Gaussian with this ESS: "
-                    "its tails are much heavier than a Gaussian's, so a proposal scaled to the bulk explores them "
+                    f"{names[i]} has excess kurtosis {k:.1f} (a Gaussian gives 0, with standard error {se:.2f} at this "
+                    "ESS): its tails are much heavier than a Gaussian's, so a proposal scaled to the bulk explores them "
                     "slowly and tail quantiles converge last. A log or other transform may tame them; check tail ESS.",
                     {"excess_kurtosis": float(k), "standard_error": float(se)},
                 )
