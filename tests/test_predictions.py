@@ -173,3 +173,17 @@ def test_step_size_slowdown_matches_simulation(name):
     if predicted.slowest_direction > 1.5 * predicted.slowest_parameter:
         # The slowest-direction figure does not predict the smallest ESS over parameters.
         assert parameter < (1 - ALLOWANCE - 3 * parameter_error) * predicted.slowest_direction
+
+
+@pytest.mark.slow
+def test_single_step_slowdown_matches_simulation():
+    # The default baseline of the proof runs: one step size for all parameters, on the rotated target.
+    covariance, groups, seed = CASES["rotation-1-decade-d20"]
+    dim = covariance.shape[0]
+    predicted = T.slowdown(T.best_isotropic_step(covariance) ** 2 * np.eye(dim), covariance)
+    (parameter, parameter_error), (direction, direction_error) = measured_slowdowns(
+        covariance, np.eye(dim), groups, seed + 100)
+    for measured, error, expected in [(parameter, parameter_error, predicted.slowest_parameter),
+                                      (direction, direction_error, predicted.slowest_direction)]:
+        assert error < 0.15
+        assert 1 - ALLOWANCE - 3 * error <= measured / expected <= 1 + 3 * error
