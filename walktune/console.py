@@ -119,6 +119,12 @@ def geometry_table_from(s, names, max_rows: int = 5) -> Table:
     return table
 
 
+def _predicted(slowdown: dict) -> str:
+    """A predicted slow-down (walktune.theory.Slowdown as a dict), smallest ESS first."""
+    return (f"predicted {slowdown['slowest_parameter']:.1f}x lower smallest ESS per evaluation "
+            f"({slowdown['slowest_direction']:.1f}x in the slowest principal direction)")
+
+
 def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     table = Table(title="Advice", title_justify="left", show_header=False)
     table.add_column("what", style="bold")
@@ -131,18 +137,14 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     )
     table.add_row("expected acceptance", f"{result.expected_acceptance:.2f}")
     steps = result.slowdowns["step_sizes"]
-    table.add_row(
-        "step sizes only",
-        f"per-parameter sds in the posterior table; predicted {steps['slowest']:.1f}x slower in the slowest "
-        f"direction, {steps['mean']:.1f}x on average",
-    )
+    table.add_row("step sizes only", f"per-parameter sds in the posterior table; {_predicted(steps)}")
     single = result.slowdowns["single_step"]
-    table.add_row("one step size", f"{result.single_step:.3g}; predicted {single['slowest']:.1f}x slower (slowest direction)")
+    table.add_row("one step size", f"{result.single_step:.3g}; {_predicted(single)}")
     if "current" in result.slowdowns:
         cur, res = result.slowdowns["current"], result.slowdowns["current_rescaled"]
         table.add_row(
             "your proposal",
-            f"predicted {cur['slowest']:.1f}x slower as it is; {res['slowest']:.1f}x if only its overall scale were tuned",
+            f"as it is, {_predicted(cur)}; {res['slowest_parameter']:.1f}x if only its overall scale were tuned",
         )
     reparam = result.reparam
     if reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
@@ -309,11 +311,11 @@ def inspection_advice_table(result) -> Table:
     )
     steps = advice.slowdowns["step_sizes"]
     table.add_row("step sizes only", f"{', '.join(_fmt(x) for x in advice.step_sizes[:8])}{' ...' if d > 8 else ''}; "
-                  f"predicted {steps['slowest']:.1f}x slower in the slowest direction")
+                  f"{_predicted(steps)}")
     if "current" in advice.slowdowns:
         cur, res = advice.slowdowns["current"], advice.slowdowns["current_rescaled"]
-        table.add_row("your proposal", f"predicted {cur['slowest']:.1f}x slower than the advice as it is; "
-                      f"{res['slowest']:.1f}x if only its overall scale were tuned")
+        table.add_row("your proposal", f"against the advice as it is, {_predicted(cur)}; "
+                      f"{res['slowest_parameter']:.1f}x if only its overall scale were tuned")
     advised = float(np.nanmax(result.more_draws_advised))
     table.add_row("draws needed", f"with the advised proposal about {_fmt(advised, 3)} draws in all for the ESS wanted "
                   f"(optimal-scaling theory), against {_fmt(float(np.nanmax(result.more_draws_observed)), 3)} more at the observed efficiency")

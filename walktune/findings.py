@@ -13,7 +13,8 @@ source is named):
   apart, posterior variance at least 80% of the prior's; and the number of
   prior-dominated directions of the likelihood-informed split.
 * ``poor-acceptance``: a measured acceptance rate below 0.1 or above 0.7
-  (optimal is 0.234-0.44 by dimension; Gelman, Roberts and Gilks 1996).
+  (optimal is 0.44 in one dimension, Gelman, Roberts and Gilks 1996, down to
+  0.234 as the dimension grows, Roberts, Gelman and Gilks 1997).
 * ``short-chains``: an ESS rests on fewer than 50 autocorrelation times per chain.
 * ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
 """

@@ -6,14 +6,16 @@
   to its local mode, and two modes count as separate only when the
   log-density dips between them (a curved ridge has one mode, however a
   mixture splits it).
-* Varying scale (funnels): draws sorted by a candidate parameter ``v``; the
-  spread of each other parameter between neighbours in that order estimates
-  its conditional spread given ``v`` (a smooth trend in the mean cancels), and
-  its ratio between the top and bottom fifth of ``v`` measures the funnel.
+* Varying scale (funnels): every other parameter is regressed linearly on a
+  candidate parameter ``v`` (which removes the trend of a correlated
+  Gaussian); the robust sd of the residuals in the top fifth of ``v``,
+  divided by that in the bottom fifth, measures the funnel.
 * Boundary pile-up: the histogram of a bounded parameter peaks in the bin
   next to the bound, and draws come within a small share of the sd of it.
-* Heavy tails: sample excess kurtosis well above 0, with its standard error
-  ``sqrt(24 / n_eff)`` (the large-sample value for a Gaussian).
+* Heavy tails: sample excess kurtosis well above 0, measured against
+  ``sqrt(24 / n_eff)``, its large-sample standard error when the draws are
+  Gaussian (the null). That is not the standard error of the estimate itself,
+  which heavy tails make larger and which is not computed.
 
 Every detector says when it has too few draws to decide instead of guessing.
 
@@ -414,9 +416,9 @@ def heavy_tail_findings(draws: np.ndarray, ess: np.ndarray, names: list) -> list
                     "heavy-tails",
                     "warn",
                     [names[i]],
-                    f"{names[i]} has excess kurtosis {k:.1f} +/- {se:.1f} (0 for a Gaussian): its tails are much "
-                    "heavier than a Gaussian's, so a proposal scaled to the bulk explores them slowly and tail "
-                    "quantiles converge last. A log or other transform may tame them; check tail ESS.",
+                    f"{names[i]} has excess kurtosis {k:.1f} (a Gaussian gives 0, with standard error {se:.2f} at this "
+                    "ESS): its tails are much heavier than a Gaussian's, so a proposal scaled to the bulk explores them "
+                    "slowly and tail quantiles converge last. A log or other transform may tame them; check tail ESS.",
                     {"excess_kurtosis": float(k), "standard_error": float(se)},
                 )
             )

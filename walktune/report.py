@@ -340,7 +340,7 @@ def figure_needed(run: Run):
 FIGURES = [
     ("traces", figure_traces, "Traces of each parameter, pilot and tuned run, one colour per chain."),
     ("pairs", figure_pairs, "The most strongly correlated pairs, with the principal axes of their covariance."),
-    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix: the pinned directions are the ones a diagonal proposal crawls along; with a prior given apart, the directions the data inform."),
+    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix: the pinned directions (small eigenvalues) cap the step a diagonal proposal can take, so it crawls along the widest ones (large eigenvalues); with a prior given apart, the directions the data inform."),
     ("autocorrelation", figure_autocorrelation, "Autocorrelation of the slowest parameter for the baseline and the tuned proposal."),
     ("ess", figure_ess, "Effective samples per 1000 evaluations for every proposal measured."),
     ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted."),
@@ -378,7 +378,8 @@ def _plain_advice(advice: dict) -> list:
         lines.append("Use the proposal covariance in proposal_covariance.csv (the covariance of the draws scaled for their dimension).")
     lines.append(f"Expect an acceptance rate near {advice['expected_acceptance']:.2f}. If your sampler takes only step sizes, "
                  "use step_sizes.csv, but expect it to be slower "
-                 f"(about {advice['predicted_slowdown']['step_sizes']['slowest']:.1f}x in the slowest direction).")
+                 f"(predicted about {advice['predicted_slowdown']['step_sizes']['slowest_parameter']:.1f}x lower smallest ESS "
+                 "per evaluation).")
     critical = [f for f in advice.get("findings", []) if f["severity"] == "critical"]
     if critical:
         lines.append("Before anything else: " + "; ".join(f["kind"] for f in critical) + " (see the findings).")

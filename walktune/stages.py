@@ -217,7 +217,8 @@ def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, 
 class PlannedRun:
     """A fixed-proposal proof run to make: its name, description and proposal covariance.
 
-    ``predicted`` is the predicted slow-down against the tuned covariance (NaN
+    ``predicted`` is the predicted slow-down of the smallest per-parameter ESS
+    against the tuned covariance (``theory.Slowdown.slowest_parameter``; NaN
     when there is none); ``independent`` lists coordinates proposed
     independently (the reduced-basis run), or None.
     """
@@ -319,6 +320,9 @@ class ComparisonRow:
     ``ess_per_1000`` is the smallest bulk ESS over parameters per 1000
     evaluations; ``speedup`` its ratio to the baseline's. When the baseline
     chain was too short to estimate its ESS, the speed-up is a lower bound.
+    ``predicted_slowdown`` is the predicted ratio of the tuned run's smallest
+    ESS to this run's (``theory.Slowdown.slowest_parameter``), so it compares
+    with the tuned row's speed-up divided by this row's.
     """
 
     proposal: str
@@ -417,15 +421,15 @@ def _user_space_plan(advice: Advice, current: np.ndarray | None, dim: int) -> li
     """The baseline (the user's proposal, or one tuned step size), per-parameter steps, the tuned covariance."""
     slowdowns = advice.slowdowns
     if current is not None:
-        baseline = PlannedRun("current", "the proposal you use now", current, slowdowns["current"]["slowest"])
+        baseline = PlannedRun("current", "the proposal you use now", current, slowdowns["current"]["slowest_parameter"])
     else:
         single = advice.single_step
         baseline = PlannedRun("single-step", f"one tuned step size {single:.3g} for all parameters",
-                              single**2 * np.eye(dim), slowdowns["single_step"]["slowest"])
+                              single**2 * np.eye(dim), slowdowns["single_step"]["slowest_parameter"])
     return [
         baseline,
         PlannedRun("step-sizes", "tuned per-parameter step sizes", np.diag(advice.step_sizes**2),
-                   slowdowns["step_sizes"]["slowest"]),
+                   slowdowns["step_sizes"]["slowest_parameter"]),
         PlannedRun("tuned-covariance", "the tuned full proposal covariance", advice.proposal_covariance, 1.0),
     ]
 
