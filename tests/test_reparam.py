@@ -19,13 +19,12 @@ import walktune
 from conftest import load_demo
 from walktune import diagnostics as D
 from walktune.errors import WalktuneError
+from walktune.informed import PRIOR_DOMINATED, informed_threshold
 from walktune.reparam import (
     KINDS,
-    PRIOR_DOMINATED,
     TransformChoice,
     fit_map,
     forward,
-    informed_threshold,
     inverse,
     load_reparam,
     log_jacobian,

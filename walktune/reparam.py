@@ -32,61 +32,31 @@ with the Jacobian counted: per parameter
 multivariate Gaussian), which rewards transforms that straighten a curved
 ridge between parameters.
 
-The informed split is a variant of the likelihood-informed subspace of Cui,
-Martin, Marzouk, Solonen and Spantini (2014) (also Cui, Law and Marzouk 2016).
-They take the subspace from the posterior-averaged Hessian of the
-log-likelihood against the prior covariance; here it comes from the
-generalised eigenproblem of the posterior covariance against the prior
-covariance, which needs no derivatives. The two agree for linear-Gaussian
-models, where the posterior precision is the prior precision plus the
-(constant) likelihood Hessian. In whitened coordinates the prior covariance is
-``C = W^{-1} S_prior W^{-T} = Q diag(c) Q^T``; along column k of ``Q`` the
-posterior variance is ``r_k = 1/c_k`` times the prior's. A direction counts as
-informed when ``r_k`` is below a threshold calibrated by simulating the case
-"posterior = prior" (:func:`informed_threshold`): then ``1/c`` are the
-eigenvalues of a white sample covariance, which spread about
-``(1 +/- sqrt(d/n))^2`` around 1 (Marchenko-Pastur).
+The informed split (:mod:`walktune.informed`) chooses ``Q``: its first ``r``
+columns are the directions where the posterior variance is markedly below the
+prior's, a variant of the likelihood-informed subspace of Cui et al. (2014).
 
 References
 ----------
 Box, G. E. P. and Cox, D. R. (1964). An analysis of transformations. JRSS B, 26(2), 211-252.
 Cui, T., Martin, J., Marzouk, Y. M., Solonen, A. and Spantini, A. (2014). Likelihood-informed
 dimension reduction for nonlinear inverse problems. Inverse Problems, 30, 114015.
-Cui, T., Law, K. J. H. and Marzouk, Y. M. (2016). Dimension-independent likelihood-informed
-MCMC. Journal of Computational Physics, 304, 109-137.
-Dumitriu, I. and Edelman, A. (2002). Matrix models for beta ensembles. Journal of
-Mathematical Physics, 43(11), 5830-5847.
 """
 
 from __future__ import annotations
 
-import functools
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from scipy import linalg, special
+from scipy import special
 
 from .errors import WalktuneError
+from .informed import PRIOR_DOMINATED, informed_split, informed_threshold  # noqa: F401 (re-exported)
 
 SCHEMA = "walktune.reparam/1"
 KINDS = ("identity", "log", "neglog", "logit")
-
-#: A direction whose posterior variance is at least this share of its prior
-#: variance counts as prior-dominated, however many draws there are (common
-#: practice: keep only directions where the data reduce the variance markedly).
-PRIOR_DOMINATED = 0.9
-
-#: Expected number of directions that sampling noise alone calls informed when
-#: the posterior equals the prior (calibrated here, by simulation of that null;
-#: half of the 0.1 aimed at, which leaves room for the calibration's own error).
-FALSE_INFORMED = 0.05
-
-#: Simulated white sample covariances behind each calibrated threshold: the
-#: threshold is the 100th smallest of their pooled eigenvalues, so the simulated
-#: expected false count at it is 0.0495, with a Monte Carlo error of about 10%.
-NULL_REPLICATES = 2000
 
 
 # --------------------------------------------------------------------------- transforms
@@ -472,65 +442,6 @@ def build_reparam(
     return fit_map(list(names), choices, u.mean(axis=0), cov_u, prior_covariance, n_independent)
 
 
-def informed_threshold(dim: int, n_independent=None) -> float:
-    """Posterior/prior variance ratio below which a direction counts as informed.
-
-    Parameters
-    ----------
-    dim : int
-        Number of directions ``d``.
-    n_independent : float, optional
-        Roughly independent draws behind the posterior covariance estimate.
-        Without it, :data:`PRIOR_DOMINATED`.
-
-    Returns
-    -------
-    float
-        The smaller of :data:`PRIOR_DOMINATED` (0.9) and the ratio ``t`` at
-        which, when the posterior equals the prior, the expected number of
-        ratios below ``t`` is :data:`FALSE_INFORMED` (0.05). Then the ratios are
-        the eigenvalues of the sample covariance of ``n`` independent standard
-        normal draws in ``d`` dimensions; ``t`` comes from simulating them
-        (:func:`_null_threshold`). With fewer than ``d + 1`` draws some of them
-        are 0 and no direction can be told apart from noise: ``t = 0``.
-    """
-    if not n_independent:
-        return PRIOR_DOMINATED
-    return min(PRIOR_DOMINATED, _null_threshold(int(dim), int(round(n_independent))))
-
-
-@functools.lru_cache(maxsize=128)
-def _null_threshold(dim: int, n_draws: int) -> float:
-    """Lower tail of the eigenvalues of a white sample covariance, by simulation.
-
-    ``(n - 1) S`` of ``n`` draws from ``N(0, I_d)`` is Wishart with ``n - 1``
-    degrees of freedom; its eigenvalues have the law of those of ``B B^T`` with
-    ``B`` lower bidiagonal, ``B_ii = chi_{n-1-i}`` and ``B_{i+1,i} =
-    chi_{d-1-i}`` (Dumitriu and Edelman 2002), a tridiagonal matrix whose few
-    smallest eigenvalues cost ``O(d)``, so calibrating ``d = 300`` takes about
-    a second (checked against direct simulation in tests/test_reparam.py).
-    Returns the :data:`NULL_REPLICATES` x :data:`FALSE_INFORMED`-th smallest of
-    the pooled eigenvalues (only the 4 smallest per replicate are computed; a
-    fifth below the threshold has negligible probability). Cached by
-    ``(dim, n_draws)``; the stream is fixed so the threshold is a deterministic
-    function of them.
-    """
-    df = n_draws - 1
-    if df < dim:
-        return 0.0
-    rng = np.random.default_rng([dim, n_draws, 2014])
-    lowest = min(dim, 4)
-    values = np.empty((NULL_REPLICATES, lowest))
-    for r in range(NULL_REPLICATES):
-        diagonal = np.sqrt(rng.chisquare(df - np.arange(dim)))
-        below = np.sqrt(rng.chisquare(np.arange(dim - 1, 0, -1)))
-        main = diagonal**2
-        main[1:] += below**2
-        values[r] = linalg.eigvalsh_tridiagonal(main, diagonal[:-1] * below, select="i", select_range=(0, lowest - 1))
-    k = int(np.ceil(FALSE_INFORMED * NULL_REPLICATES))
-    return float(np.partition(values.ravel(), k - 1)[k - 1] / df)
-
-
 def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None) -> Reparam:
     """The map for given transforms, u-space mean and covariance, and (optionally) the prior covariance of theta."""
     kinds = [c.kind for c in choices]
@@ -545,15 +456,10 @@ def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior
         theta_mean = np.array([inverse(k, mean[i], low[i], high[i]) for i, k in enumerate(kinds)])
         slope = np.exp(-np.array([log_jacobian(k, mean[i], low[i], high[i]) for i, k in enumerate(kinds)]))
         prior_u = np.asarray(prior_covariance) * np.outer(slope, slope)
-        white = np.linalg.solve(chol, np.linalg.solve(chol, prior_u).T)
-        c, vectors = np.linalg.eigh(0.5 * (white + white.T))
-        order = np.argsort(-c)  # widest prior (most informed) first
-        c, vectors = c[order], vectors[:, order]
-        ratio = 1.0 / np.maximum(c, 1e-300)
-        threshold = informed_threshold(d, n_independent)
-        informed = int(np.sum(ratio < threshold))
-        rotation = vectors
-        notes.append(f"likelihood-informed subspace: {informed} of {d} directions (posterior/prior variance < {threshold:.2f}); "
+        split = informed_split(chol, prior_u, n_independent)
+        rotation, informed, ratio = split.rotation, split.informed, split.ratio
+        notes.append(f"likelihood-informed subspace: {informed} of {d} directions "
+                     f"(posterior/prior variance < {split.threshold:.2f}); "
                      f"prior covariance mapped at theta = {np.array2string(theta_mean, precision=4)}")
     return Reparam(list(names), list(choices), mean, chol, rotation, informed, ratio, notes)
 
