@@ -119,6 +119,11 @@ def test_more_draws_needed_follows_the_ess():
     assert result.more_draws_observed[0] == pytest.approx(4000, rel=0.2)
     mcse_result = inspect(x, target_mcse=0.005)  # needs ESS (1 / 0.005)^2 = 40000
     assert mcse_result.needed_ess[0] == pytest.approx(40_000, rel=0.05)
+    # At the observed ESS of the mean (split chains, behind the MCSE) per draw:
+    s = mcse_result.summary
+    expected = (s.sd[0] / 0.005) ** 2 / (s.ess[0] / 4000) - 4000
+    assert mcse_result.more_draws_observed[0] == pytest.approx(expected, rel=1e-12)
+    assert mcse_result.more_draws_observed[0] == pytest.approx(36_000, rel=0.2)  # iid: ESS about S
 
 
 def test_npz_layouts_and_several_files(tmp_path):

@@ -338,11 +338,14 @@ def inspect(
     advice = advise(covariance, current=current)
 
     needed = np.full(d, float(target_ess))
-    if target_mcse is not None:
-        needed = np.maximum(needed, (s.sd / np.asarray(target_mcse, dtype=float)) ** 2)
     total = m * n
-    per_draw = s.bulk_ess / total
-    more_observed = np.maximum(0.0, needed / per_draw - total)
+    more_observed = np.maximum(0.0, needed / (s.bulk_ess / total) - total)
+    if target_mcse is not None:
+        # MCSE = sd / sqrt(ESS) with the split-chain ESS of the mean (s.ess), so the
+        # draws an MCSE target needs follow that ESS per draw, not the bulk ESS.
+        mean_ess_needed = (s.sd / np.asarray(target_mcse, dtype=float)) ** 2
+        needed = np.maximum(needed, mean_ess_needed)
+        more_observed = np.maximum(more_observed, mean_ess_needed / (s.ess / total) - total)
     advised_total = needed / theory.optimal_efficiency(d)
 
     rate = float(np.mean(chain_moves))
