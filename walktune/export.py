@@ -5,6 +5,11 @@ Output folder of a tuning run:
 * ``advice.json``: everything, schema ``walktune.advice/1`` (docs/advice-schema.md);
 * ``proposal_covariance.npy`` and ``proposal_covariance.csv`` (header row of names);
 * ``step_sizes.csv``: one row of per-parameter proposal sds, header of names;
+* ``recommended_proposal.npy`` and ``.csv``: the proposal covariance of the
+  recommended option (advice.json ``recommended``), whichever it is: the tuned
+  covariance, per-parameter steps as a diagonal covariance, one step size, your
+  current proposal, or, for the runs in new coordinates, the covariance in the
+  sampler coordinates of ``reparam.json`` (headed ``z[i]``);
 * ``draws.npz``: the proof runs' draws, one array per proposal shaped (chains, steps, d),
   the pilot's stages one after another (``pilot``), plus ``parameter_names``.
 """
@@ -37,6 +42,11 @@ def result_files(result) -> dict:
         "step_sizes.csv": csv_bytes(result.step_sizes[None, :], names),
         "draws.npz": npz_bytes(arrays),
     }
+    if result.recommended_proposal is not None:
+        in_new_coordinates = result.recommended is not None and result.recommended.coordinates != "parameters"
+        header = [f"z[{i}]" for i in range(len(names))] if in_new_coordinates else names
+        files["recommended_proposal.npy"] = npy_bytes(result.recommended_proposal)
+        files["recommended_proposal.csv"] = csv_bytes(result.recommended_proposal, header)
     if result.reparam is not None:
         files["reparam.json"] = json_bytes(result.reparam.to_dict())
     return files
