@@ -188,7 +188,10 @@ def test_pairs_figure_shows_the_transformed_coordinates_when_chosen(tmp_path):
     fig = build_figures(run)["pairs"]
     lower = fig.axes[1]
     assert lower.get_xlabel() == "log(a)" and lower.get_ylabel() == "logit(e)"
-    flat = run.draws["tuned-covariance"].reshape(-1, 2)
+    # The pairs are drawn from the recommended run's draws, and the figure says so.
+    assert run.main == result.recommended.proposal
+    assert f"draws of the {run.main} run" in fig._suptitle.get_text()
+    flat = run.draws[run.main].reshape(-1, 2)
     stride = int(np.ceil(flat.shape[0] / 2000))
     expected = np.column_stack([forward("log", flat[::stride, 0], 0, np.inf), forward("logit", flat[::stride, 1], 0, 1)])
     np.testing.assert_allclose(np.asarray(lower.collections[0].get_offsets()), expected)
