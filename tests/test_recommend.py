@@ -163,3 +163,17 @@ def test_gamma_shape_below_one_beside_correlated_gaussians_completes_and_reports
     # No option measured faster than the recommended one beyond the error.
     assert not any(R.measured_faster(other, row) for other in result.comparison)
     assert (tmp_path / "recommended_proposal.npy").exists()
+
+    # The terminal leads with the recommendation, takes the posterior table from that run and says so,
+    # and prints an absurd predicted slow-down as a bound.
+    from rich.console import Console
+
+    from walktune.console import render
+
+    result.advice.slowdowns["step_sizes"]["slowest"] = 7e60
+    console = Console(width=200, record=True)
+    render(console, result, "gamma", str(tmp_path))
+    text = " ".join(console.export_text().split())  # titles wrap at the table's width
+    assert text.index("RECOMMENDED") < text.index("Measured") < text.index("Posterior")
+    assert f"from the {result.recommended.proposal} fixed-proposal run" in text
+    assert "> 1e6x" in text and "e+60" not in text

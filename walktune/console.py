@@ -158,16 +158,16 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     steps = result.slowdowns["step_sizes"]
     table.add_row(
         "step sizes only",
-        f"per-parameter steps in the posterior table (step_sizes.csv); predicted {format_factor(steps['slowest'], 2)} "
-        f"slower in the slowest direction, {format_factor(steps['mean'], 2)} on average",
+        f"per-parameter steps in the posterior table (step_sizes.csv); predicted {format_factor(steps['slowest'])} "
+        f"slower in the slowest direction, {format_factor(steps['mean'])} on average",
     )
     single = result.slowdowns["single_step"]
-    table.add_row("one step size", f"{result.single_step:.3g}; predicted {format_factor(single['slowest'], 2)} slower (slowest direction)")
+    table.add_row("one step size", f"{result.single_step:.3g}; predicted {format_factor(single['slowest'])} slower (slowest direction)")
     if "current" in result.slowdowns:
         cur, res = result.slowdowns["current"], result.slowdowns["current_rescaled"]
         table.add_row(
             "your proposal",
-            f"predicted {format_factor(cur['slowest'], 2)} slower as it is; {format_factor(res['slowest'], 2)} "
+            f"predicted {format_factor(cur['slowest'])} slower as it is; {format_factor(res['slowest'])} "
             "if only its overall scale were tuned",
         )
     reparam = result.reparam
@@ -351,11 +351,11 @@ def inspection_advice_table(result) -> Table:
     )
     steps = advice.slowdowns["step_sizes"]
     table.add_row("step sizes only", f"{', '.join(_fmt(x) for x in advice.step_sizes[:8])}{' ...' if d > 8 else ''}; "
-                  f"predicted {format_factor(steps['slowest'], 2)} slower in the slowest direction")
+                  f"predicted {format_factor(steps['slowest'])} slower in the slowest direction")
     if "current" in advice.slowdowns:
         cur, res = advice.slowdowns["current"], advice.slowdowns["current_rescaled"]
-        table.add_row("your proposal", f"predicted {format_factor(cur['slowest'], 2)} slower than the advice as it is; "
-                      f"{format_factor(res['slowest'], 2)} if only its overall scale were tuned")
+        table.add_row("your proposal", f"predicted {format_factor(cur['slowest'])} slower than the advice as it is; "
+                      f"{format_factor(res['slowest'])} if only its overall scale were tuned")
     advised = float(np.nanmax(result.more_draws_advised))
     table.add_row("draws needed", f"with the advised proposal about {_fmt(advised, 3)} draws in all for the ESS wanted "
                   f"(optimal-scaling theory), against {_fmt(float(np.nanmax(result.more_draws_observed)), 3)} more at the observed efficiency")

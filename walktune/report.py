@@ -403,7 +403,7 @@ def _plain_advice(advice: dict) -> list:
     else:
         lines.append("Use the proposal covariance in proposal_covariance.csv (the covariance of the draws scaled for their dimension).")
     lines.append("If your sampler takes only step sizes, use step_sizes.csv; theory predicts it "
-                 f"{format_factor(advice['predicted_slowdown']['step_sizes']['slowest'], 2)} slower than the tuned "
+                 f"{format_factor(advice['predicted_slowdown']['step_sizes']['slowest'])} slower than the tuned "
                  "covariance in the slowest direction.")
     table = advice.get("posterior_table")
     if table and not table.get("converged", True):
