@@ -205,3 +205,26 @@ def test_spectrum_marks_informed_directions_when_a_prior_was_given(tmp_path):
     folder = walktune.tune(log_likelihood, [1.0, 0.0], names=["a", "b"], prior=prior, seed=1, budget=30_000).save(tmp_path / "o")
     fig = build_figures(load_run(folder))["spectrum"]
     assert len(fig.axes) == 2 and fig.axes[1].get_title() == "1 of 2 directions informed"
+
+
+def test_plain_words_quote_the_recommended_rows_speedup():
+    """The sentence names the recommended run and its own speed-up, not the last row's."""
+    from walktune.report import _plain_advice
+
+    def row(name, speedup, kind, acceptance):
+        return {"proposal": name, "speedup": speedup, "speedup_kind": kind, "acceptance": acceptance,
+                "ess_reliable": kind != "rough", "ess_per_1000": 10 * speedup}
+
+    advice = {
+        "comparison": [row("single-step", 1.0, "baseline", 0.3), row("step-sizes", 6.25, "measured", 0.28),
+                       row("tuned-covariance", 1.5, "rough", 0.2)],
+        "recommended": {"proposal": "step-sizes", "keep_current": False, "resolved": True, "coordinates": "parameters",
+                        "message": ""},
+        "predicted_slowdown": {"step_sizes": {"slowest": 7e60}},
+        "posterior_table": {"run": "step-sizes", "converged": False},
+    }
+    text = " ".join(_plain_advice(advice))
+    assert "Use step-sizes" in text and "6.25x" in text and "1.5x" not in text
+    assert "0.28" in text  # the acceptance measured in that run
+    assert "> 1e6x" in text and "e+60" not in text
+    assert "have not converged" in text

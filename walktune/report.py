@@ -355,10 +355,10 @@ FIGURES = [
     ("traces", figure_traces, "Traces of each parameter in the pilot and in the recommended run, one colour per chain."),
     ("pairs", figure_pairs, "The pairs most correlated in the pilot's covariance estimate, drawn from the recommended run's "
      "draws, with the principal axes of their covariance in those draws; each panel gives both correlations."),
-    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix: the pinned directions are the ones a diagonal proposal crawls along; with a prior given apart, the directions the data inform."),
+    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix of the pilot's covariance estimate: the pinned directions are the ones a diagonal proposal crawls along; with a prior given apart, the directions the data inform."),
     ("autocorrelation", figure_autocorrelation, "Autocorrelation of the slowest parameter in the baseline run and the recommended run."),
-    ("ess", figure_ess, "Effective samples per 1000 evaluations for every proposal measured."),
-    ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted."),
+    ("ess", figure_ess, "Effective samples per 1000 evaluations in every proof run (fixed proposals, equal budgets)."),
+    ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted, at the efficiency measured in its proof run."),
 ]
 
 

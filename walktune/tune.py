@@ -392,7 +392,8 @@ def _guarded(checkpoint, tracker):
         _keep_checkpoint(checkpoint, error)
         text = str(error).strip().splitlines()[0] if str(error).strip() else ""
         raise NumericalFailure(
-            f"numerical failure in the {tracker.stage or 'setup'} stage ({type(error).__name__}: {text}); "
+            f"numerical failure in the tuning job ({type(error).__name__}: {text}; last stage reported: "
+            f"{tracker.stage or 'none'}); "
             "the posterior may be degenerate there (a density unbounded at a bound, a flat or singular direction). "
             "Try bounds or a transform for the parameters involved, or report this with the model."
         ) from error
