@@ -50,6 +50,9 @@ def test_every_figure_is_written_and_the_page_embeds_them(tuned_folder):
     # The page opens with the advice, then findings, and carries the caution.
     assert text.index("Advice in plain words") < text.index("Findings") < text.index("Figures")
     assert "never prove" in text
+    # The posterior table names the one run its numbers come from: the recommended one.
+    advice = json.loads((tuned_folder / "advice.json").read_text())
+    assert f"Posterior (from the {advice['recommended']['proposal']} fixed-proposal run)" in text
 
 
 def test_page_has_no_network_reference_and_no_script(tuned_folder):

@@ -435,6 +435,30 @@ figcaption { font-size: .9em; color: #555; }
 """
 
 
+def _posterior_html(advice: dict, names: list) -> list:
+    """The posterior table of a tuning run: mean, MCSE, sd and R-hat from the one run it names."""
+    table = advice.get("posterior_table")
+    if not table:
+        return []
+    esc = html.escape
+    parts = [f"<h2>Posterior (from the {esc(table['run'])} fixed-proposal run)</h2>"]
+    if not table.get("converged", True):
+        parts.append('<p class="partial">NOT CONVERGED: an R-hat is above 1.01 (marked !); these numbers are not '
+                     "trustworthy yet.</p>")
+    parts.append("<table><tr><th>parameter</th><th>mean</th><th>MCSE</th><th>sd</th><th>R-hat</th></tr>")
+
+    def cell(value, digits=4):
+        return "n/a" if value is None else f"{value:.{digits}g}"
+
+    for i, name in enumerate(names):
+        rhat = (table.get("rhat") or [None] * len(names))[i]
+        flag = " !" if rhat is None or rhat > 1.01 else ""
+        parts.append(f"<tr><td>{esc(name)}</td><td>{cell(table['mean'][i], 5)}</td><td>{cell(table['mcse'][i], 2)}</td>"
+                     f"<td>{cell((table.get('sd') or [None] * len(names))[i])}</td><td>{cell(rhat)}{flag}</td></tr>")
+    parts.append("</table>")
+    return parts
+
+
 def render_html(run: Run, pngs: dict) -> str:
     a = run.advice
     esc = html.escape
@@ -474,6 +498,7 @@ def render_html(run: Run, pngs: dict) -> str:
             parts.append(f"<tr><td>{esc(r['proposal'])}</td><td>{r['acceptance']:.2f}</td><td>{(r['ess_per_1000'] or 0):.3g}</td>"
                          f"<td>{(r['median_ess_per_1000'] or 0):.3g}</td><td>{r['evaluations']}</td><td>{speed}</td></tr>")
         parts.append("</table>")
+    parts += _posterior_html(a, run.names)
     parts.append("<h2>Figures</h2>")
     for name, _, caption in FIGURES:
         if name in pngs:
