@@ -164,6 +164,10 @@ def test_gamma_shape_below_one_beside_correlated_gaussians_completes_and_reports
     # No option measured faster than the recommended one beyond the error.
     assert not any(R.measured_faster(other, row) for other in result.comparison)
     assert (tmp_path / "recommended_proposal.npy").exists()
+    # pilot_converged, the findings and the table agree.
+    kinds = {f.kind for f in result.findings}
+    assert ("not-converged" in kinds) == (not result.converged)
+    assert result.pilot_converged == (("pilot-unsettled" not in kinds) and ("not-converged" not in kinds))
 
     # The terminal leads with the recommendation, takes the posterior table from that run and says so,
     # and prints an absurd predicted slow-down as a bound.

@@ -231,3 +231,12 @@ def test_plain_words_quote_the_recommended_rows_speedup():
     assert "0.28" in text  # the acceptance measured in that run
     assert "> 1e6x" in text and "e+60" not in text
     assert "have not converged" in text
+
+
+def test_figures_survive_a_run_in_which_no_chain_moved(tuned_folder):
+    """A stuck run has no meaningful autocorrelation time (it can come out NaN); the report must still draw."""
+    run = load_run(tuned_folder)
+    stuck = np.broadcast_to(run.draws[run.main][:1, :1], run.draws[run.main].shape).copy()  # one point, every chain
+    run.draws[run.main] = stuck
+    figures = build_figures(run)
+    assert figures["autocorrelation"] is not None and figures["traces"] is not None

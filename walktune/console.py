@@ -228,7 +228,7 @@ def speedup_cell(row) -> str:
         return "<= " + value
     if kind == "rough":
         settle = row.evaluations_to_settle
-        return f"~{value} (rough; " + (f"~{_fmt(settle, 2)} evals each would settle it)" if settle else "a run has not mixed)")
+        return f"~{value} (rough; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
     return value
 
 

@@ -278,10 +278,11 @@ def figure_autocorrelation(run: Run):
     for label in labels:
         draws = run.draws[label]
         tau = _iact_per_parameter(run, label)
-        slowest = int(np.nanargmax(tau))
+        slowest = int(np.nanargmax(tau)) if np.any(np.isfinite(tau)) else 0  # all NaN: no chain moved
         column = np.asarray(draws[:, :, [slowest]], dtype=float)
         curves[label] = (slowest, float(np.asarray(iact(column))[0]), autocorrelation(column)[:, 0])
-    reach = int(min(max(5 * max(c[1] for c in curves.values()), 20), min(run.draws[l].shape[1] for l in labels) - 1))
+    longest = max((c[1] for c in curves.values() if np.isfinite(c[1])), default=4.0)
+    reach = int(min(max(5 * longest, 20), min(run.draws[l].shape[1] for l in labels) - 1))
     for label, (slowest, tau, rho) in curves.items():
         ax.plot(np.arange(reach + 1), rho[: reach + 1], color=PROPOSAL_COLOURS.get(label, "#555555"),
                 label=f"{label}: {run.names[slowest]} (IACT {tau:.3g})")
@@ -492,7 +493,7 @@ def render_html(run: Run, pngs: dict) -> str:
             kind = r.get("speedup_kind") or ("lower-bound" if r.get("speedup_is_lower_bound") else "measured")
             speed = esc(speedup_text(r["speedup"], kind)) if r.get("speedup") is not None else "n/a"
             if kind == "rough" and r.get("evaluations_to_settle"):
-                speed += f" (about {r['evaluations_to_settle']:,} evaluations would settle it)"
+                speed += f" (about {r['evaluations_to_settle']:,} evaluations in all, over both runs, would settle it)"
             if r["proposal"] == (a.get("recommended") or {}).get("proposal"):
                 speed += " &larr; recommended"
             parts.append(f"<tr><td>{esc(r['proposal'])}</td><td>{r['acceptance']:.2f}</td><td>{(r['ess_per_1000'] or 0):.3g}</td>"
