@@ -219,3 +219,21 @@ def test_a_numerical_failure_inside_the_job_is_a_one_line_error(monkeypatch):
     assert isinstance(caught.value, WalktuneError)
     message = str(caught.value)
     assert "\n" not in message and "numerical failure" in message and "FloatingPointError" in message
+
+
+@pytest.mark.slow
+def test_a_current_proposal_at_the_optimum_is_kept():
+    """On a Gaussian, the optimal random-walk proposal is (2.38^2 / d) times the covariance (Roberts, Gelman and
+    Gilks 1997): a user already using it cannot be measured slower than walktune's tuned covariance, beyond the error,
+    and is told to keep it."""
+    import walktune
+
+    covariance = np.array([[4.0, 1.8], [1.8, 1.0]])
+    precision = np.linalg.inv(covariance)
+    optimal = 2.38**2 / 2 * covariance
+    result = walktune.tune(lambda x: -0.5 * x @ precision @ x, [0.3, -0.2], current_proposal=optimal, seed=4)
+    rows = {row.proposal: row for row in result.comparison}
+    assert not any(R.measured_faster(other, rows["current"]) for other in result.comparison)
+    assert result.recommended.proposal == "current" and result.recommended.keep_current
+    assert result.recommended.message.startswith("Keep your current proposal")
+    np.testing.assert_allclose(result.recommended_proposal, optimal)
