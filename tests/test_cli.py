@@ -105,6 +105,11 @@ def test_export_formats(tmp_path):
     namespace = {}
     exec((tmp_path / "tuned.py").read_text(), namespace)
     np.testing.assert_array_equal(np.array(namespace["PROPOSAL_COVARIANCE"]), cov)
+    # The recommended option's proposal, the same as the file saved beside advice.json.
+    assert run("export", out, "--recommended", "--to", tmp_path / "r.json").exit_code == 0
+    exported = json.loads((tmp_path / "r.json").read_text())
+    assert exported["proposal"] == advice["recommended"]["proposal"]
+    np.testing.assert_array_equal(np.array(exported["proposal_covariance"]), np.load(out / "recommended_proposal.npy"))
     assert_one_line_error(run("export", out, "--to", tmp_path / "c.xyz"), "format")
     (tmp_path / "old.json").write_text(json.dumps({"schema": "walktune.advice/0"}))
     assert_one_line_error(run("export", tmp_path / "old.json", "--to", tmp_path / "c.npy"), "schema")

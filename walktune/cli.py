@@ -428,15 +428,18 @@ def export_command(
     fmt: Optional[str] = typer.Option(
         None, "--format", help="npy, csv, json or python (default: from the --to file's ending)."
     ),
+    recommended: bool = typer.Option(
+        False, "--recommended", help="Export the recommended option's proposal instead of the tuned covariance."
+    ),
 ):
-    """Convert the tuned proposal in advice.json to .npy, .csv, a small .json or a Python module."""
+    """Convert the tuned (or, with --recommended, the recommended) proposal in advice.json to .npy, .csv, a small .json or a Python module."""
     from .export import EXPORT_FORMATS, export_advice
 
     with _user_errors("export"):
         chosen = fmt or {".npy": "npy", ".csv": "csv", ".json": "json", ".py": "python"}.get(to.suffix)
         if chosen is None:
             raise WalktuneError(f"cannot tell the format from {to.name!r}; give --format ({', '.join(EXPORT_FORMATS)}).")
-        path = export_advice(source, to, chosen)
+        path = export_advice(source, to, chosen, recommended=recommended)
         _console().print(f"wrote {path}")
 
 

@@ -29,6 +29,7 @@ Schwarz, G. (1978). Estimating the dimension of a model. Annals of Statistics, 6
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -73,12 +74,18 @@ def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
     in different regions, which is what thinning for the detectors needs.
     """
     per_chain = np.array([np.asarray(iact(chain)) for chain in draws])
-    return float(over_parameters(np.median(per_chain, axis=0)))
+    # A chain that never moved has no autocorrelation time (NaN): it says nothing about thinning.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
+        per_parameter = np.nanmedian(per_chain, axis=0)
+    per_parameter = per_parameter[np.isfinite(per_parameter)]
+    return float(over_parameters(per_parameter)) if per_parameter.size else float(draws.shape[1])
 
 
 def _thin_to_independent(draws: np.ndarray, tau: float, limit: int = 4000) -> np.ndarray:
     """Flatten (chains, n, d) draws, keeping about one per autocorrelation time (at most ``limit``)."""
     m, n, d = draws.shape
+    tau = tau if np.isfinite(tau) else float(n)  # unknown: keep one draw per chain
     step = max(1, int(np.ceil(tau)), int(np.ceil(m * n / limit)))
     return draws[:, ::step].reshape(-1, d)
 

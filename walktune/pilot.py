@@ -110,7 +110,10 @@ def shrunk_covariance(draws: np.ndarray, reference: np.ndarray, within_chains: b
     flat = (draws - centre).reshape(-1, d)
     white = np.linalg.solve(chol, flat.T).T
     sample_cov = np.atleast_2d(np.cov(white, rowvar=False))
-    tau = float(np.max(iact(white.reshape(m, n, d)))) if n >= 20 else 1.0
+    tau = np.asarray(iact(white.reshape(m, n, d))) if n >= 20 else np.ones(1)
+    # A direction in which no chain moved has no autocorrelation time (NaN); with none
+    # known, keep one draw per chain.
+    tau = float(np.max(tau[np.isfinite(tau)])) if np.any(np.isfinite(tau)) else float(n)
     step = max(1, int(np.ceil(tau)))
     thinned = white.reshape(m, n, d)[:, ::step].reshape(-1, d)
     shrinkage = float(ledoit_wolf_shrinkage(thinned, assume_centered=True)) if thinned.shape[0] > 1 else 1.0
