@@ -40,6 +40,8 @@ class BatchResult:
 
 
 def _to_scalar(value) -> float:
+    if value is None:
+        raise TypeError("the log-density returned None instead of a number (is a return statement missing?)")
     array = np.asarray(value, dtype=float)
     if array.size != 1:
         raise TypeError(f"the log-density must return one number per point; it returned shape {array.shape}")
@@ -67,6 +69,17 @@ class InProcessEvaluator:
         return _to_scalar(self.log_density(point))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
+        try:
+            return self._evaluate(points)
+        except SystemExit as exit_:
+            from .errors import TargetError
+
+            raise TargetError(
+                f"the model exited (it called sys.exit({exit_.code!r}) or raised SystemExit) while evaluating the "
+                "log-density; a log-density must return a number (-inf outside the support), not exit."
+            ) from None
+
+    def _evaluate(self, points: np.ndarray) -> BatchResult:
         if self.vectorized:
             try:
                 values = np.asarray(self.log_density(points), dtype=float).reshape(-1)
