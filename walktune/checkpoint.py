@@ -214,6 +214,7 @@ class Checkpoint:
         self._saved_batches = 0
         self._last_save = clock()
         self.resumed_evaluations = 0
+        self.spot_checked = 0  # evaluations repeated on resume to check the model (see spot_check_batches)
         self._lock = None
         if resume:
             self._hold_folder()
@@ -305,6 +306,7 @@ class Checkpoint:
         """Evaluate a recorded batch again: the replay answers from the record and never calls the
         model, so this is what tells that the model (its code or its data) changed."""
         again = evaluator(points)
+        self.spot_checked += points.shape[0]
         recorded = self._values[batch]
         values = np.asarray(again.values, dtype=float)
         if not np.array_equal(values, recorded, equal_nan=True) or again.errors:
