@@ -237,30 +237,36 @@ def _tune_arguments(options: dict, spec) -> dict:
     )
 
 
-def _run_options(given: dict, out: Optional[Path], resume: Optional[Path], restart: bool = False):
-    """The output folder, the options of the run (a resumed run's own), the model, and the checkpoint identity."""
-    from .checkpoint import check_model_unchanged, options_for_new_run, options_for_resume
-    from .target import load_target
-
+def _output_folder(given: dict, out: Optional[Path], resume: Optional[Path], restart: bool) -> Path:
+    """The run's output folder, from --out or --resume."""
     if resume is not None:
         if restart:
             raise WalktuneError("--restart starts a new run and --resume continues one; give one of them.")
         if out is not None and out.resolve() != resume.resolve():
             raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
-        out = resume
+        return resume
+    if given["target"] is None:
+        raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
+    out = out if out is not None else Path("walktune-output")
+    if out.exists() and not out.is_dir():
+        raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
+    return out
+
+
+def _run_options(given: dict, out: Path, resume: Optional[Path], restart: bool = False):
+    """The options of the run (a resumed run's own) and the model; called with the folder locked."""
+    from .checkpoint import check_model_unchanged, options_for_new_run, options_for_resume
+    from .target import load_target
+
+    if resume is not None:
         options, stored = options_for_resume(resume, given, lambda text: load_target(text).canonical)
     else:
-        out = out if out is not None else Path("walktune-output")
-        if given["target"] is None:
-            raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
         options = options_for_new_run(out, given, restart=restart)
     spec = load_target(options["target"])
     if resume is not None:
         check_model_unchanged(resume, stored, spec.source_digest, spec.canonical)
     options["target"] = spec.canonical
-    if out.exists() and not out.is_dir():
-        raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
-    return out, options, spec
+    return options, spec
 
 
 def _interrupted(stop, out: Path, console: Console, emit, as_json: bool, quiet: bool) -> None:
@@ -281,25 +287,21 @@ def _interrupted(stop, out: Path, console: Console, emit, as_json: bool, quiet: 
     raise typer.Exit(128 + (stop.signum or 2)) from None
 
 
-def _claim_folder(out: Path, *, resume: bool, restart: bool, overwrite: bool):
-    """Lock the output folder before anything is written; make room for a new run (see docs/usage.md)."""
+def _make_room(out: Path, *, resume: bool, restart: bool, overwrite: bool) -> None:
+    """With the folder locked: --restart discards an interrupted run (saying so); a new run into another
+    run's files needs --overwrite (see docs/usage.md, "Output folders")."""
     from .checkpoint import discard_interrupted
-    from .outputs import FolderLock, check_free
+    from .outputs import RESULT_FILES, check_free
 
-    lock = FolderLock(out).acquire()
-    try:
-        if not resume:
-            if restart:
-                gone = discard_interrupted(out)
-                if gone:
-                    _console(stderr=True).print(
-                        f"--restart: discarded {' and '.join(gone)} of the earlier run in {out}", highlight=False
-                    )
-            check_free(out, overwrite=overwrite)
-    except BaseException:
-        lock.release()
-        raise
-    return lock
+    if resume:
+        return
+    check_free(out, overwrite=overwrite, names=RESULT_FILES)  # before anything is discarded
+    if restart:
+        gone = discard_interrupted(out)
+        if gone:
+            _console(stderr=True).print(
+                f"--restart: discarded {' and '.join(gone)} of the earlier run in {out}", highlight=False
+            )
 
 
 def _provenance(command: str, options: dict, spec=None) -> dict:
@@ -338,6 +340,8 @@ def _run_tune(
     restart: bool = False,
     command: str = "walktune tune",
 ) -> None:
+    from .outputs import FolderLock
+
     with _json_channel(as_json) as emit:
         given = {
             "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
@@ -345,10 +349,12 @@ def _run_tune(
             "no_transform": list(no_transform or []),
             "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
         }
-        out, options, spec = _run_options(given, out, resume, restart)
-        arguments = _tune_arguments(options, spec)
-        lock = _claim_folder(out, resume=resume is not None, restart=restart, overwrite=overwrite)
+        out = _output_folder(given, out, resume, restart)
+        lock = FolderLock(out).acquire()  # before anything is read from or written to the folder
         try:
+            options, spec = _run_options(given, out, resume, restart)
+            arguments = _tune_arguments(options, spec)
+            _make_room(out, resume=resume is not None, restart=restart, overwrite=overwrite)
             result = _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask, resume,
                               checkpoint_every, time_limit, threads)
             produced_by = _provenance(command, options, spec)

@@ -132,9 +132,9 @@ def walktune_files(folder, names=RUN_FILES) -> list:
     return [name for name in names if (folder / name).exists()]
 
 
-def check_free(folder, *, overwrite: bool) -> None:
-    """Refuse a folder holding another run's files unless ``overwrite`` (call with the lock held)."""
-    present = walktune_files(folder)
+def check_free(folder, *, overwrite: bool, names=RUN_FILES) -> None:
+    """Refuse a folder holding another run's files (of ``names``) unless ``overwrite`` (call with the lock held)."""
+    present = walktune_files(folder, names)
     if present and not overwrite:
         shown = ", ".join(present[:3]) + (", ..." if len(present) > 3 else "")
         raise WalktuneError(
