@@ -33,7 +33,6 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-import os
 import time
 import zipfile
 from pathlib import Path
