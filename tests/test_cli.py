@@ -116,6 +116,7 @@ def broken_models(tmp_path):
     (tmp_path / "textstart.py").write_text("PARAMETERS = {'a': 'one', 'b': 1.0}\ndef lp(x):\n    return 0.0\n")
     (tmp_path / "exits.py").write_text("import sys\nPARAMETERS = {'a': 0.0}\ndef lp(x):\n    sys.exit(3)\n")
     (tmp_path / "raises_exit.py").write_text("PARAMETERS = {'a': 0.0}\ndef lp(x):\n    raise SystemExit\n")
+    (tmp_path / "vnone.py").write_text("PARAMETERS = {'a': 0.0}\nVECTORIZED = True\ndef lp(x):\n    pass\n")
     (tmp_path / "none.py").write_text("PARAMETERS = {'a': 0.0}\ndef lp(x):\n    -0.5 * float(x @ x)\n")
     (tmp_path / "ok.py").write_text(
         "import numpy as np\nPARAMETERS = {'a': 0.0, 'b': 1.0}\nBOUNDS = {'b': (0, 10)}\n"
@@ -151,6 +152,8 @@ def broken_models(tmp_path):
         (["textstart.py:lp"], ["PARAMETERS", "number"]),
         (["exits.py:lp"], ["the model exited", "sys.exit(3)"]),
         (["raises_exit.py:lp"], ["the model exited"]),
+        (["exits.py:lp", "--workers", "2"], ["the model exited", "sys.exit(3)"]),  # in a worker process
+        (["vnone.py:lp"], ["returned None"]),
         (["none.py:lp"], ["returned None"]),
         (["ok.py:lp", "--target-ess", "-5"], ["`target_ess` must be a number > 0"]),
     ],
