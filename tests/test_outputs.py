@@ -158,10 +158,13 @@ def test_a_report_replaces_an_earlier_report_as_a_whole(finished, tmp_path):
     folder.mkdir()
     for path in finished.iterdir():
         (folder / path.name).write_bytes(path.read_bytes())
-    (folder / "pairs.png").write_bytes(b"a figure of an earlier report")
+    for name in FIGURE_NAMES:
+        (folder / f"{name}.png").write_bytes(b"a figure of an earlier report")
     result = runner.invoke(app, ["report", str(folder)])
     assert result.exit_code == 0, result.output
-    assert (folder / "pairs.png").read_bytes() != b"a figure of an earlier report" or not (folder / "pairs.png").exists()
+    for name in FIGURE_NAMES:  # each figure is this report's, or gone when this report has none of that kind
+        path = folder / f"{name}.png"
+        assert not path.exists() or path.read_bytes().startswith(b"\x89PNG"), name
 
 
 def test_a_lock_taken_and_released_leaves_no_new_empty_folder(tmp_path):
