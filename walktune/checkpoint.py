@@ -308,12 +308,16 @@ class Checkpoint:
         self.spot_checked += points.shape[0]
         recorded = self._values[batch]
         values = np.asarray(again.values, dtype=float)
-        if not np.array_equal(values, recorded, equal_nan=True) or again.errors:
-            where = "the start point" if batch == 0 else f"evaluations {self._value_offset + 1}-{self._value_offset + len(recorded)}"
+        differ = ~((values == recorded) | (np.isnan(values) & np.isnan(recorded)))
+        differ[list(again.errors)] = True
+        if differ.any():
+            j = int(np.flatnonzero(differ)[0])
+            where = "the start point" if batch == 0 else f"evaluation {self._value_offset + j + 1}"
+            now = "an error" if j in again.errors else repr(float(values[j]))
             raise WalktuneError(
-                f"the log-density now gives {values.tolist()} at {where} where the run checkpointed in "
-                f"{self.folder} recorded {recorded.tolist()}: the model or its data changed since. Resume with the "
-                "same model and data, or start a new run elsewhere; the checkpoint was left as it is."
+                f"the log-density now gives {now} at {where} where the run checkpointed in {self.folder} "
+                f"recorded {float(recorded[j])!r}: the model or its data changed since. Resume with the same model "
+                "and data, or start a new run elsewhere; the checkpoint was left as it is."
             )
 
     def stage_ended(self, stage: str, snapshot: dict | None = None) -> None:
