@@ -56,13 +56,13 @@ def _json_channel(enabled: bool):
     real = sys.stdout
     real.flush()
     try:
-        fd = real.fileno()
+        fd, err_fd = real.fileno(), sys.stderr.fileno()
     except (AttributeError, ValueError, OSError):
         fd = None  # not a file (a test runner's buffer): redirecting sys.stdout is enough
     saved = None
     if fd is not None:
         saved = os.dup(fd)
-        os.dup2(sys.stderr.fileno(), fd)
+        os.dup2(err_fd, fd)
 
     def emit(text: str) -> None:
         sys.stdout.flush()
