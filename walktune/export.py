@@ -28,7 +28,18 @@ from .io import csv_bytes, json_bytes, npy_bytes, npz_bytes, write_folder
 SUPPORTED_SCHEMAS = (ADVICE_SCHEMA,)
 
 
-def result_files(result) -> dict:
+def with_provenance(payload: dict, produced_by: dict | None) -> dict:
+    """advice.json's payload with ``produced_by``: what wrote it (docs/advice-schema.md)."""
+    from . import __version__
+
+    record = {"command": "Python API", "model_file": None, "model_sha256": None, "options": None}
+    record.update(produced_by or {})
+    record["walktune_version"] = __version__
+    return {**payload, "produced_by": record}
+
+
+def result_files(result, produced_by: dict | None = None) -> dict:
+    """name -> bytes of a tuning run's output folder; ``produced_by`` describes the command that ran it."""
     names = result.parameter_names
     arrays = {name.replace("-", "_"): run.draws for name, run in result.runs.items()}
     if result.pilot.all_draws:
@@ -36,7 +47,7 @@ def result_files(result) -> dict:
         arrays["pilot"] = np.concatenate(result.pilot.all_draws, axis=1)
     arrays["parameter_names"] = np.array(names)
     files = {
-        "advice.json": json_bytes(result.to_dict()),
+        "advice.json": json_bytes(with_provenance(result.to_dict(), produced_by)),
         "proposal_covariance.npy": npy_bytes(result.proposal_covariance),
         "proposal_covariance.csv": csv_bytes(result.proposal_covariance, names),
         "step_sizes.csv": csv_bytes(result.step_sizes[None, :], names),
@@ -69,7 +80,41 @@ def load_advice(path) -> dict:
             f"{path} has schema {schema!r}; this walktune reads {', '.join(SUPPORTED_SCHEMAS)}. "
             "Re-run `walktune tune` with this version."
         )
+    _check_payload(payload, path)
     return payload
+
+
+#: Keys every advice.json of a finished run has, whatever its source (docs/advice-schema.md).
+REQUIRED_KEYS = ("source", "parameter_names", "posterior_mean", "posterior_covariance", "proposal_covariance",
+                 "step_sizes", "expected_acceptance", "effective_dimension", "spectrum_decades",
+                 "correlation_eigenvalues", "predicted_slowdown", "target_ess", "evaluations_needed", "comparison",
+                 "findings")
+
+
+def _check_payload(payload: dict, path: Path) -> None:
+    """The keys and shapes that readers rely on; a one-line error names what is missing or wrong."""
+    missing = [key for key in REQUIRED_KEYS if key not in payload]
+    if missing:
+        raise WalktuneError(
+            f"{path} lacks {', '.join(missing[:4])}{', ...' if len(missing) > 4 else ''}: it is not a whole advice.json "
+            "of a finished run; write it again with `walktune tune` or `walktune inspect --out`."
+        )
+    names = payload["parameter_names"]
+    d = len(names) if isinstance(names, list) else -1
+    try:
+        shapes_ok = (
+            d > 0 and all(isinstance(n, str) for n in names)
+            and np.asarray(payload["proposal_covariance"], dtype=float).shape == (d, d)
+            and np.asarray(payload["posterior_covariance"], dtype=float).shape == (d, d)
+            and np.asarray(payload["step_sizes"], dtype=float).shape == (d,)
+        )
+    except (TypeError, ValueError):
+        shapes_ok = False
+    if not shapes_ok:
+        raise WalktuneError(
+            f"{path} is damaged: parameter_names must be a list of names, proposal_covariance and "
+            "posterior_covariance d x d numbers and step_sizes d numbers; write it again with walktune."
+        )
 
 
 EXPORT_FORMATS = ("npy", "csv", "json", "python")

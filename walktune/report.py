@@ -12,6 +12,8 @@ from __future__ import annotations
 import base64
 import html
 import io
+import zipfile
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -24,8 +26,8 @@ import numpy as np  # noqa: E402
 from .diagnostics import autocorrelation, iact  # noqa: E402
 from .errors import WalktuneError  # noqa: E402
 from .export import load_advice  # noqa: E402
+from .outputs import REPORT_FILES, FolderLock, replace_files  # noqa: E402
 from .recommend import format_factor, speedup_text  # noqa: E402
-from .io import write_folder  # noqa: E402
 
 #: Most points drawn per chain in a trace, and in a scatter over all chains.
 MAX_TRACE_POINTS = 1000
@@ -73,12 +75,14 @@ def load_run(folder) -> Run:
     folder = Path(folder)
     if not folder.is_dir():
         raise WalktuneError(f"{folder} is not a folder; point at a walktune output folder.")
+    if (folder / "checkpoint.npz").exists():
+        # An interrupted run has no draws to draw from; its partial advice is in partial-advice.json.
+        raise WalktuneError(
+            f"{folder} holds an interrupted run (checkpoint.npz); no report is made of a run that has not "
+            f"finished: finish it with `walktune tune --resume {folder}` (or start afresh with --restart), then "
+            "make the report."
+        )
     if not (folder / "advice.json").exists():
-        if (folder / "checkpoint.npz").exists():
-            raise WalktuneError(
-                f"{folder} holds an interrupted run (checkpoint.npz, partial-advice.json); finish it with "
-                f"`walktune tune --resume {folder}`, then make the report."
-            )
         raise WalktuneError(f"{folder} holds no walktune run (no advice.json); run `walktune tune` or `inspect --out` first.")
     advice = load_advice(folder)
     names = list(advice["parameter_names"])
@@ -103,10 +107,15 @@ def load_run(folder) -> Run:
     if not path.exists():
         raise WalktuneError(f"{path} is missing; the report needs the draws saved by `walktune tune`.")
     try:
-        archive = np.load(path, allow_pickle=False)
-        draws = {key: archive[key] for key in archive.files if key != "parameter_names"}
-    except (ValueError, OSError, EOFError) as error:
-        raise WalktuneError(f"{path} is not readable ({error}); re-run `walktune tune`.") from None
+        with np.load(path, allow_pickle=False) as archive:
+            draws = {key: archive[key] for key in archive.files if key != "parameter_names"}
+    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile, zlib.error) as error:
+        raise WalktuneError(f"{path} is damaged or not readable ({type(error).__name__}: {error}); "
+                            "re-run `walktune tune`.") from None
+    bad = [key for key, value in draws.items() if value.ndim != 3 or value.shape[2] != len(names)]
+    if bad:
+        raise WalktuneError(f"{path} is damaged: {bad[0]} is not shaped (chains, steps, {len(names)}); "
+                            "re-run `walktune tune`.")
     labels = {key.replace("_", "-"): value for key, value in draws.items()}
     if "tuned-covariance" not in labels:
         raise WalktuneError(f"{path} has no tuned-covariance run; re-run `walktune tune`.")
@@ -512,11 +521,15 @@ def render_html(run: Run, pngs: dict) -> str:
 
 def write_report(folder) -> Path:
     """Write the figures (PNG) and report.html into ``folder``; returns the page's path."""
-    run = load_run(folder)
-    figures = build_figures(run)
-    pngs = {name: _png(fig) for name, fig in figures.items() if fig is not None}
-    page = render_html(run, pngs).encode()
-    files = {f"{name}.png": data for name, data in pngs.items()}
-    files["report.html"] = page
-    write_folder(run.folder, files)
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise WalktuneError(f"{folder} is not a folder; point at a walktune output folder.")
+    with FolderLock(folder):  # no run may write the folder while its report is drawn from it
+        run = load_run(folder)
+        figures = build_figures(run)
+        pngs = {name: _png(fig) for name, fig in figures.items() if fig is not None}
+        page = render_html(run, pngs).encode()
+        files = {f"{name}.png": data for name, data in pngs.items()}
+        files["report.html"] = page
+        replace_files(run.folder, files, replaced=REPORT_FILES)  # no figure of an earlier report stays
     return run.folder / "report.html"

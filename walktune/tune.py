@@ -24,6 +24,7 @@ Every figure in the comparison comes from fixed-proposal chains.
 
 from __future__ import annotations
 
+import os
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -32,7 +33,7 @@ from typing import Callable
 import numpy as np
 
 from . import theory
-from ._validation import as_float_array, check_finite
+from ._validation import as_float_array, check_finite, check_positive_int, check_positive_number, check_seed
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
 from .checkpoint import Interrupted
@@ -235,12 +236,17 @@ class TuneResult:
             "converged": self.converged,
         }
 
-    def save(self, directory) -> Path:
-        """Write advice.json, the proposal covariance (.npy, .csv) and the draws (.npz) atomically."""
-        from .export import result_files
-        from .io import write_folder
+    def save(self, directory, produced_by: dict | None = None) -> Path:
+        """Write advice.json, the proposal covariance (.npy, .csv) and the draws (.npz) into ``directory``.
 
-        return write_folder(Path(directory), result_files(self))
+        The folder's earlier walktune files are replaced as a whole
+        (:func:`walktune.outputs.replace_files`). ``produced_by`` (command,
+        model file, its SHA-256, options) is recorded in advice.json.
+        """
+        from .export import result_files
+        from .outputs import replace_files
+
+        return replace_files(Path(directory), result_files(self, produced_by))
 
 
 def _json_float(value: float):
@@ -332,31 +338,50 @@ class _Inputs:
     seed: np.random.SeedSequence
 
 
-def _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator) -> _Inputs:
+def _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator,
+                  target_ess) -> _Inputs:
     start = as_float_array(start, "start")
     if start.ndim == 0:
         start = start.reshape(1)
-    if start.ndim != 1:
-        raise WalktuneError(f"`start` must be one point of shape (d,); got shape {start.shape}.")
+    if start.ndim != 1 or start.shape[0] == 0:
+        raise WalktuneError(f"`start` must be one point of shape (d,) with d >= 1; got shape {start.shape}.")
     check_finite(start, "start")
     dim = start.shape[0]
     names = parameter_names(names, dim)
     bound_array = parameter_bounds(bounds, names, start)
     current = current_proposal_covariance(current_proposal, dim)
-    n_chains = 4 if chains is None else int(chains)
+    n_chains = 4 if chains is None else check_positive_int(chains, "chains", minimum=1)
     if n_chains < 2:
         raise WalktuneError("`chains` must be at least 2, so that chains can disagree when they have not mixed.")
     if budget is not None:
+        budget = check_positive_int(budget, "budget")
         low = minimum_budget(dim, n_chains)
         if budget < low:
             raise WalktuneError(
                 f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
                 f"give at least {low}."
             )
+        _check_budget_fits(budget, dim)
+    check_positive_number(target_ess, "target_ess")
     if not callable(log_density) and evaluator is None:
         raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
-    seed_seq = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
-    return _Inputs(start, names, bound_array, current, n_chains, seed_seq)
+    return _Inputs(start, names, bound_array, current, n_chains, check_seed(seed))
+
+
+def _check_budget_fits(budget: int, dim: int) -> None:
+    """Refuse, before any work, a budget whose draws cannot be held: the job keeps up to one point of
+    ``dim`` float64 numbers per evaluation (pilot stages and proof runs), so ``8 budget dim`` bytes
+    must fit in the machine's physical memory."""
+    try:
+        memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (AttributeError, ValueError, OSError):  # not on POSIX: no check
+        return
+    needed = 8 * budget * dim
+    if needed > memory:
+        raise WalktuneError(
+            f"a budget of {budget:.3g} evaluations keeps up to {needed / 1e9:.3g} GB of draws of {dim} parameters "
+            f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {memory // (8 * dim)}."
+        )
 
 
 def _check_forced_transforms(posterior, transforms, forbid_transforms) -> None:
@@ -480,7 +505,8 @@ def tune(
     """
     tracker = _JobTracker(checkpoint, progress)
     with _guarded(checkpoint, tracker):
-        inputs = _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator)
+        inputs = _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator,
+                               target_ess)
         posterior = prepare_posterior(log_density, inputs.start, inputs.names, inputs.bounds, vectorized=vectorized,
                                       evaluator=evaluator, log_prior=log_prior, prior=prior, checkpoint=checkpoint)
         _check_forced_transforms(posterior, transforms, forbid_transforms)
