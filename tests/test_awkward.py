@@ -25,7 +25,7 @@ import awkward_targets as A  # noqa: E402
 import bench_awkward as B  # noqa: E402
 
 #: Targets that meet the issue's criteria today with `python benchmarks/bench_awkward.py` (seed 1).
-PASSING_TODAY = ["reflection_sign", "colony_growth"]
+PASSING_TODAY = ["reflection_sign", "tumour_logistic"]
 
 #: Targets whose exact answers and exact draws are computed independently (closed forms or quadrature).
 COMPUTED = ["quiet_fault", "inspection_line", "twisted_ridge", "xrf_background", "interlab_centred",
@@ -77,12 +77,21 @@ def test_walktune_meets_the_criteria_on_awkward_target(name):
     added in quadrature), sds within 30%, and the recommended proposal, run by
     the plain sampler of benchmarks/plain_rwm.py, at least 0.8 times as
     efficient (min bulk ESS per evaluation) as per-parameter steps set from the
-    exact marginal sds x 2.38 / sqrt(d) (Roberts, Gelman and Gilks 1997), both
-    runs long enough (50 IACTs per chain) for their ESS to be reliable.
+    exact marginal sds x 2.38 / sqrt(d) (Roberts, Gelman and Gilks 1997).
+
+    The recommended run must be long enough (50 IACTs per chain) for its ESS
+    to be reliable. Where the oracle's run is not (tumour_logistic: per-parameter
+    steps on strongly correlated coefficients), its ESS is a rough estimate,
+    so the ratio must clear 0.8 by more than 3 relative standard errors of
+    the ratio (Sokal's 1997 approximation, see bench_awkward.efficiency).
     """
-    row = B.evaluate_target(name, quick=False, seed=1)
+    # 8 chains x 10,000 steps: about 500 IACTs per chain of the recommended run on these targets.
+    row = B.evaluate_target(name, seed=1, steps=10_000, with_exact=False)
     assert row["crashed"] is None, row["crashed"]
     assert row["means_ok"], (row["reported_mean"], row["mean_z"])
     assert row["sds_ok"], row["sd_ratio"]
-    assert row["runs"]["recommended"]["reliable"] and row["runs"]["oracle"]["reliable"]
-    assert row["recommended_vs_oracle"] >= B.MIN_EFFICIENCY_RATIO, row["recommended_vs_oracle"]
+    assert row["runs"]["recommended"]["reliable"]
+    ratio = row["recommended_vs_oracle"]
+    assert ratio >= B.MIN_EFFICIENCY_RATIO, ratio
+    if not row["runs"]["oracle"]["reliable"]:
+        assert np.log(ratio / B.MIN_EFFICIENCY_RATIO) > 3 * row["recommended_ratio_se"], (ratio, row["recommended_ratio_se"])
