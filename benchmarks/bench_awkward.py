@@ -106,7 +106,12 @@ def check_moments(target: A.Target, result) -> dict:
     sd_ratio = reported_sd / target.sd
     means_ok = bool(np.all(np.isfinite(allowed)) and np.all(np.abs(mean - target.mean) <= allowed))
     sds_ok = bool(np.all(np.isfinite(sd_ratio)) and np.all(np.abs(sd_ratio - 1) <= SD_TOLERANCE))
+    # For diagnosis only: the sd of walktune's own tuned-covariance draws (the mean above comes from that run).
+    tuned_runs = getattr(result, "runs", {}) or {}
+    tuned_sd = (tuned_runs["tuned-covariance"].draws.reshape(-1, target.dim).std(axis=0)
+                if "tuned-covariance" in tuned_runs else np.full(target.dim, np.nan))
     return {"means_ok": means_ok, "sds_ok": sds_ok, "mean_z": z.tolist(), "sd_ratio": sd_ratio.tolist(),
+            "tuned_run_sd_ratio": (tuned_sd / target.sd).tolist(),
             "reported_mean": mean.tolist(), "reported_mcse": mcse.tolist(), "reported_sd": reported_sd.tolist()}
 
 
@@ -215,10 +220,12 @@ def markdown_table(rows: list) -> str:
             lines.append(f"| {row['target']} | {row['dim']} | crash | crash | - | - | - | - | `{row['crashed'][:80]}` | no |")
             continue
         worst_z, worst_sd = max(row["mean_z"]), row["sd_ratio"][int(np.argmax(np.abs(np.log(row["sd_ratio"]))))]
+        run_sd = row["tuned_run_sd_ratio"][int(np.argmax(np.abs(np.log(row["tuned_run_sd_ratio"]))))]
         findings = ", ".join(row["findings"]) or "none"
         lines.append(
             f"| {row['target']} | {row['dim']} | {'yes' if row['means_ok'] else 'no'} (max {worst_z:.1f} MCSE) "
-            f"| {'yes' if row['sds_ok'] else 'no'} (worst x{worst_sd:.2f}) | {_ratio_cell(row, 'recommended')} "
+            f"| {'yes' if row['sds_ok'] else 'no'} (worst x{worst_sd:.2f}; tuned run x{run_sd:.2f}) "
+            f"| {_ratio_cell(row, 'recommended')} "
             f"| {_ratio_cell(row, 'tuned_covariance')} | {_ratio_cell(row, 'exact_covariance')} "
             f"| {row['total_evaluations']} | {findings} "
             f"| {'yes' if row['passed'] else 'no'}{'' if row['fixed_can_mix'] else ' (funnel: alarm needed)'} |"
