@@ -25,7 +25,7 @@ import awkward_targets as A  # noqa: E402
 import bench_awkward as B  # noqa: E402
 
 #: Targets that meet the issue's criteria today with `python benchmarks/bench_awkward.py` (seed 1).
-PASSING_TODAY = ["reflection_sign", "tumour_logistic"]
+PASSING_TODAY = ["tumour_logistic"]
 
 #: Targets whose exact answers and exact draws are computed independently (closed forms or quadrature).
 COMPUTED = ["quiet_fault", "inspection_line", "twisted_ridge", "xrf_background", "interlab_centred",
@@ -74,7 +74,7 @@ def test_walktune_meets_the_criteria_on_awkward_target(name):
     """Issue 12's checks on one target.
 
     Means within 4 reported MCSE of the exact ones (the reference's own MCSE
-    added in quadrature), sds within 30%, and the recommended proposal, run by
+    added in quadrature) with an MCSE of at most sd / 10, sds within 30%, and the recommended proposal, run by
     the plain sampler of benchmarks/plain_rwm.py, at least 0.8 times as
     efficient (min bulk ESS per evaluation) as per-parameter steps set from the
     exact marginal sds x 2.38 / sqrt(d) (Roberts, Gelman and Gilks 1997).
