@@ -69,6 +69,8 @@ class Target:
     fixed_can_mix : bool
         False where no fixed proposal can mix (a funnel): there, a finding naming
         the problem and the fix is what the issue asks for instead of right numbers.
+    extra : dict
+        Facts about the target for the docs (e.g. the minor mode's mass).
     """
 
     name: str

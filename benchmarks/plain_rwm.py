@@ -53,7 +53,7 @@ def run_chains(log_density, start, cov, steps: int, rng: np.random.Generator):
     """
     x = np.array(start, dtype=float)
     m, d = x.shape
-    factor = proposal_factor(cov) if np.ndim(cov) != 1 else np.diag(np.sqrt(cov))
+    factor = proposal_factor(cov)
     lp = np.asarray(log_density(x), dtype=float)
     if not np.all(np.isfinite(lp)):
         raise ValueError("the log-density must be finite at every start")
