@@ -28,6 +28,7 @@ bench: $(STAMP)
 	$(PY) benchmarks/bench_report.py
 	$(PY) benchmarks/bench_reparam.py
 	$(PY) benchmarks/bench_parallel.py
+	$(PY) benchmarks/bench_awkward.py
 
 clean:
 	rm -rf $(VENV) walktune-demo .pytest_cache

@@ -52,7 +52,7 @@ def main():
             seconds = time.perf_counter() - t0
             tuned = efficiency(log_density, result.proposal_covariance, dim, seed=5)
             best = efficiency(log_density, T.optimal_proposal(cov), dim, seed=5)
-            slow = T.slowdown(result.proposal_covariance, cov).slowest
+            slow = T.slowdown(result.proposal_covariance, cov).slowest_direction
             limit = 20 * dim * dim + 2000
             print(f"{dim:>3} {condition:>7.0e} {tuned / best:>6.2f} {result.pilot_evaluations:>7} {limit:>7} {slow:>9.3f} {seconds:>8.1f}")
 

@@ -21,7 +21,15 @@ import pytest
 from typer.testing import CliRunner
 
 import walktune
-from walktune.checkpoint import FILE_NAME, Checkpoint, Interrupted, read_meta
+from walktune.checkpoint import (
+    FILE_NAME,
+    SPOT_CHECK_MAX_POINTS,
+    SPOT_CHECKS,
+    Checkpoint,
+    Interrupted,
+    read_meta,
+    spot_check_batches,
+)
 from walktune.cli import app
 
 runner = CliRunner()
@@ -117,8 +125,10 @@ def test_resume_after_a_stop_anywhere_is_the_uninterrupted_run(tmp_path, uninter
 
     resumed_checkpoint = Checkpoint(tmp_path, identity, resume=True)
     resumed = walktune.tune(counting, np.ones(3), seed=5, budget=12_000, checkpoint=resumed_checkpoint)
-    # Nothing recorded is evaluated again but the start point.
-    assert live[0] == uninterrupted.total_evaluations - recorded + 1  # + the start point, evaluated again as a check
+    # Nothing recorded is evaluated again but the spot-checked batches (the start point first, at most 8 x 64 points).
+    spot = resumed_checkpoint.spot_checked
+    assert 1 <= spot <= SPOT_CHECKS * SPOT_CHECK_MAX_POINTS
+    assert live[0] == uninterrupted.total_evaluations - recorded + spot
     for name, run in uninterrupted.runs.items():
         np.testing.assert_array_equal(resumed.runs[name].draws, run.draws)
     a, b = resumed.to_dict(), uninterrupted.to_dict()
@@ -174,9 +184,45 @@ def test_a_changed_model_is_caught_on_replay_and_the_checkpoint_kept(tmp_path, s
     def other(x):
         return gaussian(1.01 * x)
 
-    with pytest.raises(walktune.WalktuneError, match="the model changed since"):
+    with pytest.raises(walktune.WalktuneError, match="the model or its data changed since"):
         walktune.tune(other, np.ones(3), seed=5, budget=12_000, checkpoint=Checkpoint(tmp_path, {}, resume=True))
     assert (tmp_path / FILE_NAME).read_bytes() == before
+
+
+def test_changed_data_with_the_same_value_at_the_start_is_caught(tmp_path):
+    """Data reflected about the start point: the log-density there is unchanged, elsewhere it is not, so only
+    recorded evaluations away from the start can tell (the resume spot-checks batches spread over the record)."""
+    start = np.ones(3)
+    data = np.random.default_rng(2).normal(size=(20, 3))
+    reflected = 2 * start - data
+
+    def model(y):
+        return lambda x: -0.5 * float(np.sum((x - y) ** 2)) / 20
+
+    assert model(data)(start) == model(reflected)(start)  # what the start-only check compared
+    box = [Checkpoint(tmp_path, {})]
+    calls = [0]
+
+    def stopping(x):
+        calls[0] += 1
+        if calls[0] == 3_000:
+            box[0].request_stop(signal.SIGINT)
+        return model(data)(x)
+
+    with pytest.raises(Interrupted):
+        walktune.tune(stopping, start, seed=5, budget=12_000, checkpoint=box[0])
+    before = (tmp_path / FILE_NAME).read_bytes()
+    with pytest.raises(walktune.WalktuneError, match="at evaluation [0-9]+ where .* the model or its data changed since"):
+        walktune.tune(model(reflected), start, seed=5, budget=12_000, checkpoint=Checkpoint(tmp_path, {}, resume=True))
+    assert (tmp_path / FILE_NAME).read_bytes() == before
+
+
+def test_spot_checks_spread_over_the_record():
+    sizes = np.array([1] * 10 + [200] + [4] * 1000)
+    offsets = np.r_[0, np.cumsum(sizes)]
+    chosen = spot_check_batches(sizes, np.array([offsets[500] + 1]), offsets)
+    assert 0 in chosen and 10 not in chosen and 500 not in chosen  # the start; not too big; no failure
+    assert 5 <= len(chosen) <= 8 and max(chosen) >= 990
 
 
 def test_a_stop_while_replaying_leaves_the_checkpoint_as_it_was(tmp_path, stopped_in_pilot):
@@ -429,11 +475,18 @@ def test_workers_dying_again_and_again_stop_the_run_with_the_checkpoint_kept(tmp
 
 
 def test_a_folder_in_use_by_a_running_job_is_refused(copy_of):
-    holder = Checkpoint(copy_of, read_meta(copy_of)["identity"], resume=True)  # as a running resume holds it
+    # Another process holds the folder as a running resume would (a lock is shared within one process).
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, walktune.checkpoint as c; "
+         "k = c.Checkpoint(sys.argv[1], c.read_meta(sys.argv[1])['identity'], resume=True); print('held', flush=True); "
+         "sys.stdin.read()", str(copy_of)],
+        stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+    )
     try:
+        assert holder.stdout.readline().strip() == "held"
         _fails(["tune", "--resume", str(copy_of)], "another walktune run is using", copy_of)
     finally:
-        holder.release()
+        holder.communicate(input="", timeout=60)
 
 
 def test_stale_temporary_files_are_cleared(copy_of):

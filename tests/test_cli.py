@@ -105,6 +105,11 @@ def test_export_formats(tmp_path):
     namespace = {}
     exec((tmp_path / "tuned.py").read_text(), namespace)
     np.testing.assert_array_equal(np.array(namespace["PROPOSAL_COVARIANCE"]), cov)
+    # The recommended option's proposal, the same as the file saved beside advice.json.
+    assert run("export", out, "--recommended", "--to", tmp_path / "r.json").exit_code == 0
+    exported = json.loads((tmp_path / "r.json").read_text())
+    assert exported["proposal"] == advice["recommended"]["proposal"]
+    np.testing.assert_array_equal(np.array(exported["proposal_covariance"]), np.load(out / "recommended_proposal.npy"))
     assert_one_line_error(run("export", out, "--to", tmp_path / "c.xyz"), "format")
     (tmp_path / "old.json").write_text(json.dumps({"schema": "walktune.advice/0"}))
     assert_one_line_error(run("export", tmp_path / "old.json", "--to", tmp_path / "c.npy"), "schema")
@@ -113,6 +118,11 @@ def test_export_formats(tmp_path):
 @pytest.fixture
 def broken_models(tmp_path):
     (tmp_path / "raises.py").write_text("import numpy as np\n1 / 0\ndef lp(x):\n    return 0.0\n")
+    (tmp_path / "textstart.py").write_text("PARAMETERS = {'a': 'one', 'b': 1.0}\ndef lp(x):\n    return 0.0\n")
+    (tmp_path / "exits.py").write_text("import sys\nPARAMETERS = {'a': 0.0}\ndef lp(x):\n    sys.exit(3)\n")
+    (tmp_path / "raises_exit.py").write_text("PARAMETERS = {'a': 0.0}\ndef lp(x):\n    raise SystemExit\n")
+    (tmp_path / "vnone.py").write_text("PARAMETERS = {'a': 0.0}\nVECTORIZED = True\ndef lp(x):\n    pass\n")
+    (tmp_path / "none.py").write_text("PARAMETERS = {'a': 0.0}\ndef lp(x):\n    -0.5 * float(x @ x)\n")
     (tmp_path / "ok.py").write_text(
         "import numpy as np\nPARAMETERS = {'a': 0.0, 'b': 1.0}\nBOUNDS = {'b': (0, 10)}\n"
         "def lp(x):\n    return -0.5 * float(x @ x)\n"
@@ -139,6 +149,18 @@ def broken_models(tmp_path):
         (["ok.py:lp", "--current-proposal", "notpd.npy"], ["positive definite"]),
         (["ok.py:lp", "--budget", "50"], ["too small"]),
         (["ok.py:nowhere"], ["start inside the support"]),  # evaluated once: still no folder, no checkpoint
+        (["ok.py:lp", "--seed", "-3"], ["`seed` must be a whole number >= 0"]),
+        (["ok.py:lp", "--budget", "1e10"], ["GB of draws", "give at most --budget"]),  # before any evaluation
+        (["ok.py:lp", "--budget", "1e23"], ["GB of draws"]),
+        (["ok.py:lp", "--budget", "4000.5"], ["whole number"]),
+        (["ok.py:lp", "--budget", "lots"], ["whole number"]),
+        (["textstart.py:lp"], ["PARAMETERS", "number"]),
+        (["exits.py:lp"], ["the model exited", "sys.exit(3)"]),
+        (["raises_exit.py:lp"], ["the model exited"]),
+        (["exits.py:lp", "--workers", "2"], ["the model exited", "sys.exit(3)"]),  # in a worker process
+        (["vnone.py:lp"], ["returned None"]),
+        (["none.py:lp"], ["returned None"]),
+        (["ok.py:lp", "--target-ess", "-5"], ["`target_ess` must be a number > 0"]),
     ],
 )
 def test_bad_input_gives_one_line_and_leaves_nothing(broken_models, monkeypatch, args, fragments):
@@ -149,6 +171,81 @@ def test_bad_input_gives_one_line_and_leaves_nothing(broken_models, monkeypatch,
     result = run("tune", *args, "--out", "result")
     assert_one_line_error(result, *fragments)
     assert set(broken_models.iterdir()) == before  # no output folder, no staging folder
+
+
+def test_none_is_not_called_not_finite(broken_models, monkeypatch):
+    monkeypatch.chdir(broken_models)
+    result = run("tune", "none.py:lp", "--out", "result")
+    assert "not finite" not in result.output
+
+
+@pytest.fixture(scope="module")
+def finished_run(tmp_path_factory):
+    out = tmp_path_factory.mktemp("run") / "out"
+    result = run("tune", f"{DEMO}/sensor_calibration.py:log_posterior", "--seed", 2, "--budget", 30_000, "--out", out, "-q")
+    assert result.exit_code == 0, result.output
+    return out
+
+
+@pytest.mark.parametrize("key", ["parameter_names", "proposal_covariance", "posterior_covariance", "findings"])
+def test_report_and_export_of_an_advice_json_missing_keys(finished_run, tmp_path, key):
+    folder = tmp_path / "copy"
+    folder.mkdir()
+    for path in finished_run.iterdir():
+        (folder / path.name).write_bytes(path.read_bytes())
+    advice = json.loads((folder / "advice.json").read_text())
+    del advice[key]
+    (folder / "advice.json").write_text(json.dumps(advice))
+    assert_one_line_error(run("report", folder), key)
+    assert_one_line_error(run("export", folder, "--to", tmp_path / "p.npy"), key)
+
+
+@pytest.mark.parametrize("damage", ["truncate", "garbage", "wrong-shape"])
+def test_report_of_a_damaged_draws_npz(finished_run, tmp_path, damage):
+    folder = tmp_path / "copy"
+    folder.mkdir()
+    for path in finished_run.iterdir():
+        (folder / path.name).write_bytes(path.read_bytes())
+    data = (folder / "draws.npz").read_bytes()
+    if damage == "truncate":
+        (folder / "draws.npz").write_bytes(data[: len(data) // 2])
+    elif damage == "garbage":
+        (folder / "draws.npz").write_bytes(b"PK\x03\x04" + bytes(range(256)) * 40)
+    else:
+        np.savez(folder / "draws.npz", tuned_covariance=np.zeros((4, 10)))
+    assert_one_line_error(run("report", folder), "draws.npz")
+
+
+def test_inspect_targets_must_be_positive(tmp_path):
+    np.save(tmp_path / "d.npy", np.random.default_rng(0).standard_normal((2, 300, 2)))
+    assert_one_line_error(run("inspect", tmp_path / "d.npy", "--target-mcse", 0), "target_mcse")
+    assert_one_line_error(run("inspect", tmp_path / "d.npy", "--target-ess", -5), "target_ess")
+
+
+@pytest.mark.parametrize(
+    "options, fragment",
+    [
+        ({"seed": -1}, "`seed`"),
+        ({"seed": "abc"}, "`seed`"),
+        ({"seed": 1.5}, "`seed`"),
+        ({"budget": 4000.0}, "`budget` must be a whole number"),
+        ({"start": []}, "`start` must be one point"),
+        ({"target_ess": -1}, "`target_ess`"),
+    ],
+)
+def test_python_api_input_errors(options, fragment):
+    import walktune
+
+    calls = []
+
+    def log_density(x):
+        calls.append(x)
+        return -0.5 * float(x @ x)
+
+    arguments = {"start": [0.0, 1.0], **options}
+    with pytest.raises(walktune.WalktuneError, match=fragment.replace("`", ".")) as error:
+        walktune.tune(log_density, **arguments)
+    assert "\n" not in str(error.value) and not calls  # refused before any evaluation
 
 
 def test_cli_error_through_a_real_process(tmp_path):

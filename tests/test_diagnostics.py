@@ -5,12 +5,18 @@ Sources:
   autocorrelation time (1 + phi) / (1 - phi) (textbook result, e.g. Sokal 1997).
 - Rank-normalised split R-hat, bulk and tail ESS: Vehtari, Gelman, Simpson,
   Carpenter and Bürkner (2021), Bayesian Analysis 16(2); R-hat < 1.01 recommended there.
+  The same paper computes every ESS on split chains (also the one behind the
+  MCSE of a mean) and bounds tau below by 1/log10(S), S the total number of
+  draws (recalled from the paper: treat the exact form as approximate).
+- Geyer (1992), Statistical Science 7(4): the initial monotone sequence
+  estimator, written out independently in this file (`reference_ess`).
 """
 
 import numpy as np
 import pytest
 from scipy import stats
 
+from conftest import ar1
 from walktune import diagnostics as D
 from walktune.errors import WalktuneError
 
@@ -136,10 +142,101 @@ def test_summary_agrees_with_the_single_functions():
     rng = np.random.default_rng(12)
     x = rng.standard_normal((3, 800, 11)).cumsum(axis=1) * 0.1 + rng.standard_normal((3, 800, 11))
     s = D.summary(x, block=4)
-    np.testing.assert_allclose(s.ess, D.ess(x))
-    np.testing.assert_allclose(s.iact, D.iact(x))
+    np.testing.assert_allclose(s.ess, D.ess(x, split=True))
+    np.testing.assert_allclose(s.iact, D.iact(x, split=True))
     np.testing.assert_allclose(s.bulk_ess, D.bulk_ess(x))
     np.testing.assert_allclose(s.tail_ess, D.tail_ess(x))
     np.testing.assert_allclose(s.rhat, D.rhat(x))
     np.testing.assert_allclose(s.mcse, D.mcse_mean(x))
-    np.testing.assert_array_equal(s.ess_too_short, D.ess(x).too_short)
+    np.testing.assert_array_equal(s.ess_too_short, D.ess(x, split=True).too_short)
+    np.testing.assert_allclose(s.mcse, s.sd / np.sqrt(s.ess))  # the numbers shown agree with each other
+    np.testing.assert_allclose(s.iact, x.shape[0] * x.shape[1] / s.ess)
+
+
+# --------------------------------------------------------------------------- MCSE from split chains
+
+
+def reference_ess(x: np.ndarray, split: bool) -> float:
+    """Independent ESS of chains x (chains, draws): direct-sum autocovariances, Geyer's
+    (1992) initial monotone sequence, chains combined as in Vehtari et al. (2021),
+    tau floored at 1/log10(S) for S draws in all (Vehtari et al. 2021, recalled)."""
+    if split:
+        half = x.shape[1] // 2
+        x = np.concatenate([x[:, :half], x[:, x.shape[1] - half :]])
+    m, n = x.shape
+    acov = np.array([np.correlate(c - c.mean(), c - c.mean(), "full")[n - 1 :] / n for c in x])
+    within = np.mean(acov[:, 0]) * n / (n - 1)
+    var_plus = within * (n - 1) / n + np.var(x.mean(axis=1), ddof=1)
+    rho = 1 - (within - acov.mean(axis=0)) / var_plus
+    rho[0] = 1.0
+    pairs = rho[0 : n - 1 : 2] + rho[1:n:2]
+    first_bad = np.argmax(pairs <= 0) if np.any(pairs <= 0) else pairs.size
+    tau = -1 + 2 * np.sum(np.minimum.accumulate(pairs[:first_bad]))
+    return m * n / max(tau, 1 / np.log10(m * n))
+
+
+def drifting_chains(n=1000, seed=0):
+    """AR(1) chains (phi 0.5) that share a transient 3 exp(-5 t / n): not yet stationary (invented)."""
+    return ar1(0.5, chains=4, n=n, seed=seed) + 3.0 * np.exp(-5.0 * np.arange(n) / n)
+
+
+@pytest.mark.parametrize("case", ["ar1-odd-length", "ar1-negative", "drift"])
+def test_split_ess_and_mcse_match_an_independent_implementation(ar1_factory, case):
+    # Reference: reference_ess above (Geyer 1992 on split chains, Vehtari et al. 2021).
+    x = {
+        "ar1-odd-length": ar1_factory(0.8, chains=3, n=1201, seed=21),
+        "ar1-negative": ar1_factory(-0.5, chains=4, n=600, seed=22),
+        "drift": drifting_chains(seed=23),
+    }[case]
+    split, unsplit = reference_ess(x, split=True), reference_ess(x, split=False)
+    draws = x[..., None]
+    assert D.ess(draws, split=True)[0] == pytest.approx(split, rel=1e-10)
+    assert D.ess(draws)[0] == pytest.approx(unsplit, rel=1e-10)
+    assert D.mcse_mean(draws)[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
+    s = D.summary(draws)
+    assert s.mcse[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
+    assert s.ess[0] == pytest.approx(split, rel=1e-10)
+
+
+def test_split_chains_see_a_common_drift_that_unsplit_chains_miss():
+    # Simulation with known behaviour: chains sharing a transient agree with each
+    # other, so only the halves of each chain disagree. Over 20 seeds the split ESS
+    # is at most 70% of the unsplit one (prototype runs of 400 seeds: medians 29 vs 57),
+    # and far below the stationary part's closed-form ESS S (1 - phi) / (1 + phi) = 1333.
+    ratios = []
+    for seed in range(20):
+        draws = drifting_chains(seed=100 + seed)[..., None]
+        ratios.append(D.ess(draws, split=True)[0] / D.ess(draws)[0])
+        assert D.ess(draws, split=True)[0] < 0.1 * 4000 * (1 - 0.5) / (1 + 0.5)
+    assert np.max(ratios) < 0.7
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.5, 0.9, -0.5])
+def test_split_iact_of_ar1_matches_closed_form(ar1_factory, phi):
+    # Source: AR(1) closed form tau = (1 + phi) / (1 - phi) (textbook result).
+    x = ar1_factory(phi, chains=4, n=250_000, seed=31)[..., None]
+    # Relative SE of the Geyer estimate about sqrt(2 (2K + 1) / S) for a window of
+    # K lags (Sokal 1997); K <= 10 tau + 10 here, so 4% is beyond 3 SE.
+    assert D.iact(x, split=True)[0] == pytest.approx((1 + phi) / (1 - phi), rel=0.04)
+
+
+def test_iact_floor_uses_the_total_number_of_draws():
+    # Vehtari et al. (2021), recalled: tau >= 1/log10(S), S = draws over all chains, so
+    # ESS <= S log10(S). An alternating chain (phi = -0.9, tau = 0.053) hits the floor.
+    x = ar1(-0.9, chains=4, n=1000, seed=5)[..., None]
+    assert D.ess(x)[0] == pytest.approx(4000 * np.log10(4000), rel=1e-12)
+    assert D.ess(x, split=True)[0] == pytest.approx(4000 * np.log10(4000), rel=1e-12)
+
+
+def test_mcse_covers_the_true_mean_of_ar1_chains(ar1_factory):
+    # Simulation with known truth: stationary AR(1) chains have mean 0. Over 400
+    # replicate runs (4 chains x 2000 draws, phi = 0.9, tau = 19) the interval
+    # mean +/- 1.96 MCSE should hold 0 about 95% of the time; the binomial SE of the
+    # observed share is sqrt(0.95 * 0.05 / 400) = 0.011, and 3 SE is allowed.
+    runs = 400
+    covered = 0
+    for seed in range(runs):
+        x = ar1_factory(0.9, chains=4, n=2000, seed=1000 + seed)[..., None]
+        covered += abs(x.mean()) <= 1.96 * D.mcse_mean(x)[0]
+    binomial_se = np.sqrt(0.95 * 0.05 / runs)
+    assert abs(covered / runs - 0.95) < 3 * binomial_se

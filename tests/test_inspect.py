@@ -105,7 +105,11 @@ def test_acceptance_and_slowdown_of_a_known_proposal():
     _, vecs = np.linalg.eigh(cov)
     simulated = D.iact(chains.draws @ vecs).max() / D.iact(best.draws @ vecs).max()
     # Diffusion-limit prediction, asymptotic: within 25% at d = 20.
-    assert result.advice.slowdowns["current"]["slowest"] == pytest.approx(simulated, rel=0.25)
+    assert result.advice.slowdowns["current"]["slowest_direction"] == pytest.approx(simulated, rel=0.25)
+    # The smallest ESS over parameters: each parameter shares its variance equally between
+    # a slow and a fast direction, so its slow-down is far below the slowest direction's.
+    simulated_parameter = D.iact(chains.draws).max() / D.iact(best.draws).max()
+    assert result.advice.slowdowns["current"]["slowest_parameter"] == pytest.approx(simulated_parameter, rel=0.25)
 
 
 def test_more_draws_needed_follows_the_ess():
@@ -115,6 +119,11 @@ def test_more_draws_needed_follows_the_ess():
     assert result.more_draws_observed[0] == pytest.approx(4000, rel=0.2)
     mcse_result = inspect(x, target_mcse=0.005)  # needs ESS (1 / 0.005)^2 = 40000
     assert mcse_result.needed_ess[0] == pytest.approx(40_000, rel=0.05)
+    # At the observed ESS of the mean (split chains, behind the MCSE) per draw:
+    s = mcse_result.summary
+    expected = (s.sd[0] / 0.005) ** 2 / (s.ess[0] / 4000) - 4000
+    assert mcse_result.more_draws_observed[0] == pytest.approx(expected, rel=1e-12)
+    assert mcse_result.more_draws_observed[0] == pytest.approx(36_000, rel=0.2)  # iid: ESS about S
 
 
 def test_npz_layouts_and_several_files(tmp_path):

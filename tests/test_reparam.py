@@ -19,9 +19,11 @@ import walktune
 from conftest import load_demo
 from walktune import diagnostics as D
 from walktune.errors import WalktuneError
+from walktune.informed import PRIOR_DOMINATED, informed_threshold
 from walktune.reparam import (
     KINDS,
     TransformChoice,
+    fit_map,
     forward,
     inverse,
     load_reparam,
@@ -229,3 +231,125 @@ def test_prior_dominated_parameters_are_weakly_identified():
     weak = [f for f in result.findings if f.kind == "weakly-identified" and f.severity == "warn"]
     assert weak and weak[0].parameters == ["c"]
     assert result.reparam.informed == 2
+
+
+# --------------------------------------------------------------------------- the informed split against noise
+#
+# Sources:
+# - When the posterior equals the prior, the ratios are the eigenvalues of the sample
+#   covariance of n independent standard normal draws (posterior/prior variance 1 in
+#   every direction): the truth is zero informed directions.
+# - Linear-Gaussian model, prior N(0, P), log-likelihood Hessian -H: the posterior
+#   covariance is (P^-1 + H)^-1 in closed form; the likelihood-informed subspace of Cui
+#   et al. (2014) is spanned by P^(1/2) w_k with P^(1/2) H P^(1/2) w_k = lambda_k w_k, and
+#   the posterior/prior variance ratio along it is 1 / (1 + lambda_k).
+# - Wishart eigenvalues as those of a bidiagonal chi matrix: Dumitriu and Edelman (2002).
+# - Lower edge (1 - sqrt(d/n))^2 of the Marchenko and Pastur (1967) law (recalled).
+
+
+def _identity_choices(d):
+    return [TransformChoice(f"t{i}", "identity", -np.inf, np.inf, {}) for i in range(d)]
+
+
+def _random_prior(d, rng):
+    a = rng.standard_normal((d, d))
+    return a @ a.T / d + 0.5 * np.eye(d)
+
+
+def _split_of_draws(draws, prior):
+    d = draws.shape[1]
+    return fit_map([f"t{i}" for i in range(d)], _identity_choices(d), draws.mean(axis=0), np.cov(draws.T), prior,
+                   n_independent=draws.shape[0])
+
+
+@pytest.mark.parametrize("d, n, seeds", [(5, 100, 1000), (20, 200, 1000), (50, 1000, 400)])
+def test_pure_noise_gives_almost_no_informed_directions(d, n, seeds):
+    # Truth: zero informed directions. The mean false count over seeds must stay below
+    # 0.1 by two Monte Carlo SEs (its calibrated value is 0.05).
+    counts = []
+    for seed in range(seeds):
+        rng = np.random.default_rng(seed)
+        prior = _random_prior(d, rng)
+        draws = 3.0 + rng.standard_normal((n, d)) @ np.linalg.cholesky(prior).T
+        counts.append(_split_of_draws(draws, prior).informed)
+    mean, se = np.mean(counts), np.std(counts, ddof=1) / np.sqrt(seeds)
+    assert mean + 2 * se < 0.1, (mean, se)
+
+
+def _linear_gaussian_posterior(prior, lambdas, rng):
+    """Closed-form posterior covariance of a linear-Gaussian model whose likelihood
+    Hessian H has prior-whitened eigenvalues ``lambdas`` along random directions."""
+    d = prior.shape[0]
+    root = linalg.sqrtm(prior).real
+    w = np.linalg.qr(rng.standard_normal((d, len(lambdas))))[0]
+    root_inv = np.linalg.inv(root)
+    hessian = root_inv @ w @ np.diag(lambdas) @ w.T @ root_inv
+    posterior = np.linalg.inv(np.linalg.inv(prior) + hessian)
+    return 0.5 * (posterior + posterior.T), root @ w
+
+
+def test_split_from_the_exact_posterior_is_the_likelihood_informed_subspace():
+    # Closed form (linear-Gaussian): ratios 1 / (1 + lambda_k) along Cui et al.'s basis P^(1/2) w_k.
+    rng = np.random.default_rng(3)
+    d, lambdas = 12, np.array([50.0, 5.0, 1.0 / 0.3 - 1.0])
+    prior = _random_prior(d, rng)
+    posterior, basis = _linear_gaussian_posterior(prior, lambdas, rng)
+    fitted = fit_map([f"t{i}" for i in range(d)], _identity_choices(d), np.zeros(d), posterior, prior)
+    np.testing.assert_allclose(fitted.prior_variance_ratio[:3], 1 / (1 + lambdas), rtol=1e-8)
+    np.testing.assert_allclose(fitted.prior_variance_ratio[3:], 1.0, rtol=1e-8)
+    found = (fitted.chol @ fitted.rotation)[:, :3]
+    assert np.max(linalg.subspace_angles(found, basis)) < 1e-6
+    assert fitted.informed == 3
+
+
+@pytest.mark.parametrize("d, n", [(5, 100), (20, 200), (50, 1000)])
+def test_a_truly_informed_direction_is_still_found(d, n):
+    # One direction with posterior/prior variance 0.3 (closed form). Its sample ratio
+    # has sd about 0.3 sqrt(2 / n), at least 5 sds below the calibrated threshold at
+    # these n, so it must be found in every one of 200 seeds, and nothing else on average
+    # (the false count stays below 0.1 by two Monte Carlo SEs).
+    # Its direction, in prior-whitened coordinates, has squared cosine with the truth
+    # about (1 - g / (1 - l)^2) / (1 - g / (1 - l)) for g = d / n, l = 0.3 (Paul 2007,
+    # Statistica Sinica 17, spiked covariance model; recalled, asymptotic: 0.02 allowed).
+    seeds, extra, cos2 = 200, [], []
+    g, spike = d / n, 0.3
+    for seed in range(seeds):
+        rng = np.random.default_rng(10_000 + seed)
+        prior = _random_prior(d, rng)
+        posterior, basis = _linear_gaussian_posterior(prior, [1.0 / spike - 1.0], rng)
+        draws = rng.standard_normal((n, d)) @ np.linalg.cholesky(posterior).T
+        fitted = _split_of_draws(draws, prior)
+        assert fitted.informed >= 1
+        assert fitted.prior_variance_ratio[0] == pytest.approx(spike, abs=6 * spike * np.sqrt(2 / n))
+        root = linalg.sqrtm(prior).real
+        found = np.linalg.solve(root, (fitted.chol @ fitted.rotation)[:, :1])
+        cos2.append(np.cos(linalg.subspace_angles(found, np.linalg.solve(root, basis))[0]) ** 2)
+        extra.append(fitted.informed - 1)
+    assert np.mean(extra) + 2 * np.std(extra, ddof=1) / np.sqrt(seeds) < 0.1
+    assert np.mean(cos2) == pytest.approx((1 - g / (1 - spike) ** 2) / (1 - g / (1 - spike)), abs=0.02)
+
+
+def test_null_threshold_simulation_matches_direct_sample_covariances():
+    # Dumitriu and Edelman (2002): the bidiagonal model has the Wishart eigenvalue law.
+    # Direct check: the share of sample covariances (10 dims, 60 draws) with an
+    # eigenvalue below the calibrated threshold, over 4000 direct simulations, is about
+    # the calibrated expected count 0.05 (binomial SE 0.0034; 4 SE allowed, plus the
+    # small difference between "expected count" and "at least one").
+    d, n = 10, 60
+    threshold = informed_threshold(d, n)
+    rng = np.random.default_rng(7)
+    counts = np.array([np.sum(np.linalg.eigvalsh(np.cov(rng.standard_normal((n, d)).T)) < threshold)
+                       for _ in range(4000)])
+    assert counts.mean() == pytest.approx(0.05, abs=4 * np.sqrt(0.05 * 0.95 / 4000))
+
+
+def test_threshold_sits_at_the_lower_edge_of_the_noise_spectrum():
+    # Marchenko-Pastur lower edge (1 - sqrt(d/n))^2 (recalled); the smallest eigenvalue
+    # fluctuates about it on a scale of about n^(-2/3) (Tracy-Widom; recalled), so the
+    # threshold lies just below the edge at large d. At d = 300 it also stays cheap (cached).
+    for d, n in [(100, 1000), (300, 3000)]:
+        edge = (1 - np.sqrt(d / n)) ** 2
+        assert edge - 0.03 < informed_threshold(d, n) < edge
+    assert informed_threshold(300, 20 * 300 * 300) == PRIOR_DOMINATED  # capped: common practice
+    assert informed_threshold(20, 15) == 0.0  # fewer draws than dimensions: nothing can be told from noise
+    assert informed_threshold(20, None) == PRIOR_DOMINATED

@@ -50,6 +50,9 @@ def test_every_figure_is_written_and_the_page_embeds_them(tuned_folder):
     # The page opens with the advice, then findings, and carries the caution.
     assert text.index("Advice in plain words") < text.index("Findings") < text.index("Figures")
     assert "never prove" in text
+    # The posterior table names the one run its numbers come from: the recommended one.
+    advice = json.loads((tuned_folder / "advice.json").read_text())
+    assert f"Posterior (from the {advice['recommended']['proposal']} fixed-proposal run)" in text
 
 
 def test_page_has_no_network_reference_and_no_script(tuned_folder):
@@ -188,7 +191,10 @@ def test_pairs_figure_shows_the_transformed_coordinates_when_chosen(tmp_path):
     fig = build_figures(run)["pairs"]
     lower = fig.axes[1]
     assert lower.get_xlabel() == "log(a)" and lower.get_ylabel() == "logit(e)"
-    flat = run.draws["tuned-covariance"].reshape(-1, 2)
+    # The pairs are drawn from the recommended run's draws, and the figure says so.
+    assert run.main == result.recommended.proposal
+    assert f"draws of the {run.main} run" in fig._suptitle.get_text()
+    flat = run.draws[run.main].reshape(-1, 2)
     stride = int(np.ceil(flat.shape[0] / 2000))
     expected = np.column_stack([forward("log", flat[::stride, 0], 0, np.inf), forward("logit", flat[::stride, 1], 0, 1)])
     np.testing.assert_allclose(np.asarray(lower.collections[0].get_offsets()), expected)
@@ -202,3 +208,35 @@ def test_spectrum_marks_informed_directions_when_a_prior_was_given(tmp_path):
     folder = walktune.tune(log_likelihood, [1.0, 0.0], names=["a", "b"], prior=prior, seed=1, budget=30_000).save(tmp_path / "o")
     fig = build_figures(load_run(folder))["spectrum"]
     assert len(fig.axes) == 2 and fig.axes[1].get_title() == "1 of 2 directions informed"
+
+
+def test_plain_words_quote_the_recommended_rows_speedup():
+    """The sentence names the recommended run and its own speed-up, not the last row's."""
+    from walktune.report import _plain_advice
+
+    def row(name, speedup, kind, acceptance):
+        return {"proposal": name, "speedup": speedup, "speedup_kind": kind, "acceptance": acceptance,
+                "ess_reliable": kind != "rough", "ess_per_1000": 10 * speedup}
+
+    advice = {
+        "comparison": [row("single-step", 1.0, "baseline", 0.3), row("step-sizes", 6.25, "measured", 0.28),
+                       row("tuned-covariance", 1.5, "rough", 0.2)],
+        "recommended": {"proposal": "step-sizes", "keep_current": False, "resolved": True, "coordinates": "parameters",
+                        "message": ""},
+        "predicted_slowdown": {"step_sizes": {"slowest_parameter": 7e60, "slowest_direction": 7e60, "mean_direction": 7e60}},
+        "posterior_table": {"run": "step-sizes", "converged": False},
+    }
+    text = " ".join(_plain_advice(advice))
+    assert "Use step-sizes" in text and "6.25x" in text and "1.5x" not in text
+    assert "0.28" in text  # the acceptance measured in that run
+    assert "> 1e6x" in text and "e+60" not in text
+    assert "have not converged" in text
+
+
+def test_figures_survive_a_run_in_which_no_chain_moved(tuned_folder):
+    """A stuck run has no meaningful autocorrelation time (it can come out NaN); the report must still draw."""
+    run = load_run(tuned_folder)
+    stuck = np.broadcast_to(run.draws[run.main][:1, :1], run.draws[run.main].shape).copy()  # one point, every chain
+    run.draws[run.main] = stuck
+    figures = build_figures(run)
+    assert figures["autocorrelation"] is not None and figures["traces"] is not None

@@ -46,7 +46,7 @@ def test_recommended_covariance_on_known_gaussians(dim, condition):
     log_density, cov, mean = rotated_gaussian(dim, condition, seed=dim)
     result = walktune.tune(log_density, np.zeros(dim), seed=1, vectorized=True)
     # Predicted slow-down of the recommendation against the true covariance, slowest direction.
-    assert T.slowdown(result.proposal_covariance, cov).slowest <= 1.1
+    assert T.slowdown(result.proposal_covariance, cov).slowest_direction <= 1.1
     # An independent fixed-proposal run reaches at least 0.8 of the optimal efficiency.
     check = walktune.sample(log_density, np.tile(mean, (32, 1)), result.proposal_covariance, 10_000, seed=99, vectorized=True)
     efficiency = np.mean(1.0 / D.iact(check.draws))
@@ -124,7 +124,7 @@ def test_current_proposal_comparison_and_findings():
     assert "strong-correlation" in kinds
     assert "poor-acceptance" in kinds  # steps of 3 sd on a ridge 0.07 wide
     # The prediction for the current proposal is in the result, and it is slower.
-    assert result.slowdowns["current"]["slowest"] > 10
+    assert result.slowdowns["current"]["slowest_parameter"] > 10
 
 
 def test_weakly_identified_parameter_is_found():

@@ -33,6 +33,22 @@ def check_positive_int(value, name: str, minimum: int = 1) -> int:
     return int(value)
 
 
+def check_seed(seed):
+    """A seed is None, a whole number >= 0 or a numpy SeedSequence; returned as a SeedSequence."""
+    if isinstance(seed, np.random.SeedSequence):
+        return seed
+    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, numbers.Integral) or seed < 0):
+        raise WalktuneError(f"`seed` must be a whole number >= 0 (or None for a fresh one); got {seed!r}.")
+    return np.random.SeedSequence(None if seed is None else int(seed))
+
+
+def check_positive_number(value, name: str) -> float:
+    """A finite number > 0 (bools refused)."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real) or not np.isfinite(value) or value <= 0:
+        raise WalktuneError(f"`{name}` must be a number > 0; got {value!r}.")
+    return float(value)
+
+
 def as_covariance(value, dim: int, name: str = "proposal_cov") -> np.ndarray:
     """Return a symmetric positive definite (dim, dim) matrix.
 

@@ -28,7 +28,8 @@ class Advice:
     expected_acceptance : float
     slowdowns : dict
         ``{"step_sizes", "single_step", and with a current proposal "current",
-        "current_rescaled"}`` each ``{"slowest": x, "mean": y}``.
+        "current_rescaled"}`` each ``{"slowest_parameter", "slowest_direction",
+        "mean_direction"}`` (:class:`walktune.theory.Slowdown`).
     scale_factor : float
         Extra factor on the optimal scale (from the pilot's acceptance steering; 1 otherwise).
     """

@@ -14,9 +14,11 @@ through exactly the states of the interrupted one (draws, adaptation state,
 random generator states and counts, including the state inside scipy's
 optimisers, which could not be saved any other way) and ends with the same
 result bit for bit. Replaying costs walktune's own arithmetic only: no
-log-density evaluation is repeated, except one at the start point that checks
-the model still gives the recorded value (a deterministic log-density is
-assumed, as everywhere in walktune).
+log-density evaluation is repeated, except a few recorded batches spread over
+the record (the start point first, ``SPOT_CHECKS`` in all) that check the model
+still gives the recorded values; a model whose data changed is caught there
+even when its value at the start did not change (a deterministic log-density
+is assumed, as everywhere in walktune).
 
 A checkpoint is written at stage ends, every ``every`` seconds during a stage,
 when the job is stopped and when it fails; always to a temporary file moved
@@ -31,7 +33,6 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-import os
 import time
 import zipfile
 from pathlib import Path
@@ -41,6 +42,7 @@ import numpy as np
 from .errors import WalktuneError
 from .evaluators import BatchResult
 from .io import atomic_write_bytes
+from .outputs import FolderLock
 
 SCHEMA_NAME = "walktune.checkpoint"
 SCHEMA_VERSION = 1
@@ -79,6 +81,35 @@ def fingerprint(points: np.ndarray) -> int:
     points = np.ascontiguousarray(points, dtype=float)
     digest = hashlib.blake2b(repr(points.shape).encode() + points.tobytes(), digest_size=8).digest()
     return int.from_bytes(digest, "little")
+
+
+#: Recorded batches evaluated again when a run is resumed, and the largest batch that may be one.
+SPOT_CHECKS = 8
+SPOT_CHECK_MAX_POINTS = 64
+
+
+def spot_check_batches(sizes, error_keys, offsets) -> set:
+    """Indices of up to ``SPOT_CHECKS`` recorded batches, spread evenly over the record's evaluations,
+    to evaluate again on resume: the first (the start point) always, then batches of at most
+    ``SPOT_CHECK_MAX_POINTS`` points in which no evaluation failed (a failure or a time-out need not
+    repeat itself).
+
+    Parameters
+    ----------
+    sizes : array of shape (batches,)
+    error_keys : sorted array of the evaluation indices that failed
+    offsets : array of shape (batches + 1,), the cumulative evaluation counts
+    """
+    sizes = np.asarray(sizes, dtype=int)
+    if sizes.size == 0:
+        return set()
+    failed = np.searchsorted(error_keys, offsets[1:]) - np.searchsorted(error_keys, offsets[:-1])
+    eligible = np.flatnonzero((sizes <= SPOT_CHECK_MAX_POINTS) & (failed == 0))
+    if eligible.size == 0:
+        return set()
+    wanted = np.linspace(0, offsets[-1] - 1, SPOT_CHECKS)
+    nearest = np.abs(offsets[eligible][None, :] - wanted[:, None]).argmin(axis=1)
+    return {0} | {int(eligible[k]) for k in nearest}
 
 
 def _identity_json(identity: dict) -> str:
@@ -176,11 +207,13 @@ class Checkpoint:
         self._errors: dict = {}
         self._error_keys = np.empty(0, dtype=np.int64)
         self._replay = 0  # batches of the loaded record still to replay
+        self._spot_batches: set = set()  # recorded batches evaluated again on replay
         self._cursor = 0  # next batch to replay
         self._value_offset = 0
         self._saved_batches = 0
         self._last_save = clock()
         self.resumed_evaluations = 0
+        self.spot_checked = 0  # evaluations repeated on resume to check the model (see spot_check_batches)
         self._lock = None
         if resume:
             self._hold_folder()
@@ -209,6 +242,7 @@ class Checkpoint:
             self._errors[int(index)] = text
         self._error_keys = np.array(sorted(self._errors), dtype=np.int64)
         self._replay = len(sizes)
+        self._spot_batches = spot_check_batches(sizes, self._error_keys, offsets)
         self._saved_batches = len(sizes)
         self.resumed_evaluations = int(offsets[-1])
         self.stage = meta.get("stage")
@@ -244,8 +278,8 @@ class Checkpoint:
                 )
             lo, hi = np.searchsorted(self._error_keys, [self._value_offset, self._value_offset + n])
             errors = {int(k) - self._value_offset: self._errors[int(k)] for k in self._error_keys[lo:hi]}
-            if i == 0:
-                self._spot_check(points, evaluator, errors)
+            if i in self._spot_batches:
+                self._spot_check(points, evaluator, i)
             self._cursor += 1
             self._value_offset += n
             return BatchResult(self._values[i].copy(), errors), self._seconds[i], self._busy[i]
@@ -267,17 +301,23 @@ class Checkpoint:
             self.save()
         return BatchResult(values.copy(), dict(result.errors)), seconds, busy
 
-    def _spot_check(self, points: np.ndarray, evaluator, errors: dict) -> None:
-        """Evaluate the first recorded batch (the start point) again: the replay answers from the
-        record and never calls the model, so this is what tells that the model itself changed."""
+    def _spot_check(self, points: np.ndarray, evaluator, batch: int) -> None:
+        """Evaluate a recorded batch again: the replay answers from the record and never calls the
+        model, so this is what tells that the model (its code or its data) changed."""
         again = evaluator(points)
-        recorded = self._values[0]
-        same = np.array_equal(np.asarray(again.values, dtype=float), recorded, equal_nan=True)
-        if not same or sorted(again.errors) != sorted(errors):
+        self.spot_checked += points.shape[0]
+        recorded = self._values[batch]
+        values = np.asarray(again.values, dtype=float)
+        differ = ~((values == recorded) | (np.isnan(values) & np.isnan(recorded)))
+        differ[list(again.errors)] = True
+        if differ.any():
+            j = int(np.flatnonzero(differ)[0])
+            where = "the start point" if batch == 0 else f"evaluation {self._value_offset + j + 1}"
+            now = "an error" if j in again.errors else repr(float(values[j]))
             raise WalktuneError(
-                f"the log-density now gives {np.asarray(again.values).tolist()} at the start point where the run "
-                f"checkpointed in {self.folder} recorded {recorded.tolist()}: the model changed since. Resume with "
-                "the same model, or start a new run elsewhere; the checkpoint was left as it is."
+                f"the log-density now gives {now} at {where} where the run checkpointed in {self.folder} "
+                f"recorded {float(recorded[j])!r}: the model or its data changed since. Resume with the same model "
+                "and data, or start a new run elsewhere; the checkpoint was left as it is."
             )
 
     def stage_ended(self, stage: str, snapshot: dict | None = None) -> None:
@@ -318,7 +358,6 @@ class Checkpoint:
         buffer = io.BytesIO()
         np.savez(buffer, meta=np.array(json.dumps(meta, allow_nan=True, default=str)),
                  **{**arrays, "error_text": np.array(arrays["error_text"], dtype=str)})
-        self.folder.mkdir(parents=True, exist_ok=True)
         self._hold_folder()
         atomic_write_bytes(self.path, buffer.getvalue())
         self._saved_batches = len(self._sizes)
@@ -327,29 +366,14 @@ class Checkpoint:
 
     def _hold_folder(self) -> None:
         """Lock the folder for this process (released when it exits, however it exits), and clear
-        temporary files that an exit in the middle of a write left behind."""
-        if self._lock is not None:
-            return
-        try:
-            import fcntl
-        except ImportError:  # not on POSIX: no lock
-            return
-        fd = os.open(self.folder, os.O_RDONLY)
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            os.close(fd)
-            raise WalktuneError(
-                f"another walktune run is using {self.folder}; wait for it to finish or stop it first."
-            ) from None
-        self._lock = fd
-        for stale in self.folder.glob(f".{FILE_NAME}.*.tmp"):
-            stale.unlink(missing_ok=True)
+        temporary files that an exit in the middle of a write left behind (:mod:`walktune.outputs`)."""
+        if self._lock is None:
+            self._lock = FolderLock(self.folder).acquire()
 
     def release(self) -> None:
-        """Unlock the folder (done anyway when the process exits)."""
+        """Let go of this checkpoint's hold on the folder (done anyway when the process exits)."""
         if self._lock is not None:
-            os.close(self._lock)
+            self._lock.release()
             self._lock = None
 
     def remove(self) -> None:
@@ -365,21 +389,34 @@ RESULT_OPTIONS = ("target", "names", "start", "bound", "budget", "chains", "seed
                   "transform", "no_transform")
 
 
-def options_for_new_run(folder: Path, given: dict) -> dict:
-    """The options of a new run into ``folder``: refused where an interrupted run waits; the seed fixed now.
+def options_for_new_run(folder: Path, given: dict, restart: bool = False) -> dict:
+    """The options of a new run into ``folder``: refused where an interrupted run waits (unless ``restart``,
+    which lets :func:`discard_interrupted` remove it once the folder is locked); the seed fixed now.
 
     A seed drawn here and recorded is what lets an interrupted run be resumed bit for bit.
     """
     folder = Path(folder)
-    if (folder / FILE_NAME).exists():
+    if (folder / FILE_NAME).exists() and not restart:
         raise WalktuneError(
-            f"{folder} holds the checkpoint of an interrupted run; continue it with `walktune tune --resume {folder}`, "
-            f"choose another --out, or delete {folder / FILE_NAME} to start afresh."
+            f"{folder} holds the checkpoint of an interrupted or failed run; continue it with `walktune tune --resume "
+            f"{folder}`, start afresh there with --restart (the checkpoint is discarded), or choose another --out."
         )
     options = dict(given)
     if options.get("seed") is None:
         options["seed"] = int(np.random.SeedSequence().entropy % 2**63)
     return options
+
+
+def discard_interrupted(folder: Path) -> list:
+    """Delete the checkpoint and partial advice of an interrupted or failed run in ``folder`` (call with the
+    folder locked); returns the names deleted."""
+    gone = []
+    for name in (FILE_NAME, "partial-advice.json"):
+        path = Path(folder) / name
+        if path.exists():
+            path.unlink()
+            gone.append(name)
+    return gone
 
 
 def options_for_resume(folder: Path, given: dict, canonical_target) -> tuple[dict, dict]:

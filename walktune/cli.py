@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import os
 import sys
-from contextlib import contextmanager
+from contextlib import contextmanager, redirect_stdout
 from pathlib import Path
 from typing import List, Optional
 
@@ -43,6 +43,57 @@ def _user_errors(doing: str):
         _fail(str(error))
     except OSError as error:
         _fail(f"cannot {doing}: {error.strerror or error} ({error.filename})")
+
+
+@contextmanager
+def _json_channel(enabled: bool):
+    """With --json, stdout carries the JSON only: anything else written there while the run works (the
+    model's prints at import or in evaluations, in this process or in forked workers) goes to stderr.
+    Yields the function that writes to the real stdout."""
+    if not enabled:
+        yield typer.echo
+        return
+    real = sys.stdout
+    real.flush()
+    try:
+        fd, err_fd = real.fileno(), sys.stderr.fileno()
+    except (AttributeError, ValueError, OSError):
+        fd = None  # not a file (a test runner's buffer): redirecting sys.stdout is enough
+    saved = None
+    if fd is not None:
+        saved = os.dup(fd)
+        os.dup2(err_fd, fd)
+
+    def emit(text: str) -> None:
+        sys.stdout.flush()
+        if saved is None:
+            real.write(text + "\n")
+            real.flush()
+        else:
+            with open(os.dup(saved), "w", closefd=True) as handle:
+                handle.write(text + "\n")
+
+    try:
+        with redirect_stdout(sys.stderr):
+            yield emit
+    finally:
+        sys.stdout.flush()
+        if saved is not None:
+            os.dup2(saved, fd)
+            os.close(saved)
+
+
+def _parse_count(text: Optional[str], flag: str) -> Optional[int]:
+    """A whole number given as 20000, 2e4 or 20_000."""
+    if text is None:
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        raise WalktuneError(f"{flag} {text!r} must be a whole number, e.g. 20000 or 2e4.") from None
+    if not np.isfinite(value) or not value.is_integer() or value < 1:
+        raise WalktuneError(f"{flag} {text!r} must be a whole number >= 1.")
+    return int(text) if text.strip().lstrip("+").replace("_", "").isdigit() else int(value)
 
 
 def _version(value: bool):
@@ -186,31 +237,39 @@ def _tune_arguments(options: dict, spec) -> dict:
     )
 
 
-def _run_options(given: dict, out: Optional[Path], resume: Optional[Path]):
-    """The output folder, the options of the run (a resumed run's own), the model, and the checkpoint identity."""
+def _output_folder(given: dict, out: Optional[Path], resume: Optional[Path], restart: bool) -> Path:
+    """The run's output folder, from --out or --resume."""
+    if resume is not None:
+        if restart:
+            raise WalktuneError("--restart starts a new run and --resume continues one; give one of them.")
+        if out is not None and out.resolve() != resume.resolve():
+            raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
+        return resume
+    if given["target"] is None:
+        raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
+    out = out if out is not None else Path("walktune-output")
+    if out.exists() and not out.is_dir():
+        raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
+    return out
+
+
+def _run_options(given: dict, out: Path, resume: Optional[Path], restart: bool = False):
+    """The options of the run (a resumed run's own) and the model; called with the folder locked."""
     from .checkpoint import check_model_unchanged, options_for_new_run, options_for_resume
     from .target import load_target
 
     if resume is not None:
-        if out is not None and out.resolve() != resume.resolve():
-            raise WalktuneError(f"a resumed run writes into its own folder {resume}; drop --out or give --out {resume}.")
-        out = resume
         options, stored = options_for_resume(resume, given, lambda text: load_target(text).canonical)
     else:
-        out = out if out is not None else Path("walktune-output")
-        if given["target"] is None:
-            raise WalktuneError("give the log-density as TARGET (path/to/model.py:function), or --resume FOLDER.")
-        options = options_for_new_run(out, given)
+        options = options_for_new_run(out, given, restart=restart)
     spec = load_target(options["target"])
     if resume is not None:
         check_model_unchanged(resume, stored, spec.source_digest, spec.canonical)
     options["target"] = spec.canonical
-    if out.exists() and not out.is_dir():
-        raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
-    return out, options, spec
+    return options, spec
 
 
-def _interrupted(stop, out: Path, console: Console, as_json: bool, quiet: bool) -> None:
+def _interrupted(stop, out: Path, console: Console, emit, as_json: bool, quiet: bool) -> None:
     """Save and show the partial advice of a stopped run; exit 128 + the signal."""
     from .console import render_partial
     from .io import atomic_write_bytes, json_bytes
@@ -220,12 +279,39 @@ def _interrupted(stop, out: Path, console: Console, as_json: bool, quiet: bool) 
     if stop.checkpoint is not None:
         atomic_write_bytes(out / "partial-advice.json", json_bytes(partial))
     if as_json:
-        typer.echo(json.dumps(partial, indent=2))
+        emit(json.dumps(partial, indent=2))
     elif quiet:
         _console(stderr=True).print(f"interrupted; checkpoint in {out}; resume with: walktune tune --resume {out}")
     else:
         render_partial(console, partial, str(out))
     raise typer.Exit(128 + (stop.signum or 2)) from None
+
+
+def _make_room(out: Path, *, resume: bool, restart: bool, overwrite: bool) -> None:
+    """With the folder locked: --restart discards an interrupted run (saying so); a new run into another
+    run's files needs --overwrite (see docs/usage.md, "Output folders")."""
+    from .checkpoint import discard_interrupted
+    from .outputs import RESULT_FILES, check_free
+
+    if resume:
+        return
+    check_free(out, overwrite=overwrite, names=RESULT_FILES)  # before anything is discarded
+    if restart:
+        gone = discard_interrupted(out)
+        if gone:
+            _console(stderr=True).print(
+                f"--restart: discarded {' and '.join(gone)} of the earlier run in {out}", highlight=False
+            )
+
+
+def _provenance(command: str, options: dict, spec=None) -> dict:
+    """What produced an output folder, for advice.json's ``produced_by``."""
+    return {
+        "command": command,
+        "model_file": getattr(spec, "source_file", None),
+        "model_sha256": getattr(spec, "source_digest", None),
+        "options": json.loads(json.dumps(options, default=str)),
+    }
 
 
 def _run_tune(
@@ -250,20 +336,55 @@ def _run_tune(
     checkpoint_every: float = 30.0,
     time_limit: Optional[float] = None,
     threads: Optional[int] = None,
+    overwrite: bool = False,
+    restart: bool = False,
+    command: str = "walktune tune",
 ) -> None:
+    from .outputs import FolderLock
+
+    with _json_channel(as_json) as emit:
+        given = {
+            "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
+            "chains": chains, "seed": seed, "target_ess": target_ess, "transform": list(transform or []),
+            "no_transform": list(no_transform or []),
+            "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
+        }
+        out = _output_folder(given, out, resume, restart)
+        lock = FolderLock(out).acquire()  # before anything is read from or written to the folder
+        try:
+            options, spec = _run_options(given, out, resume, restart)
+            arguments = _tune_arguments(options, spec)
+            _make_room(out, resume=resume is not None, restart=restart, overwrite=overwrite)
+            result = _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask, resume,
+                              checkpoint_every, time_limit, threads)
+            produced_by = _provenance(command, options, spec)
+            result.save(out, produced_by=produced_by)
+            if report:
+                from .report import write_report
+
+                write_report(out)
+            # The results replaced the folder's earlier files, the checkpoint and any partial advice included.
+        finally:
+            lock.release()
+        if as_json:
+            from .export import with_provenance
+
+            emit(json.dumps(with_provenance(result.to_dict(), produced_by), indent=2))
+        elif not quiet:
+            from .console import render
+
+            render(_console(), result, target or options["target"], str(out))
+        else:
+            _console().print(f"advice written to {out}")
+
+
+def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask, resume, checkpoint_every,
+             time_limit, threads):
+    """Run the tuning job with its checkpoint in the locked folder ``out``; a stop exits with partial advice."""
     from .checkpoint import FILE_NAME, Checkpoint, Interrupted
-    from .console import StageProgress, render
+    from .console import StageProgress
     from .tune import tune
 
-    console = _console()
-    given = {
-        "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
-        "chains": chains, "seed": seed, "target_ess": target_ess, "transform": list(transform or []),
-        "no_transform": list(no_transform or []),
-        "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
-    }
-    out, options, spec = _run_options(given, out, resume)
-    arguments = _tune_arguments(options, spec)
     evaluator = None
     try:
         if workers is not None or dask is not None or time_limit is not None or threads is not None:
@@ -282,27 +403,13 @@ def _run_tune(
                 "without calling the model, then going on", highlight=False,
             )
         with _stop_on_signals(checkpoint), StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
-            result = tune(None if evaluator is not None else spec.function, chains=options["chains"],
-                          evaluator=evaluator, checkpoint=checkpoint, progress=progress, **arguments)
+            return tune(None if evaluator is not None else spec.function, chains=options["chains"],
+                        evaluator=evaluator, checkpoint=checkpoint, progress=progress, **arguments)
     except Interrupted as stop:
-        _interrupted(stop, out, console, as_json, quiet)
+        _interrupted(stop, out, _console(), emit, as_json, quiet)
     finally:
         if evaluator is not None and hasattr(evaluator, "close"):
             evaluator.close()
-    result.save(out)
-    if report:
-        from .report import write_report
-
-        write_report(out)
-    # The results are in place: the checkpoint and any partial advice are no longer needed.
-    checkpoint.remove()
-    (out / "partial-advice.json").unlink(missing_ok=True)
-    if as_json:
-        typer.echo(json.dumps(result.to_dict(), indent=2))
-    elif not quiet:
-        render(console, result, target or options["target"], str(out))
-    else:
-        console.print(f"advice written to {out}")
 
 
 @app.command("tune")
@@ -313,7 +420,9 @@ def tune_command(
     names: Optional[str] = typer.Option(None, "--names", help="Comma-separated parameter names (overrides PARAMETERS)."),
     start: Optional[str] = typer.Option(None, "--start", help="Comma-separated start values (overrides START)."),
     bound: List[str] = typer.Option([], "--bound", help="NAME=LOW:HIGH, repeatable; -inf/inf or empty for an open side."),
-    budget: Optional[int] = typer.Option(None, "--budget", help="Cap on log-density evaluations for the whole job."),
+    budget: Optional[str] = typer.Option(
+        None, "--budget", help="Cap on log-density evaluations for the whole job (a whole number: 50000 or 5e4)."
+    ),
     chains: Optional[int] = typer.Option(None, "--chains", help="Number of chains (default 4)."),
     seed: Optional[int] = typer.Option(None, "--seed", help="Seed for a reproducible run."),
     out: Optional[Path] = typer.Option(None, "--out", "-o", help="Output folder (default walktune-output)."),
@@ -340,6 +449,12 @@ def tune_command(
     time_limit: Optional[float] = typer.Option(
         None, "--time-limit", help="Seconds one evaluation may take (with --workers or --dask); a late one counts as failed."
     ),
+    overwrite: bool = typer.Option(
+        False, "--overwrite", help="Replace, as a whole, the files of an earlier run in the output folder."
+    ),
+    restart: bool = typer.Option(
+        False, "--restart", help="Discard the checkpoint of an interrupted or failed run in the output folder and start afresh."
+    ),
 ):
     """Tune a proposal for TARGET: pilot chains, geometry, advice, and a measured comparison.
 
@@ -347,8 +462,9 @@ def tune_command(
     partial advice, and --resume FOLDER continues it.
     """
     with _user_errors("write outputs"):
-        _run_tune(target, names, start, bound, budget, chains, seed, out, current_proposal, target_ess, as_json, quiet,
-                  report, transform, no_transform, workers, dask, resume, checkpoint_every, time_limit, threads)
+        _run_tune(target, names, start, bound, _parse_count(budget, "--budget"), chains, seed, out, current_proposal,
+                  target_ess, as_json, quiet, report, transform, no_transform, workers, dask, resume, checkpoint_every,
+                  time_limit, threads, overwrite=overwrite, restart=restart)
 
 
 @app.command("inspect")
@@ -366,11 +482,14 @@ def inspect_command(
     out: Optional[Path] = typer.Option(None, "--out", "-o", help="Write advice.json and the proposal files here."),
     as_json: bool = typer.Option(False, "--json", help="Print the advice.json payload instead of tables."),
     report: bool = typer.Option(False, "--report", help="Also write figures and report.html into --out."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace, as a whole, the files of an earlier run in --out."),
 ):
     """Diagnose chains you already have and advise a proposal, without the model."""
     from .chainfiles import read_chains
     from .console import render_inspection
     from .inspection import inspect
+
+    from .outputs import FolderLock, check_free
 
     with _user_errors("read or write"):
         data = read_chains(files, chain_column=chain_column)
@@ -380,16 +499,26 @@ def inspect_command(
             raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
         if report and out is None:
             raise WalktuneError("--report writes into the output folder; give --out too.")
-        result = inspect(
-            data.draws, data.names, warmup=warmup, thin=thin, params=chosen, proposal=current,
-            target_ess=target_ess, target_mcse=target_mcse, sources=data.sources, chain_column=chain_column,
-        )
-        if out is not None:
-            result.save(out)
-            if report:
-                from .report import write_report
+        lock = FolderLock(out).acquire() if out is not None else None  # before anything is written
+        try:
+            if lock is not None:
+                check_free(out, overwrite=overwrite)
+            result = inspect(
+                data.draws, data.names, warmup=warmup, thin=thin, params=chosen, proposal=current,
+                target_ess=target_ess, target_mcse=target_mcse, sources=data.sources, chain_column=chain_column,
+            )
+            if out is not None:
+                options = {"files": [str(Path(f).resolve()) for f in files], "chain_column": chain_column,
+                           "warmup": warmup, "thin": thin, "params": chosen, "target_ess": target_ess,
+                           "target_mcse": target_mcse, "proposal": str(proposal) if proposal else None}
+                result.save(out, produced_by=_provenance("walktune inspect", options))
+                if report:
+                    from .report import write_report
 
-                write_report(out)
+                    write_report(out)
+        finally:
+            if lock is not None:
+                lock.release()
         if as_json:
             typer.echo(json.dumps(result.to_dict(), indent=2))
         else:
@@ -413,12 +542,14 @@ def demo_command(
     out: Path = typer.Option(Path("walktune-demo"), "--out", "-o", help="Output folder for the demo."),
     seed: int = typer.Option(2026, "--seed", help="Seed of the demo run."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace, as a whole, an earlier demo's files in --out."),
 ):
     """Run the whole job on a bundled demo model (a sensor calibration with correlated parameters)."""
     with _user_errors("write outputs"):
         if not DEMO_MODEL.exists():
             raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune from its repository.")
-        _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet, report=True)
+        _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet,
+                  report=True, overwrite=overwrite, command="walktune demo")
 
 
 @app.command("export")
@@ -428,15 +559,18 @@ def export_command(
     fmt: Optional[str] = typer.Option(
         None, "--format", help="npy, csv, json or python (default: from the --to file's ending)."
     ),
+    recommended: bool = typer.Option(
+        False, "--recommended", help="Export the recommended option's proposal instead of the tuned covariance."
+    ),
 ):
-    """Convert the tuned proposal in advice.json to .npy, .csv, a small .json or a Python module."""
+    """Convert the tuned (or, with --recommended, the recommended) proposal in advice.json to .npy, .csv, a small .json or a Python module."""
     from .export import EXPORT_FORMATS, export_advice
 
     with _user_errors("export"):
         chosen = fmt or {".npy": "npy", ".csv": "csv", ".json": "json", ".py": "python"}.get(to.suffix)
         if chosen is None:
             raise WalktuneError(f"cannot tell the format from {to.name!r}; give --format ({', '.join(EXPORT_FORMATS)}).")
-        path = export_advice(source, to, chosen)
+        path = export_advice(source, to, chosen, recommended=recommended)
         _console().print(f"wrote {path}")
 
 

@@ -16,6 +16,7 @@ from rich.text import Text
 
 from . import theory
 from .constants import CAUTION
+from .recommend import format_factor
 
 if TYPE_CHECKING:  # for annotations only: showing an inspection needs no tuning code
     from .tune import TuneResult
@@ -81,18 +82,30 @@ def _hours(evaluations: float, seconds_per_evaluation: float) -> str:
 
 
 def posterior_table(result: TuneResult) -> Table:
-    table = Table(title="Posterior (from the tuned fixed-proposal run)", title_justify="left")
+    """Mean, MCSE, sd and R-hat, all from the draws of one run: the recommended one."""
+    run = result.posterior_run
+    rows = {row.proposal: row for row in result.comparison}
+    shape = f", {rows[run].evaluations} evaluations" if run in rows else ""
+    title = f"Posterior (mean, MCSE, sd and R-hat from the {run} fixed-proposal run{shape})"
+    if result.posterior_rhat is not None and not result.converged:
+        title += f"\nNOT CONVERGED: R-hat up to {np.nanmax(result.posterior_rhat):.3g} (below 1.01 wanted); do not trust these numbers"
+    table = Table(title=title, title_justify="left")
     for column, justify in [
-        ("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"),
+        ("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
         ("step size", "right"), ("R^2 by others", "right"),
     ]:
         table.add_column(column, justify=justify)
-    sd = result.structure.sd
+    sd = result.posterior_sd if result.posterior_sd is not None else result.structure.sd
     for i, name in enumerate(result.parameter_names):
+        rhat = result.posterior_rhat[i] if result.posterior_rhat is not None else float("nan")
+        flag = "" if rhat <= 1.01 else " !"
         table.add_row(
             name, _fmt(result.posterior_mean[i], 5), _fmt(result.posterior_mean_mcse[i], 2), _fmt(sd[i]),
+            Text(f"{rhat:.3f}{flag}", style="bold red" if flag else ""),
             _fmt(result.step_sizes[i]), f"{result.structure.determined_by_others[i]:.3f}",
         )
+    table.caption = ("step size: tuned per-parameter proposal sd; R^2 by others: from the pilot's covariance. "
+                     "! R-hat above 1.01: the chains disagree.")
     return table
 
 
@@ -101,7 +114,7 @@ def geometry_table(result: TuneResult, max_rows: int = 5) -> Table:
 
 
 def geometry_table_from(s, names, max_rows: int = 5) -> Table:
-    table = Table(title="Geometry", title_justify="left", show_header=False)
+    table = Table(title="Geometry (from the pilot's covariance estimate)", title_justify="left", show_header=False)
     table.add_column("what", style="bold")
     table.add_column("value")
     table.add_row("effective dimension", f"{s.effective_dimension:.2f} of {len(names)} (participation ratio)")
@@ -119,30 +132,44 @@ def geometry_table_from(s, names, max_rows: int = 5) -> Table:
     return table
 
 
+def _predicted(slowdown: dict) -> str:
+    """A predicted slow-down (walktune.theory.Slowdown as a dict), smallest ESS first."""
+    return (f"predicted {format_factor(slowdown['slowest_parameter'], 2)} lower smallest ESS per evaluation "
+            f"({format_factor(slowdown['slowest_direction'], 2)} in the slowest principal direction)")
+
+
 def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     table = Table(title="Advice", title_justify="left", show_header=False)
     table.add_column("what", style="bold")
     table.add_column("advice")
+    rec = result.recommended
+    rows = {row.proposal: row for row in result.comparison}
+    if rec is not None:
+        worth = result.evaluations_needed().get(rec.proposal, float("nan"))
+        saved = f" Saved as {output_folder}/recommended_proposal.npy and .csv" if output_folder else ""
+        if rec.coordinates != "parameters":
+            saved += " (in the sampler coordinates of reparam.json)"
+        table.add_row(Text("RECOMMENDED", style="bold green"), Text(
+            f"{rec.message} For ESS {result.target_ess}: about {_fmt(worth, 3)} evaluations "
+            f"(~{_hours(worth, result.seconds_per_evaluation)}).{saved}", style="bold"))
     where = f" (saved in {output_folder}/proposal_covariance.csv and .npy)" if output_folder else ""
     scale = theory.optimal_scale(len(result.parameter_names))
     table.add_row(
-        "proposal covariance",
+        "tuned covariance",
         f"propose theta + N(0, C), C = ({result.pilot.scale_factor:.3g} x {scale:.3g})^2 x posterior covariance{where}",
     )
-    table.add_row("expected acceptance", f"{result.expected_acceptance:.2f}")
+    tuned = rows.get("tuned-covariance")
+    measured = f"; measured {tuned.acceptance:.2f} in the tuned-covariance run" if tuned is not None else ""
+    table.add_row("acceptance", f"expected {result.expected_acceptance:.2f} if the posterior were Gaussian{measured}")
     steps = result.slowdowns["step_sizes"]
-    table.add_row(
-        "step sizes only",
-        f"per-parameter sds in the posterior table; predicted {steps['slowest']:.1f}x slower in the slowest "
-        f"direction, {steps['mean']:.1f}x on average",
-    )
+    table.add_row("step sizes only", f"per-parameter sds in the posterior table; {_predicted(steps)}")
     single = result.slowdowns["single_step"]
-    table.add_row("one step size", f"{result.single_step:.3g}; predicted {single['slowest']:.1f}x slower (slowest direction)")
+    table.add_row("one step size", f"{result.single_step:.3g}; {_predicted(single)}")
     if "current" in result.slowdowns:
         cur, res = result.slowdowns["current"], result.slowdowns["current_rescaled"]
         table.add_row(
             "your proposal",
-            f"predicted {cur['slowest']:.1f}x slower as it is; {res['slowest']:.1f}x if only its overall scale were tuned",
+            f"as it is, {_predicted(cur)}; {format_factor(res['slowest_parameter'], 2)} if only its overall scale were tuned",
         )
     reparam = result.reparam
     if reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
@@ -177,17 +204,33 @@ def comparison_table(result: TuneResult) -> Table:
         ("median ESS /1k eval", "right"), ("evals", "right"), ("speed-up", "right"), ("max R-hat", "right"),
     ]:
         table.add_column(column, justify=justify)
+    chosen = result.recommended.proposal if result.recommended is not None else None
     for row in result.comparison:
-        speedup = _fmt(row.speedup, 3) + "x"
-        if row.speedup_is_lower_bound:
-            speedup = ">= " + speedup
-        elif not row.ess_reliable:
-            speedup = "~" + speedup + " (rough)"
+        mark = (" <- recommended" if row.proposal == chosen else "") + ("" if row.ess_reliable else " *")
+        if not row.mixed:
+            mark += " (not mixed)"
         table.add_row(
-            row.proposal + ("" if row.ess_reliable else " *"), f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
-            str(row.evaluations), speedup, f"{row.max_rhat:.3f}",
+            row.proposal + mark, f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
+            str(row.evaluations), speedup_cell(row), _fmt(row.max_rhat, 4),
         )
+    table.caption = ("* ESS rests on fewer than 50 autocorrelation times per chain. >= : a lower bound (the baseline's "
+                     "chains had not mixed at all, so its ESS is too high); <= : an upper bound; ~ : rough, as likely "
+                     "too high as too low.")
     return table
+
+
+def speedup_cell(row) -> str:
+    """A comparison row's speed-up as measured, a bound, or rough with the evaluations that would settle it."""
+    value = format_factor(row.speedup)
+    kind = getattr(row, "speedup_kind", "measured")
+    if kind == "lower-bound":
+        return ">= " + value
+    if kind == "upper-bound":
+        return "<= " + value
+    if kind == "rough":
+        settle = row.evaluations_to_settle
+        return f"~{value} (rough; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
+    return value
 
 
 def findings_table(result) -> Table | Text:
@@ -309,11 +352,11 @@ def inspection_advice_table(result) -> Table:
     )
     steps = advice.slowdowns["step_sizes"]
     table.add_row("step sizes only", f"{', '.join(_fmt(x) for x in advice.step_sizes[:8])}{' ...' if d > 8 else ''}; "
-                  f"predicted {steps['slowest']:.1f}x slower in the slowest direction")
+                  f"{_predicted(steps)}")
     if "current" in advice.slowdowns:
         cur, res = advice.slowdowns["current"], advice.slowdowns["current_rescaled"]
-        table.add_row("your proposal", f"predicted {cur['slowest']:.1f}x slower than the advice as it is; "
-                      f"{res['slowest']:.1f}x if only its overall scale were tuned")
+        table.add_row("your proposal", f"against the advice as it is, {_predicted(cur)}; "
+                      f"{format_factor(res['slowest_parameter'], 2)} if only its overall scale were tuned")
     advised = float(np.nanmax(result.more_draws_advised))
     table.add_row("draws needed", f"with the advised proposal about {_fmt(advised, 3)} draws in all for the ESS wanted "
                   f"(optimal-scaling theory), against {_fmt(float(np.nanmax(result.more_draws_observed)), 3)} more at the observed efficiency")

@@ -4,7 +4,11 @@ The integrated autocorrelation time of a scalar chain is
 ``tau = 1 + 2 * sum_{t>=1} rho_t`` and the effective sample size of ``M``
 chains of ``N`` draws is ``ESS = M N / tau``. The autocorrelations ``rho_t``
 are combined over chains as in Vehtari et al. (2021), computed by FFT, and the
-sum is truncated by Geyer's (1992) initial monotone sequence estimator.
+sum is truncated by Geyer's (1992) initial monotone sequence estimator;
+``tau >= 1 / log10(S)`` with ``S`` the total number of draws (Vehtari et al.
+2021), so ``ESS <= S log10(S)``. The MCSE of a mean, ``sd / sqrt(ESS)``, uses
+the ESS of split chains (each chain cut in two halves), as Vehtari et al.
+(2021) compute every ESS.
 
 Every function takes draws shaped (chains, draws, params), (draws, params) or
 (draws,) and returns one value per parameter. Estimates that rest on too few
@@ -145,12 +149,13 @@ def _combined_rho(chains: np.ndarray):
     return rho, constant
 
 
-def _tau_from_rho(rho: np.ndarray) -> np.ndarray:
+def _tau_from_rho(rho: np.ndarray, total_draws: int) -> np.ndarray:
     """Geyer's initial monotone sequence estimate of the IACT.
 
     ``rho`` has shape (params, lags). Pair sums ``P_k = rho_2k + rho_2k+1``
     are kept while positive (initial positive sequence) and forced
     non-increasing (initial monotone sequence); ``tau = -1 + 2 sum_k P_k``.
+    ``total_draws`` is the number of draws over all chains, ``S = M N``.
     """
     n_pairs = rho.shape[1] // 2
     pairs = rho[:, : 2 * n_pairs : 2] + rho[:, 1 : 2 * n_pairs : 2]
@@ -160,16 +165,17 @@ def _tau_from_rho(rho: np.ndarray) -> np.ndarray:
     monotone = np.minimum.accumulate(np.where(positive, pairs, 0.0), axis=1)
     keep = np.arange(n_pairs)[None, :] < first_bad[:, None]
     tau = -1.0 + 2.0 * np.sum(np.where(keep, monotone, 0.0), axis=1)
-    # A strongly antithetic chain can give tau below 1/log10(N) in theory;
-    # bound it as Vehtari et al. (2021) do so that ESS stays finite.
-    n = rho.shape[1]
-    return np.maximum(tau, 1.0 / np.log10(max(n, 10)))
+    # Antithetic chains can give a tiny (even negative) tau. Vehtari et al.
+    # (2021) bound it below by 1/log10(S) with S the total number of draws over
+    # all chains, so that ESS <= S log10(S).
+    return np.maximum(tau, 1.0 / np.log10(max(total_draws, 10)))
 
 
 def _ess_of(chains: np.ndarray) -> Estimate:
+    """ESS of the mean for chains of shape (chains, draws, params), as given (split or not)."""
     m, n, _ = chains.shape
     rho, constant = _combined_rho(chains)
-    tau = _tau_from_rho(rho)
+    tau = _tau_from_rho(rho, m * n)
     ess_values = np.where(constant, np.nan, m * n / tau)
     too_short = constant | (n < MIN_DRAWS_PER_IACT * tau)
     return Estimate(ess_values, too_short)
@@ -187,18 +193,40 @@ def autocorrelation(draws, max_lag: int | None = None) -> np.ndarray:
     return rho[:, : max_lag + 1].T
 
 
-def ess(draws) -> Estimate:
+def _chains_for_ess(draws, split: bool) -> np.ndarray:
+    chains = as_chains(draws)
+    return _split(chains) if split else chains
+
+
+def ess(draws, split: bool = False) -> Estimate:
     """Effective sample size of the mean over all chains (no rank normalisation).
 
-    ``ESS = M N / tau`` with ``tau`` from Geyer's initial monotone sequence
-    on autocorrelations combined over chains.
+    ``ESS = S / tau`` for ``S`` draws in all, with ``tau`` from Geyer's initial
+    monotone sequence on autocorrelations combined over chains.
+
+    Parameters
+    ----------
+    draws : array-like of shape (chains, draws, params), (draws, params) or (draws,)
+    split : bool, default False
+        Split every chain in two halves first, as Vehtari et al. (2021) do for
+        every ESS: a chain that drifts then disagrees with itself, which lowers
+        the ESS. This is the ESS behind :func:`mcse_mean`. Unsplit, the value
+        describes a stationary chain's autocorrelation (what the pilot needs).
+
+    Returns
+    -------
+    Estimate of shape (params,)
     """
-    return _ess_of(as_chains(draws))
+    return _ess_of(_chains_for_ess(draws, split))
 
 
-def iact(draws) -> Estimate:
-    """Integrated autocorrelation time ``tau = M N / ESS`` per parameter."""
-    chains = as_chains(draws)
+def iact(draws, split: bool = False) -> Estimate:
+    """Integrated autocorrelation time ``tau = S / ESS`` per parameter, shape (params,).
+
+    ``split`` as in :func:`ess`; ``S`` counts the draws the ESS used (split
+    chains of odd length drop their middle draw).
+    """
+    chains = _chains_for_ess(draws, split)
     m, n, _ = chains.shape
     estimate = _ess_of(chains)
     return Estimate(m * n / np.asarray(estimate), estimate.too_short)
@@ -283,9 +311,15 @@ def rhat(draws) -> np.ndarray:
 
 
 def mcse_mean(draws) -> Estimate:
-    """Monte Carlo standard error of the posterior mean: ``sd / sqrt(ESS)``."""
+    """Monte Carlo standard error of the posterior mean: ``sd / sqrt(ESS)``, shape (params,).
+
+    ``sd`` is the standard deviation of all draws pooled; ``ESS`` is the ESS
+    of split chains (``ess(draws, split=True)``), as in Vehtari et al. (2021):
+    unsplit, a slow drift within chains that agree on average goes unseen and
+    the MCSE comes out too small.
+    """
     chains = as_chains(draws)
-    estimate = _ess_of(chains)
+    estimate = _ess_of(_split(chains))
     sd = chains.reshape(-1, chains.shape[2]).std(axis=0, ddof=1)
     return Estimate(sd / np.sqrt(np.asarray(estimate)), estimate.too_short)
 
@@ -311,8 +345,11 @@ def acceptance_rate(draws) -> float:
 class Summary:
     """All per-parameter diagnostics of a set of chains, computed in one pass.
 
-    Every array has shape (params,). ``*_too_short`` flag estimates resting on
-    fewer than :data:`MIN_DRAWS_PER_IACT` autocorrelation times per chain.
+    Every array has shape (params,), except ``chain_sd`` (chains, params).
+    ``ess``, ``iact`` and ``mcse`` come from split chains (``ess(draws,
+    split=True)``), so ``mcse = sd / sqrt(ess)`` and ``iact = S / ess`` agree
+    with each other. ``*_too_short`` flag estimates resting on fewer than
+    :data:`MIN_DRAWS_PER_IACT` autocorrelation times per (half-)chain.
     """
 
     mean: np.ndarray
@@ -332,9 +369,8 @@ class Summary:
 
 
 def _summary_block(chains: np.ndarray) -> dict:
-    m, n, _ = chains.shape
-    raw = _ess_of(chains)
     split = _split(chains)
+    raw = _ess_of(split)  # the ESS of the mean, behind the MCSE and the IACT (split chains)
     ranked = _rank_normalise(split)
     bulk = _ess_of(ranked)
     bulk_rhat = _psrf(ranked)
@@ -344,13 +380,14 @@ def _summary_block(chains: np.ndarray) -> dict:
     folded_rhat = _psrf(_rank_normalise(np.abs(split - median[None, None, :])))
     quantiles = np.quantile(pooled, [0.05, 0.95], axis=0)
     tails = [_ess_of((split <= q[None, None, :]).astype(float)) for q in quantiles]
-    sd = pooled.std(axis=0, ddof=1)
+    everything = chains.reshape(-1, chains.shape[2])  # mean and sd of all draws, as mcse_mean has them
+    sd = everything.std(axis=0, ddof=1)
     return dict(
-        mean=pooled.mean(axis=0),
+        mean=everything.mean(axis=0),
         sd=sd,
         mcse=sd / np.sqrt(np.asarray(raw)),
         ess=np.asarray(raw),
-        iact=m * n / np.asarray(raw),
+        iact=split.shape[0] * split.shape[1] / np.asarray(raw),
         bulk_ess=np.asarray(bulk),
         tail_ess=np.minimum(np.asarray(tails[0]), np.asarray(tails[1])),
         rhat=np.fmax(bulk_rhat, folded_rhat),
@@ -366,7 +403,8 @@ def summary(draws, block: int = 8) -> Summary:
 
     Computes parameters ``block`` at a time, so a large (possibly memory-mapped)
     array is read once, a block at a time, and never copied whole. Each
-    statistic equals the one of the function of the same name.
+    statistic equals the one of the function of the same name; ``ess`` and
+    ``iact`` those of ``ess(draws, split=True)`` and ``iact(draws, split=True)``.
     """
     if isinstance(draws, np.ndarray) and draws.ndim == 3 and draws.dtype == np.float64:
         source = draws

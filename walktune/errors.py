@@ -27,3 +27,12 @@ class SamplingError(WalktuneError):
     def __init__(self, message: str, first_failure: str | None = None):
         super().__init__(message)
         self.first_failure = first_failure
+
+
+class NumericalFailure(SamplingError):
+    """A numerical failure inside the tuning job (NaN, overflow, a singular matrix) that no stage could absorb.
+
+    The stages turn the failures they expect into findings; this is the net
+    under them, so that the user sees one line naming the stage, never a
+    traceback (the original exception is kept as ``__cause__``).
+    """

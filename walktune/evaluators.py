@@ -40,6 +40,8 @@ class BatchResult:
 
 
 def _to_scalar(value) -> float:
+    if value is None:
+        raise TypeError("the log-density returned None instead of a number (is a return statement missing?)")
     array = np.asarray(value, dtype=float)
     if array.size != 1:
         raise TypeError(f"the log-density must return one number per point; it returned shape {array.shape}")
@@ -67,9 +69,23 @@ class InProcessEvaluator:
         return _to_scalar(self.log_density(point))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
+        try:
+            return self._evaluate(points)
+        except SystemExit as exit_:
+            from .errors import TargetError
+
+            raise TargetError(
+                f"the model exited (it called sys.exit({exit_.code!r}) or raised SystemExit) while evaluating the "
+                "log-density; a log-density must return a number (-inf outside the support), not exit."
+            ) from None
+
+    def _evaluate(self, points: np.ndarray) -> BatchResult:
         if self.vectorized:
             try:
-                values = np.asarray(self.log_density(points), dtype=float).reshape(-1)
+                raw = self.log_density(points)
+                if raw is None:
+                    raise TypeError("the log-density returned None instead of an array of numbers")
+                values = np.asarray(raw, dtype=float).reshape(-1)
                 if values.shape[0] != points.shape[0]:
                     raise TypeError(
                         f"a vectorized log-density must return shape ({points.shape[0]},) for "
@@ -259,7 +275,11 @@ def _worker_main(conn, log_density: Callable, vectorized: bool, limit: float | N
             return  # the driver is gone
         if points is None:
             return
-        result = _evaluate_chunk(log_density, vectorized, points, limit)
+        try:
+            result = _evaluate_chunk(log_density, vectorized, points, limit)
+        except ValueError as error:  # a WalktuneError: the model exited; the driver stops the job with it
+            conn.send(("error", str(error)))
+            continue
         conn.send((result.values, result.errors, result.busy_seconds))
 
 
@@ -371,7 +391,7 @@ class ProcessPoolEvaluator:
             for conn in wait(list(waiting), timeout=timeout):
                 k = waiting[conn]
                 try:
-                    values, errors, busy = conn.recv()
+                    reply = conn.recv()
                 except (EOFError, OSError):
                     # The worker died mid-chunk: replace it and send the chunk again.
                     deaths += 1
@@ -383,7 +403,11 @@ class ProcessPoolEvaluator:
                         ) from None
                     self._send(k, chunks[k], deadline)
                     continue
-                results[k] = BatchResult(values, errors, busy)
+                if len(reply) == 2:
+                    from .errors import TargetError
+
+                    raise TargetError(reply[1])
+                results[k] = BatchResult(*reply)
             now = time.monotonic()
             for k in [k for k in waiting.values() if k not in results and k in deadline and deadline[k] <= now]:
                 self._replace(k)
@@ -516,13 +540,15 @@ class DaskEvaluator:
         return max(1, len(self._actors))
 
     def __call__(self, points: np.ndarray) -> BatchResult:
-        from .errors import SamplingError
+        from .errors import SamplingError, WalktuneError
 
         for attempt in range(self.retries + 1):
             pieces = _chunks(points.shape[0], self.parallelism)
             calls = [actor.evaluate(points[a:b]) for (_, actor), (a, b) in zip(self._actors, pieces)]
             try:
                 results = self._collect(calls, pieces)
+            except WalktuneError:  # the model exited on a worker (see InProcessEvaluator)
+                raise
             except Exception:  # noqa: BLE001 - a lost worker shows as many kinds of comm errors
                 # The user's errors are caught on the worker; this is a worker or connection lost.
                 if attempt == self.retries:

@@ -13,9 +13,18 @@ source is named):
   apart, posterior variance at least 80% of the prior's; and the number of
   prior-dominated directions of the likelihood-informed split.
 * ``poor-acceptance``: a measured acceptance rate below 0.1 or above 0.7
-  (optimal is 0.234-0.44 by dimension; Gelman, Roberts and Gilks 1996).
-* ``short-chains``: an ESS rests on fewer than 50 autocorrelation times per chain.
+  (optimal is 0.44 in one dimension, Gelman, Roberts and Gilks 1996, down to
+  0.234 as the dimension grows, Roberts, Gelman and Gilks 1997).
+* ``acceptance-mismatch``: the tuned covariance's measured acceptance is more
+  than 1.5 times off (either way) the acceptance expected on a Gaussian with the
+  pilot's covariance (a rule of thumb): the posterior is not Gaussian in shape,
+  and the measured figure is the one to trust.
+* ``short-chains``: the recommended run's ESS rests on fewer than 50 autocorrelation times per chain.
 * ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
+
+``not-converged`` and ``short-chains`` are about the recommended run, the one
+the posterior table comes from; ``pilot_converged`` in advice.json is false
+whenever ``not-converged`` or ``pilot-unsettled`` is raised.
 """
 
 from __future__ import annotations
@@ -190,15 +199,35 @@ def prior_dominated_findings(posterior_variance, prior_variance, names, informed
 
 
 def short_chain_findings(row, steps: int) -> list:
-    """``short-chains`` when the tuned run's ESS rests on too few autocorrelation times."""
+    """``short-chains`` when the recommended run's ESS rests on too few autocorrelation times."""
     if row.ess_reliable:
         return []
+    settle = f" about {row.settle_evaluations:,} evaluations for that run would settle it." if row.settle_evaluations else ""
     return [
         Finding(
             "short-chains", "warn", [],
-            "the tuned run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
-            "chain); its ESS and the speed-ups are rough. Raise the budget.",
-            {"iact_max": row.iact_max, "steps": steps},
+            f"the {row.proposal} run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
+            f"chain); its ESS and the speed-ups resting on it are rough. Raise the budget:{settle or ' its IACT is unknown.'}",
+            {"proposal": row.proposal, "iact_max": row.iact_max, "steps": steps,
+             "evaluations_to_settle": row.settle_evaluations},
+        )
+    ]
+
+
+def acceptance_mismatch_findings(expected: float, row, factor: float = 1.5) -> list:
+    """``acceptance-mismatch`` when ``row`` (the tuned covariance's run) accepts ``factor`` times more or less than expected."""
+    measured = row.acceptance
+    if not (np.isfinite(expected) and expected > 0 and np.isfinite(measured)):
+        return []
+    if 1 / factor <= measured / expected <= factor:
+        return []
+    return [
+        Finding(
+            "acceptance-mismatch", "info", [],
+            f"the tuned covariance accepted {measured:.2f} of its moves where {expected:.2f} is expected if the "
+            "posterior were Gaussian with the pilot's covariance: the posterior is not Gaussian in shape (or the "
+            "pilot's covariance is off), and the measured rate is the one to expect.",
+            {"expected": float(expected), "measured": float(measured)},
         )
     ]
 
@@ -248,18 +277,19 @@ def timeout_findings(timeouts: int, limit: float | None) -> list:
     ]
 
 
-def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords, proof, checks) -> list:
+def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords, proof, checks,
+                     recommended: str = "tuned-covariance", expected_acceptance: float = float("nan")) -> list:
     """Every finding of a tuning job, from its stage results (see :mod:`walktune.stages`), in a fixed order.
 
     Structure first (correlations, conditioning), then convergence and
-    identification, acceptance, the hard-geometry checks, the new coordinates'
+    identification, acceptance (and whether it is what was expected), the hard-geometry checks, the new coordinates'
     findings, and last what limits the run itself (short chains, an unsettled
     pilot, failed or timed-out evaluations).
     """
     names = posterior.names
     sd = np.sqrt(np.diag(pilot.covariance))
     findings = correlation_findings(structure, names) + conditioning_findings(structure, names)
-    findings += convergence_findings(proof.tuned_stats.rhat, names, "tuned-covariance")
+    findings += convergence_findings(proof.stats[recommended].rhat, names, recommended)
     findings += identification_findings(sd, posterior.bounds, names)
     if posterior.prior_terms is not None and coords.prior_covariance is not None:
         reparam = coords.reparam
@@ -267,11 +297,12 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
         findings += prior_dominated_findings(np.diag(pilot.covariance), np.diag(coords.prior_covariance), names,
                                              informed, posterior.dim)
     findings += acceptance_findings(proof.rows)
+    findings += acceptance_mismatch_findings(expected_acceptance, proof.tuned_row)
     findings += checks.multimodal + checks.funnel + checks.boundary + checks.heavy_tails
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
                  for note in checks.undecided]
     findings += coords.findings
-    findings += short_chain_findings(proof.tuned_row, proof.steps)
+    findings += short_chain_findings(next(row for row in proof.rows if row.proposal == recommended), proof.steps)
     findings += pilot_findings(pilot.converged, pilot_evaluations)
     findings += failed_evaluation_findings(proof.runs)
     findings += timeout_findings(posterior.counted.timeouts, posterior.time_limit)

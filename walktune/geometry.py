@@ -6,14 +6,16 @@
   to its local mode, and two modes count as separate only when the
   log-density dips between them (a curved ridge has one mode, however a
   mixture splits it).
-* Varying scale (funnels): draws sorted by a candidate parameter ``v``; the
-  spread of each other parameter between neighbours in that order estimates
-  its conditional spread given ``v`` (a smooth trend in the mean cancels), and
-  its ratio between the top and bottom fifth of ``v`` measures the funnel.
+* Varying scale (funnels): every other parameter is regressed linearly on a
+  candidate parameter ``v`` (which removes the trend of a correlated
+  Gaussian); the robust sd of the residuals in the top fifth of ``v``,
+  divided by that in the bottom fifth, measures the funnel.
 * Boundary pile-up: the histogram of a bounded parameter peaks in the bin
   next to the bound, and draws come within a small share of the sd of it.
-* Heavy tails: sample excess kurtosis well above 0, with its standard error
-  ``sqrt(24 / n_eff)`` (the large-sample value for a Gaussian).
+* Heavy tails: sample excess kurtosis well above 0, measured against
+  ``sqrt(24 / n_eff)``, its large-sample standard error when the draws are
+  Gaussian (the null). That is not the standard error of the estimate itself,
+  which heavy tails make larger and which is not computed.
 
 Every detector says when it has too few draws to decide instead of guessing.
 
@@ -27,6 +29,7 @@ Schwarz, G. (1978). Estimating the dimension of a model. Annals of Statistics, 6
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -73,12 +76,18 @@ def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
     in different regions, which is what thinning for the detectors needs.
     """
     per_chain = np.array([np.asarray(iact(chain)) for chain in draws])
-    return float(over_parameters(np.median(per_chain, axis=0)))
+    # A chain that never moved has no autocorrelation time (NaN): it says nothing about thinning.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
+        per_parameter = np.nanmedian(per_chain, axis=0)
+    per_parameter = per_parameter[np.isfinite(per_parameter)]
+    return float(over_parameters(per_parameter)) if per_parameter.size else float(draws.shape[1])
 
 
 def _thin_to_independent(draws: np.ndarray, tau: float, limit: int = 4000) -> np.ndarray:
     """Flatten (chains, n, d) draws, keeping about one per autocorrelation time (at most ``limit``)."""
     m, n, d = draws.shape
+    tau = tau if np.isfinite(tau) else float(n)  # unknown: keep one draw per chain
     step = max(1, int(np.ceil(tau)), int(np.ceil(m * n / limit)))
     return draws[:, ::step].reshape(-1, d)
 
@@ -284,9 +293,9 @@ def heavy_tail_findings(draws: np.ndarray, ess: np.ndarray, names: list) -> list
                     "heavy-tails",
                     "warn",
                     [names[i]],
-                    f"{names[i]} has excess kurtosis {k:.1f} +/- {se:.1f} (0 for a Gaussian): its tails are much "
-                    "heavier than a Gaussian's, so a proposal scaled to the bulk explores them slowly and tail "
-                    "quantiles converge last. A log or other transform may tame them; check tail ESS.",
+                    f"{names[i]} has excess kurtosis {k:.1f} (a Gaussian gives 0, with standard error {se:.2f} at this "
+                    "ESS): its tails are much heavier than a Gaussian's, so a proposal scaled to the bulk explores them "
+                    "slowly and tail quantiles converge last. A log or other transform may tame them; check tail ESS.",
                     {"excess_kurtosis": float(k), "standard_error": float(se)},
                 )
             )

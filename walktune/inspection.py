@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from . import theory
-from ._validation import as_covariance
+from ._validation import as_covariance, as_float_array, check_positive_number
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
 from .diagnostics import Summary, summary
@@ -142,14 +142,18 @@ class InspectionResult:
             "caution": CAUTION,
         }
 
-    def save(self, directory) -> Path:
-        from .io import csv_bytes, json_bytes, npy_bytes, write_folder
+    def save(self, directory, produced_by: dict | None = None) -> Path:
+        """Write advice.json and the proposal files into ``directory``, replacing its earlier walktune
+        files as a whole (:func:`walktune.outputs.replace_files`); ``produced_by`` goes into advice.json."""
+        from .export import with_provenance
+        from .io import csv_bytes, json_bytes, npy_bytes
+        from .outputs import replace_files
 
         names = self.parameter_names
-        return write_folder(
+        return replace_files(
             Path(directory),
             {
-                "advice.json": json_bytes(self.to_dict()),
+                "advice.json": json_bytes(with_provenance(self.to_dict(), produced_by)),
                 "proposal_covariance.npy": npy_bytes(self.advice.proposal_covariance),
                 "proposal_covariance.csv": csv_bytes(self.advice.proposal_covariance, names),
                 "step_sizes.csv": csv_bytes(self.advice.step_sizes[None, :], names),
@@ -320,6 +324,11 @@ def inspect(
     sources, chain_column : optional
         Where the draws came from, recorded in advice.json so a report can read them again.
     """
+    check_positive_number(target_ess, "target_ess")
+    if target_mcse is not None:
+        mcse = as_float_array(target_mcse, "target_mcse")
+        if not np.all(np.isfinite(mcse) & (mcse > 0)):
+            raise WalktuneError(f"`target_mcse` must be numbers > 0; got {target_mcse!r}.")
     array, names = _chosen_draws(draws, names, params, warmup, thin)
     m, n, d = array.shape
     current = None
@@ -338,11 +347,14 @@ def inspect(
     advice = advise(covariance, current=current)
 
     needed = np.full(d, float(target_ess))
-    if target_mcse is not None:
-        needed = np.maximum(needed, (s.sd / np.asarray(target_mcse, dtype=float)) ** 2)
     total = m * n
-    per_draw = s.bulk_ess / total
-    more_observed = np.maximum(0.0, needed / per_draw - total)
+    more_observed = np.maximum(0.0, needed / (s.bulk_ess / total) - total)
+    if target_mcse is not None:
+        # MCSE = sd / sqrt(ESS) with the split-chain ESS of the mean (s.ess), so the
+        # draws an MCSE target needs follow that ESS per draw, not the bulk ESS.
+        mean_ess_needed = (s.sd / np.asarray(target_mcse, dtype=float)) ** 2
+        needed = np.maximum(needed, mean_ess_needed)
+        more_observed = np.maximum(more_observed, mean_ess_needed / (s.ess / total) - total)
     advised_total = needed / theory.optimal_efficiency(d)
 
     rate = float(np.mean(chain_moves))

@@ -13,7 +13,12 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
-#: Relative step of the finite differences, about the cube root of machine epsilon.
+#: Relative step of the finite differences, about the fourth root of machine
+#: epsilon (2.2e-16 ** 0.25 = 1.2e-4): for a central second difference the
+#: truncation error grows as h^2 and the rounding error as eps / h^2, balanced
+#: at h ~ eps^(1/4) (textbook numerical analysis). The central first difference
+#: that reuses these evaluations would prefer eps^(1/3) (6e-6); at 1e-4 its
+#: truncation error is of order 1e-8 relative, ample for a Newton step.
 FD_STEP = 1e-4
 
 

@@ -341,5 +341,9 @@ def check_start(posterior: Posterior) -> None:
     """Evaluate the start point; a start outside the support is the user's error."""
     first = posterior.counted(posterior.start[None, :])
     if first.errors or not np.isfinite(first.values[0]):
-        detail = first.errors[0].strip().splitlines()[-1] if first.errors else f"value {first.values[0]}"
-        raise TargetError(f"the log-density at the start point is not finite ({detail}); choose a start inside the support.")
+        if first.errors:
+            detail = first.errors[0].strip().splitlines()[-1]
+            raise TargetError(f"evaluating the log-density at the start point failed ({detail}).")
+        raise TargetError(
+            f"the log-density at the start point is not finite (value {first.values[0]}); choose a start inside the support."
+        )

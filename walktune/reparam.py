@@ -32,20 +32,15 @@ with the Jacobian counted: per parameter
 multivariate Gaussian), which rewards transforms that straighten a curved
 ridge between parameters.
 
-The likelihood-informed subspace (Cui, Martin, Marzouk, Solonen and Spantini
-2014; Cui, Law and Marzouk 2016) comes from the generalised eigenproblem of the
-posterior covariance against the prior covariance: in whitened coordinates the
-prior covariance ``C = W^{-1} S_prior W^{-T} = Q diag(c) Q^T``; a direction
-with ``1/c`` near 1 has posterior variance close to the prior's and is
-prior-dominated.
+The informed split (:mod:`walktune.informed`) chooses ``Q``: its first ``r``
+columns are the directions where the posterior variance is markedly below the
+prior's, a variant of the likelihood-informed subspace of Cui et al. (2014).
 
 References
 ----------
 Box, G. E. P. and Cox, D. R. (1964). An analysis of transformations. JRSS B, 26(2), 211-252.
 Cui, T., Martin, J., Marzouk, Y. M., Solonen, A. and Spantini, A. (2014). Likelihood-informed
 dimension reduction for nonlinear inverse problems. Inverse Problems, 30, 114015.
-Cui, T., Law, K. J. H. and Marzouk, Y. M. (2016). Dimension-independent likelihood-informed
-MCMC. Journal of Computational Physics, 304, 109-137.
 """
 
 from __future__ import annotations
@@ -58,14 +53,10 @@ import numpy as np
 from scipy import special
 
 from .errors import WalktuneError
+from .informed import PRIOR_DOMINATED, informed_split, informed_threshold  # noqa: F401 (re-exported)
 
 SCHEMA = "walktune.reparam/1"
 KINDS = ("identity", "log", "neglog", "logit")
-
-#: A direction whose posterior variance is at least this share of its prior
-#: variance counts as prior-dominated (common practice in the LIS literature
-#: keeps directions where the data reduce the variance markedly).
-PRIOR_DOMINATED = 0.9
 
 
 # --------------------------------------------------------------------------- transforms
@@ -434,8 +425,9 @@ def build_reparam(
     identity transforms). ``covariance``, a better estimate of the posterior
     covariance of theta than the draws' (e.g. the pilot's shrinkage
     estimate), is used when every transform is the identity.
-    ``n_independent`` (roughly independent draws behind the covariance) makes
-    the informed split allow for sampling noise.
+    ``n_independent`` (roughly independent draws behind the covariance) sets
+    the informed split's threshold so that sampling noise alone calls few
+    directions informed (:func:`informed_threshold`).
     """
     choices = choose_transforms(draws, names, bounds, force, forbid)
     kinds = [c.kind for c in choices]
@@ -448,18 +440,6 @@ def build_reparam(
     if covariance is not None and all(k == "identity" for k in kinds):
         cov_u = np.asarray(covariance, dtype=float)
     return fit_map(list(names), choices, u.mean(axis=0), cov_u, prior_covariance, n_independent)
-
-
-def informed_threshold(n_independent=None) -> float:
-    """Posterior/prior variance ratio below which a direction counts as informed.
-
-    :data:`PRIOR_DOMINATED` (0.9), lowered by three standard errors of a
-    variance estimated from ``n_independent`` draws (``sqrt(2 / n)``), so that
-    sampling noise does not make prior-dominated directions look informed.
-    """
-    if not n_independent:
-        return PRIOR_DOMINATED
-    return float(min(PRIOR_DOMINATED, max(0.5, 1.0 - 3.0 * np.sqrt(2.0 / n_independent))))
 
 
 def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None) -> Reparam:
@@ -476,15 +456,10 @@ def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior
         theta_mean = np.array([inverse(k, mean[i], low[i], high[i]) for i, k in enumerate(kinds)])
         slope = np.exp(-np.array([log_jacobian(k, mean[i], low[i], high[i]) for i, k in enumerate(kinds)]))
         prior_u = np.asarray(prior_covariance) * np.outer(slope, slope)
-        white = np.linalg.solve(chol, np.linalg.solve(chol, prior_u).T)
-        c, vectors = np.linalg.eigh(0.5 * (white + white.T))
-        order = np.argsort(-c)  # widest prior (most informed) first
-        c, vectors = c[order], vectors[:, order]
-        ratio = 1.0 / np.maximum(c, 1e-300)
-        threshold = informed_threshold(n_independent)
-        informed = int(np.sum(ratio < threshold))
-        rotation = vectors
-        notes.append(f"likelihood-informed subspace: {informed} of {d} directions (posterior/prior variance < {threshold:.2f}); "
+        split = informed_split(chol, prior_u, n_independent)
+        rotation, informed, ratio = split.rotation, split.informed, split.ratio
+        notes.append(f"likelihood-informed subspace: {informed} of {d} directions "
+                     f"(posterior/prior variance < {split.threshold:.2f}); "
                      f"prior covariance mapped at theta = {np.array2string(theta_mean, precision=4)}")
     return Reparam(list(names), list(choices), mean, chol, rotation, informed, ratio, notes)
 

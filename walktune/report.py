@@ -12,6 +12,8 @@ from __future__ import annotations
 import base64
 import html
 import io
+import zipfile
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -24,7 +26,8 @@ import numpy as np  # noqa: E402
 from .diagnostics import autocorrelation, iact  # noqa: E402
 from .errors import WalktuneError  # noqa: E402
 from .export import load_advice  # noqa: E402
-from .io import write_folder  # noqa: E402
+from .outputs import REPORT_FILES, FolderLock, replace_files  # noqa: E402
+from .recommend import format_factor, speedup_text  # noqa: E402
 
 #: Most points drawn per chain in a trace, and in a scatter over all chains.
 MAX_TRACE_POINTS = 1000
@@ -72,12 +75,14 @@ def load_run(folder) -> Run:
     folder = Path(folder)
     if not folder.is_dir():
         raise WalktuneError(f"{folder} is not a folder; point at a walktune output folder.")
+    if (folder / "checkpoint.npz").exists():
+        # An interrupted run has no draws to draw from; its partial advice is in partial-advice.json.
+        raise WalktuneError(
+            f"{folder} holds an interrupted run (checkpoint.npz); no report is made of a run that has not "
+            f"finished: finish it with `walktune tune --resume {folder}` (or start afresh with --restart), then "
+            "make the report."
+        )
     if not (folder / "advice.json").exists():
-        if (folder / "checkpoint.npz").exists():
-            raise WalktuneError(
-                f"{folder} holds an interrupted run (checkpoint.npz, partial-advice.json); finish it with "
-                f"`walktune tune --resume {folder}`, then make the report."
-            )
         raise WalktuneError(f"{folder} holds no walktune run (no advice.json); run `walktune tune` or `inspect --out` first.")
     advice = load_advice(folder)
     names = list(advice["parameter_names"])
@@ -102,20 +107,27 @@ def load_run(folder) -> Run:
     if not path.exists():
         raise WalktuneError(f"{path} is missing; the report needs the draws saved by `walktune tune`.")
     try:
-        archive = np.load(path, allow_pickle=False)
-        draws = {key: archive[key] for key in archive.files if key != "parameter_names"}
-    except (ValueError, OSError, EOFError) as error:
-        raise WalktuneError(f"{path} is not readable ({error}); re-run `walktune tune`.") from None
+        with np.load(path, allow_pickle=False) as archive:
+            draws = {key: archive[key] for key in archive.files if key != "parameter_names"}
+    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile, zlib.error) as error:
+        raise WalktuneError(f"{path} is damaged or not readable ({type(error).__name__}: {error}); "
+                            "re-run `walktune tune`.") from None
+    bad = [key for key, value in draws.items() if value.ndim != 3 or value.shape[2] != len(names)]
+    if bad:
+        raise WalktuneError(f"{path} is damaged: {bad[0]} is not shaped (chains, steps, {len(names)}); "
+                            "re-run `walktune tune`.")
     labels = {key.replace("_", "-"): value for key, value in draws.items()}
     if "tuned-covariance" not in labels:
         raise WalktuneError(f"{path} has no tuned-covariance run; re-run `walktune tune`.")
     baseline = next((k for k in ("current", "single-step") if k in labels), None)
+    chosen = (advice.get("recommended") or {}).get("proposal")
+    main = chosen if chosen in labels else "tuned-covariance"
     reparam = None
     if (folder / "reparam.json").exists():
         from .reparam import load_reparam
 
         reparam = load_reparam(folder, names=names)
-    return Run(folder, advice, names, labels, "tuned-covariance", baseline, reparam=reparam)
+    return Run(folder, advice, names, labels, main, baseline, reparam=reparam)
 
 
 def _thin(n: int, limit: int) -> int:
@@ -171,6 +183,7 @@ def figure_traces(run: Run):
 
 
 def _strongest_pairs(run: Run) -> list:
+    """The pairs most correlated in the pilot's covariance estimate (what the geometry table shows), with that correlation."""
     cov = np.asarray(run.advice["posterior_covariance"])
     sd = np.sqrt(np.diag(cov))
     corr = cov / np.outer(sd, sd)
@@ -180,6 +193,11 @@ def _strongest_pairs(run: Run) -> list:
     iu = np.triu_indices(d, k=1)
     order = np.argsort(-np.abs(corr[iu]))[:MAX_PAIRS]
     return [(int(iu[0][o]), int(iu[1][o]), float(corr[iu][o])) for o in order]
+
+
+def _which_draws(run: Run, label: str) -> str:
+    draws = run.draws[label]
+    return f"draws of the {label} run ({draws.shape[0]} chains x {draws.shape[1]} steps)"
 
 
 def figure_pairs(run: Run):
@@ -200,7 +218,7 @@ def figure_pairs(run: Run):
     fig, axes = plt.subplots(len(rows), len(pairs), figsize=(3.6 * len(pairs), 3.6 * len(rows)), squeeze=False)
     for r, (prefix, values) in enumerate(rows):
         points = values[::step]
-        for ax, (i, j, _) in zip(axes[r], pairs):
+        for ax, (i, j, pilot_rho) in zip(axes[r], pairs):
             ax.scatter(points[:, i], points[:, j], s=3, alpha=0.35, color="#1b6b93", edgecolors="none")
             sub = np.cov(values[:, [i, j]].T)
             eigenvalues, vectors = np.linalg.eigh(sub)
@@ -217,10 +235,11 @@ def figure_pairs(run: Run):
             ax.set_xlabel(label(run.names[i]))
             ax.set_ylabel(label(run.names[j]))
             rho = np.corrcoef(values[:, i], values[:, j])[0, 1]
-            ax.set_title(f"{prefix}correlation {rho:+.3f}")
+            pilot_note = "" if prefix else f" (pilot estimate {pilot_rho:+.3f})"
+            ax.set_title(f"{prefix}correlation {rho:+.3f} in these draws{pilot_note}")
             if step > 1:
                 _note(ax, f"1 in {step} draws drawn")
-    title = "Strongest pairs, principal axes +/- 2 sd"
+    title = f"Strongest pairs (by the pilot's covariance), principal axes +/- 2 sd; {_which_draws(run, run.main)}"
     if len(rows) > 1:
         title += "\nbelow: the same pairs in the chosen transformed coordinates"
     fig.suptitle(title, fontsize=10)
@@ -242,8 +261,8 @@ def figure_spectrum(run: Run):
     ax.xaxis.get_major_locator().set_params(integer=True)
     ax.set_xlabel("principal direction (tightest first)")
     ax.set_ylabel("eigenvalue of the correlation matrix")
-    ax.set_title(f"Eigen-spectrum: {run.advice['spectrum_decades']:.1f} decades, effective dimension "
-                 f"{run.advice['effective_dimension']:.1f} of {values.size}")
+    ax.set_title(f"Eigen-spectrum of the pilot's covariance: {run.advice['spectrum_decades']:.1f} decades, "
+                 f"effective dimension {run.advice['effective_dimension']:.1f} of {values.size}")
     ax.legend(loc="upper left")
     if ratio is not None:
         ax = axes[0, 1]
@@ -268,17 +287,18 @@ def figure_autocorrelation(run: Run):
     for label in labels:
         draws = run.draws[label]
         tau = _iact_per_parameter(run, label)
-        slowest = int(np.nanargmax(tau))
+        slowest = int(np.nanargmax(tau)) if np.any(np.isfinite(tau)) else 0  # all NaN: no chain moved
         column = np.asarray(draws[:, :, [slowest]], dtype=float)
         curves[label] = (slowest, float(np.asarray(iact(column))[0]), autocorrelation(column)[:, 0])
-    reach = int(min(max(5 * max(c[1] for c in curves.values()), 20), min(run.draws[l].shape[1] for l in labels) - 1))
+    longest = max((c[1] for c in curves.values() if np.isfinite(c[1])), default=4.0)
+    reach = int(min(max(5 * longest, 20), min(run.draws[l].shape[1] for l in labels) - 1))
     for label, (slowest, tau, rho) in curves.items():
         ax.plot(np.arange(reach + 1), rho[: reach + 1], color=PROPOSAL_COLOURS.get(label, "#555555"),
                 label=f"{label}: {run.names[slowest]} (IACT {tau:.3g})")
     ax.axhline(0, color="#555555", lw=0.6)
     ax.set_xlabel("lag (steps)")
     ax.set_ylabel("autocorrelation")
-    ax.set_title("Autocorrelation of the slowest parameter")
+    ax.set_title(f"Autocorrelation of the slowest parameter, in the draws of the {' and '.join(labels)} runs")
     ax.legend()
     fig.tight_layout()
     return fig
@@ -295,17 +315,21 @@ def figure_ess(run: Run):
             hatch = "//" if not row.get("ess_reliable", True) else None
             ax.bar(k, values[k], color=PROPOSAL_COLOURS.get(row["proposal"], "#555555"), hatch=hatch, edgecolor="#333333")
             ax.scatter(k, max(row.get("median_ess_per_1000") or 0.0, 1e-6), color="black", marker="D", s=16, zorder=3)
-            text = f"{row['speedup']:.3g}x" if row.get("speedup") else ""
-            if row.get("speedup_is_lower_bound"):
-                ax.annotate("", xy=(k, values[k] * 2.5), xytext=(k, values[k]),
+            text = format_factor(row["speedup"]) if row.get("speedup") else ""
+            kind = row.get("speedup_kind") or ("lower-bound" if row.get("speedup_is_lower_bound") else "measured")
+            if kind in ("lower-bound", "upper-bound"):
+                # The arrow points where the truth lies: above a lower bound, below an upper one.
+                ax.annotate("", xy=(k, values[k] * (2.5 if kind == "lower-bound" else 0.4)), xytext=(k, values[k]),
                             arrowprops={"arrowstyle": "->", "color": "black"})
-                text = ">= " + text
+                text = (">= " if kind == "lower-bound" else "<= ") + text
+            elif kind == "rough":
+                text = "~" + text
             ax.text(k, values[k], text, ha="center", va="bottom", fontsize=8)
         ax.set_xticks(range(len(rows)), labels)
         ax.set_ylim(min(values) / 3, max(values) * 6)
         ax.set_ylabel("min ESS per 1000 evaluations (log scale)")
-        ax.set_title("Measured efficiency (bars: min over parameters; diamonds: median)")
-        _note(ax, "arrow: a lower bound; hatched: rough (chain too short)", top=True)
+        ax.set_title("Measured efficiency of every proof run (bars: min over parameters; diamonds: median)")
+        _note(ax, "speed-ups over the first run; arrow: a bound (truth beyond it); hatched, ~: rough (chain too short)", top=True)
     else:
         info = run.advice.get("inspection", {}).get("parameters", [])
         ess = [p["bulk_ess"] or 0.0 for p in info]
@@ -332,18 +356,19 @@ def figure_needed(run: Run):
     ax.set_xscale("log")
     ax.set_yticks(range(len(labels)), labels)
     ax.set_xlabel("evaluations (log scale)")
-    ax.set_title(f"Evaluations needed for ESS {run.advice.get('target_ess', 400):g}")
+    ax.set_title(f"Evaluations needed for ESS {run.advice.get('target_ess', 400):g}, from each proof run's measured min ESS")
     fig.tight_layout()
     return fig
 
 
 FIGURES = [
-    ("traces", figure_traces, "Traces of each parameter, pilot and tuned run, one colour per chain."),
-    ("pairs", figure_pairs, "The most strongly correlated pairs, with the principal axes of their covariance."),
-    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix: the pinned directions are the ones a diagonal proposal crawls along; with a prior given apart, the directions the data inform."),
-    ("autocorrelation", figure_autocorrelation, "Autocorrelation of the slowest parameter for the baseline and the tuned proposal."),
-    ("ess", figure_ess, "Effective samples per 1000 evaluations for every proposal measured."),
-    ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted."),
+    ("traces", figure_traces, "Traces of each parameter in the pilot and in the recommended run, one colour per chain."),
+    ("pairs", figure_pairs, "The pairs most correlated in the pilot's covariance estimate, drawn from the recommended run's "
+     "draws, with the principal axes of their covariance in those draws; each panel gives both correlations."),
+    ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix of the pilot's covariance estimate: the pinned directions (small eigenvalues) cap the step a diagonal proposal can take, so it crawls along the widest ones (large eigenvalues); with a prior given apart, the directions the data inform."),
+    ("autocorrelation", figure_autocorrelation, "Autocorrelation of the slowest parameter in the baseline run and the recommended run."),
+    ("ess", figure_ess, "Effective samples per 1000 evaluations in every proof run (fixed proposals, equal budgets)."),
+    ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted, at the efficiency measured in its proof run."),
 ]
 
 
@@ -368,17 +393,32 @@ def _plain_advice(advice: dict) -> list:
         info = advice.get("inspection", {})
         lines.append(f"These are {info.get('chains')} chains of {info.get('draws_per_chain')} draws from your own sampler; "
                      f"the state changed in {info.get('acceptance_from_draws', float('nan')):.0%} of steps.")
-    if rows:
-        tuned = rows[-1]
-        first = rows[0]
-        bound = "at least " if tuned.get("speedup_is_lower_bound") else ("roughly " if not tuned.get("ess_reliable") else "")
-        lines.append(f"Use the proposal covariance in proposal_covariance.csv: measured on equal budgets it gave {bound}"
-                     f"{tuned['speedup']:.3g} times the effective samples per evaluation of {first['proposal']}.")
+    recommended = advice.get("recommended")
+    if rows and recommended:
+        chosen = next((row for row in rows if row["proposal"] == recommended["proposal"]), rows[-1])
+        where = ("recommended_proposal.csv (in the sampler coordinates of reparam.json)"
+                 if recommended.get("coordinates") == "reparam.json" else "recommended_proposal.csv")
+        if chosen is rows[0]:
+            worth = "no other option was measured faster than it beyond the measurement's error"
+        else:
+            worth = (f"measured on equal budgets it gave {speedup_text(chosen['speedup'], chosen.get('speedup_kind', 'measured'))} "
+                     f"the effective samples per evaluation of {rows[0]['proposal']}")
+        action = "Keep your current proposal" if recommended.get("keep_current") else f"Use {chosen['proposal']} ({where})"
+        lines.append(f"{action}: {worth}.")
+        if not recommended.get("resolved", True):
+            lines.append(recommended["message"])
+        lines.append(f"Expect an acceptance rate near {chosen['acceptance']:.2f} (measured in that run).")
+    elif rows:
+        lines.append("Use the proposal covariance in proposal_covariance.csv.")
     else:
         lines.append("Use the proposal covariance in proposal_covariance.csv (the covariance of the draws scaled for their dimension).")
-    lines.append(f"Expect an acceptance rate near {advice['expected_acceptance']:.2f}. If your sampler takes only step sizes, "
-                 "use step_sizes.csv, but expect it to be slower "
-                 f"(about {advice['predicted_slowdown']['step_sizes']['slowest']:.1f}x in the slowest direction).")
+    lines.append("If your sampler takes only step sizes, use step_sizes.csv; theory predicts "
+                 f"{format_factor(advice['predicted_slowdown']['step_sizes']['slowest_parameter'], 2)} lower smallest ESS "
+                 "per evaluation than with the tuned covariance.")
+    table = advice.get("posterior_table")
+    if table and not table.get("converged", True):
+        lines.append(f"The posterior summary comes from the {table['run']} run, whose chains have not converged "
+                     "(R-hat above 1.01): do not trust it yet.")
     critical = [f for f in advice.get("findings", []) if f["severity"] == "critical"]
     if critical:
         lines.append("Before anything else: " + "; ".join(f["kind"] for f in critical) + " (see the findings).")
@@ -403,6 +443,30 @@ figure { margin: 1.2em 0; }
 figure img { max-width: 100%; border: 1px solid #ddd; }
 figcaption { font-size: .9em; color: #555; }
 """
+
+
+def _posterior_html(advice: dict, names: list) -> list:
+    """The posterior table of a tuning run: mean, MCSE, sd and R-hat from the one run it names."""
+    table = advice.get("posterior_table")
+    if not table:
+        return []
+    esc = html.escape
+    parts = [f"<h2>Posterior (from the {esc(table['run'])} fixed-proposal run)</h2>"]
+    if not table.get("converged", True):
+        parts.append('<p class="partial">NOT CONVERGED: an R-hat is above 1.01 (marked !); these numbers are not '
+                     "trustworthy yet.</p>")
+    parts.append("<table><tr><th>parameter</th><th>mean</th><th>MCSE</th><th>sd</th><th>R-hat</th></tr>")
+
+    def cell(value, digits=4):
+        return "n/a" if value is None else f"{value:.{digits}g}"
+
+    for i, name in enumerate(names):
+        rhat = (table.get("rhat") or [None] * len(names))[i]
+        flag = " !" if rhat is None or rhat > 1.01 else ""
+        parts.append(f"<tr><td>{esc(name)}</td><td>{cell(table['mean'][i], 5)}</td><td>{cell(table['mcse'][i], 2)}</td>"
+                     f"<td>{cell((table.get('sd') or [None] * len(names))[i])}</td><td>{cell(rhat)}{flag}</td></tr>")
+    parts.append("</table>")
+    return parts
 
 
 def render_html(run: Run, pngs: dict) -> str:
@@ -435,14 +499,16 @@ def render_html(run: Run, pngs: dict) -> str:
         parts.append("<h2>Measured comparison</h2><table><tr><th>proposal</th><th>acceptance</th>"
                      "<th>min ESS / 1000 evaluations</th><th>median</th><th>evaluations</th><th>speed-up</th></tr>")
         for r in rows:
-            speed = f"{r['speedup']:.3g}x" if r.get("speedup") is not None else "n/a"
-            if r.get("speedup_is_lower_bound"):
-                speed = "&ge; " + speed
-            elif not r.get("ess_reliable", True):
-                speed = "~" + speed + " (rough)"
+            kind = r.get("speedup_kind") or ("lower-bound" if r.get("speedup_is_lower_bound") else "measured")
+            speed = esc(speedup_text(r["speedup"], kind)) if r.get("speedup") is not None else "n/a"
+            if kind == "rough" and r.get("evaluations_to_settle"):
+                speed += f" (about {r['evaluations_to_settle']:,} evaluations in all, over both runs, would settle it)"
+            if r["proposal"] == (a.get("recommended") or {}).get("proposal"):
+                speed += " &larr; recommended"
             parts.append(f"<tr><td>{esc(r['proposal'])}</td><td>{r['acceptance']:.2f}</td><td>{(r['ess_per_1000'] or 0):.3g}</td>"
                          f"<td>{(r['median_ess_per_1000'] or 0):.3g}</td><td>{r['evaluations']}</td><td>{speed}</td></tr>")
         parts.append("</table>")
+    parts += _posterior_html(a, run.names)
     parts.append("<h2>Figures</h2>")
     for name, _, caption in FIGURES:
         if name in pngs:
@@ -455,11 +521,15 @@ def render_html(run: Run, pngs: dict) -> str:
 
 def write_report(folder) -> Path:
     """Write the figures (PNG) and report.html into ``folder``; returns the page's path."""
-    run = load_run(folder)
-    figures = build_figures(run)
-    pngs = {name: _png(fig) for name, fig in figures.items() if fig is not None}
-    page = render_html(run, pngs).encode()
-    files = {f"{name}.png": data for name, data in pngs.items()}
-    files["report.html"] = page
-    write_folder(run.folder, files)
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise WalktuneError(f"{folder} is not a folder; point at a walktune output folder.")
+    with FolderLock(folder):  # no run may write the folder while its report is drawn from it
+        run = load_run(folder)
+        figures = build_figures(run)
+        pngs = {name: _png(fig) for name, fig in figures.items() if fig is not None}
+        page = render_html(run, pngs).encode()
+        files = {f"{name}.png": data for name, data in pngs.items()}
+        files["report.html"] = page
+        replace_files(run.folder, files, replaced=REPORT_FILES)  # no figure of an earlier report stays
     return run.folder / "report.html"

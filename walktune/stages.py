@@ -26,7 +26,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from . import theory
+from . import recommend, theory
 from .advice import Advice
 from .diagnostics import Summary, summary
 from .engine import Chains, sample
@@ -126,12 +126,23 @@ def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> 
     return np.diag(guess**2)
 
 
-def _overdispersed_starts(counted, centres, cov, chains: int, rng):
-    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite.
+def _reflect_into(points: np.ndarray, bounds: np.ndarray) -> np.ndarray:
+    """Mirror coordinates that fall outside ``bounds`` (d, 2) back across the bound they crossed."""
+    low, high = bounds[:, 0], bounds[:, 1]
+    points = np.where(points < low, 2 * low - points, points)
+    points = np.where(points > high, 2 * high - points, points)
+    return np.clip(points, low, high)
+
+
+def _overdispersed_starts(counted, centres, cov, chains: int, rng, bounds: np.ndarray):
+    """Starts drawn from ``N(centre, 4 cov)``, mirrored into the bounds, pulled in until the density is finite.
 
     Chain ``c`` starts around ``centres[c % len(centres)]``, so that chains
-    begin in every separate mode the optimizer found. Returns the points
-    (chains, d) and their log-densities (chains,).
+    begin in every separate mode the optimizer found. A draw outside a bound
+    is mirrored back across it rather than pulled towards the centre: a mode
+    on a bound where the density is unbounded (a gamma shape below 1) is a
+    point a random walk cannot leave in any useful time, and no chain may
+    start there. Returns the points (chains, d) and their log-densities (chains,).
     """
     chol = np.linalg.cholesky(cov)
     points = np.empty((chains, centres[0].shape[0]))
@@ -140,7 +151,7 @@ def _overdispersed_starts(counted, centres, cov, chains: int, rng):
         centre = centres[c % len(centres)]
         z = rng.standard_normal(centre.shape[0])
         for spread in (2.0, 1.0, 0.5, 0.25, 0.1, 0.0):
-            candidate = centre + spread * (chol @ z)
+            candidate = _reflect_into(centre + spread * (chol @ z), bounds)
             value = counted.scalar(candidate)
             if np.isfinite(value):
                 break
@@ -190,7 +201,7 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     centres = [fit.mode] + other_modes
-    states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng)
+    states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng, bounds)
     return StartingPoints(fit, initial, centres, states, values)
 
 
@@ -218,7 +229,8 @@ def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, 
 class PlannedRun:
     """A fixed-proposal proof run to make: its name, description and proposal covariance.
 
-    ``predicted`` is the predicted slow-down against the tuned covariance (NaN
+    ``predicted`` is the predicted slow-down of the smallest per-parameter ESS
+    against the tuned covariance (``theory.Slowdown.slowest_parameter``; NaN
     when there is none); ``independent`` lists coordinates proposed
     independently (the reduced-basis run), or None.
     """
@@ -318,8 +330,15 @@ class ComparisonRow:
     """One fixed-proposal run of the proof.
 
     ``ess_per_1000`` is the smallest bulk ESS over parameters per 1000
-    evaluations; ``speedup`` its ratio to the baseline's. When the baseline
-    chain was too short to estimate its ESS, the speed-up is a lower bound.
+    evaluations, with relative standard error ``ess_relative_error``;
+    ``speedup`` its ratio to the baseline's, and ``speedup_kind`` what that
+    figure is: ``baseline``, ``measured``, ``lower-bound`` (the baseline's
+    chains have not mixed at all, so its ESS is too high), ``upper-bound``
+    (this run's have not), or ``rough`` (a short run's ESS, as likely under-
+    as over-estimated; ``evaluations_to_settle`` in all would make both
+    reliable). See :mod:`walktune.recommend`. ``predicted_slowdown`` is the
+    predicted ratio of the tuned run's smallest ESS to this run's
+    (``theory.Slowdown.slowest_parameter``).
     """
 
     proposal: str
@@ -334,6 +353,11 @@ class ComparisonRow:
     predicted_slowdown: float
     max_rhat: float
     iact_max: float
+    mixed: bool = True
+    ess_relative_error: float = float("nan")
+    settle_evaluations: int = 0
+    speedup_kind: str = "baseline"
+    evaluations_to_settle: int | None = 0
 
     def to_dict(self) -> dict:
         return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in self.__dict__.items()}
@@ -350,7 +374,11 @@ def _row_from_run(name, description, chains, stats, predicted, baseline=None):
     per_1000 = 1000 * ess_min / evaluations
     median = 1000 * float(np.nanmedian(np.where(np.isfinite(ess), ess, ess_min))) / evaluations
     reliable = not np.any(stats.bulk_too_short)
-    row = dict(
+    finite_rhat, finite_iact = stats.rhat[np.isfinite(stats.rhat)], stats.iact[np.isfinite(stats.iact)]
+    max_rhat = float(np.max(finite_rhat)) if finite_rhat.size == stats.rhat.size else float("nan")
+    iact_max = float(np.max(finite_iact)) if finite_iact.size == stats.iact.size else float("nan")
+    steps = stats.n_draws
+    row = ComparisonRow(
         proposal=name,
         description=description,
         acceptance=chains.acceptance_rate,
@@ -359,20 +387,24 @@ def _row_from_run(name, description, chains, stats, predicted, baseline=None):
         evaluations=evaluations,
         ess_reliable=reliable,
         predicted_slowdown=predicted,
-        max_rhat=float(np.nanmax(stats.rhat)),
-        iact_max=float(np.nanmax(stats.iact)),
+        max_rhat=max_rhat,
+        iact_max=iact_max,
+        speedup=1.0,
+        speedup_is_lower_bound=False,
+        mixed=not recommend.not_mixed(iact_max, steps, max_rhat),
+        ess_relative_error=recommend.ess_relative_error(iact_max, stats.n_chains, steps),
+        settle_evaluations=recommend.evaluations_to_settle(iact_max, stats.n_chains, steps, reliable),
     )
     if baseline is None:
-        row.update(speedup=1.0, speedup_is_lower_bound=False)
-    else:
-        row.update(
-            speedup=per_1000 / baseline.ess_per_1000 if baseline.ess_per_1000 > 0 else float("inf"),
-            # An unreliable baseline ESS is an overestimate (its IACT is underestimated),
-            # so the true speed-up is at least the printed one.
-            # (This run's own ESS must be trustworthy for that to hold.)
-            speedup_is_lower_bound=(not baseline.ess_reliable) and reliable,
-        )
-    return ComparisonRow(**row)
+        return row
+    kind, settle = recommend.speedup_kind(row, baseline)
+    return replace(
+        row,
+        speedup=per_1000 / baseline.ess_per_1000 if baseline.ess_per_1000 > 0 else float("inf"),
+        speedup_kind=kind,
+        speedup_is_lower_bound=kind == "lower-bound",
+        evaluations_to_settle=settle,
+    )
 
 
 @dataclass(frozen=True)
@@ -388,12 +420,16 @@ class Proof:
     stats : dict of str to walktune.diagnostics.Summary
     steps : int
         Steps per chain of every run.
+    proposals : dict of str to ndarray of shape (d, d)
+        Each run's proposal covariance, in the coordinates it ran in (the new
+        coordinates' runs in those of ``reparam.json``).
     """
 
     rows: list
     runs: dict
     stats: dict
     steps: int
+    proposals: dict = field(default_factory=dict)
 
     @property
     def tuned(self) -> Chains:
@@ -418,15 +454,15 @@ def _user_space_plan(advice: Advice, current: np.ndarray | None, dim: int) -> li
     """The baseline (the user's proposal, or one tuned step size), per-parameter steps, the tuned covariance."""
     slowdowns = advice.slowdowns
     if current is not None:
-        baseline = PlannedRun("current", "the proposal you use now", current, slowdowns["current"]["slowest"])
+        baseline = PlannedRun("current", "the proposal you use now", current, slowdowns["current"]["slowest_parameter"])
     else:
         single = advice.single_step
         baseline = PlannedRun("single-step", f"one tuned step size {single:.3g} for all parameters",
-                              single**2 * np.eye(dim), slowdowns["single_step"]["slowest"])
+                              single**2 * np.eye(dim), slowdowns["single_step"]["slowest_parameter"])
     return [
         baseline,
         PlannedRun("step-sizes", "tuned per-parameter step sizes", np.diag(advice.step_sizes**2),
-                   slowdowns["step_sizes"]["slowest"]),
+                   slowdowns["step_sizes"]["slowest_parameter"]),
         PlannedRun("tuned-covariance", "the tuned full proposal covariance", advice.proposal_covariance, 1.0),
     ]
 
@@ -444,7 +480,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
         left = budget.total - counted.count - detection_reserve(dim, budget.total)
         steps = max(50, left // ((3 + len(coords.plan)) * budget.chains))
     plan = _user_space_plan(advice, current, dim)
-    rows, runs, stats = [], {}, {}
+    rows, runs, stats, proposals = [], {}, {}, {}
     tracker.proof_rows(rows)
     for run_plan, child in zip(plan, seed.spawn(len(plan))):
         name = run_plan.name
@@ -453,7 +489,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
             start_log_density=pilot.state_log_density,
             progress=lambda done, total, name=name: tracker(name, done, total),
         )
-        runs[name], stats[name] = run, summary(run.draws)
+        runs[name], stats[name], proposals[name] = run, summary(run.draws), run_plan.covariance
         rows.append(_row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
                                   rows[0] if rows else None))
     if coords.plan:
@@ -465,9 +501,9 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
                          progress=lambda done, total, name=name: tracker(name, done, total))
             # Measured in the user's own parameters.
             run = replace(run, draws=coords.reparam.from_sampler(run.draws))
-            runs[name], stats[name] = run, summary(run.draws)
+            runs[name], stats[name], proposals[name] = run, summary(run.draws), run_plan.covariance
             rows.append(_row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
-    return Proof(rows, runs, stats, steps)
+    return Proof(rows, runs, stats, steps, proposals)
 
 
 # --------------------------------------------------------------------------- geometry checks

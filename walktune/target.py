@@ -55,6 +55,8 @@ class ModelSpec:
     canonical: str = ""
     #: SHA-256 of the model's source file (None when it has none), to tell whether a model changed.
     source_digest: str | None = None
+    #: The model's source file (absolute; None when it has none).
+    source_file: str | None = None
 
 
 def _import_file(path: Path):
@@ -89,6 +91,16 @@ def _where(error: BaseException) -> str:
     return f"{type(error).__name__}: {error}{line}"
 
 
+def _start_values(values, setting: str, where: str) -> np.ndarray:
+    """Start values declared in a model file, as numbers (a one-line error names the setting otherwise)."""
+    try:
+        return np.asarray(values, dtype=float)
+    except (TypeError, ValueError):
+        raise TargetError(
+            f"{setting} in {where} must give a number as each start value; got {values!r}."
+        ) from None
+
+
 def load_target(target: str) -> ModelSpec:
     """Load ``file.py:function`` or ``package.module:function`` and its declared settings."""
     if ":" not in target:
@@ -118,17 +130,18 @@ def load_target(target: str) -> ModelSpec:
     source = getattr(module, "__file__", None)
     if source and Path(source).is_file():
         spec.source_digest = hashlib.sha256(Path(source).read_bytes()).hexdigest()
+        spec.source_file = str(Path(source).resolve())
     if where.endswith(".py") or "/" in where or "\\" in where:
         spec.canonical = f"{Path(where).resolve()}:{function_name}"
     parameters = getattr(module, "PARAMETERS", None)
     if isinstance(parameters, dict):
         spec.names = [str(k) for k in parameters]
-        spec.start = np.asarray(list(parameters.values()), dtype=float)
+        spec.start = _start_values(list(parameters.values()), "PARAMETERS", where)
     elif parameters is not None:
         spec.names = [str(k) for k in parameters]
     start = getattr(module, "START", None)
     if start is not None:
-        spec.start = np.atleast_1d(np.asarray(start, dtype=float))
+        spec.start = np.atleast_1d(_start_values(start, "START", where))
     spec.bounds = dict(getattr(module, "BOUNDS", {}) or {})
     spec.vectorized = bool(getattr(module, "VECTORIZED", False))
     prior_name = getattr(module, "LOG_PRIOR", None)

@@ -24,6 +24,7 @@ Every figure in the comparison comes from fixed-proposal chains.
 
 from __future__ import annotations
 
+import os
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -32,13 +33,13 @@ from typing import Callable
 import numpy as np
 
 from . import theory
-from ._validation import as_float_array, check_finite
+from ._validation import as_float_array, check_finite, check_positive_int, check_positive_number, check_seed
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
 from .checkpoint import Interrupted
 from .constants import ADVICE_SCHEMA as SCHEMA
 from .constants import CAUTION, DEFAULT_TARGET_ESS
-from .errors import SamplingError, WalktuneError
+from .errors import NumericalFailure, SamplingError, WalktuneError
 from .findings import collect_findings
 from .mode import ModeFit
 from .pilot import PilotResult
@@ -50,6 +51,7 @@ from .posterior import (
     prepare_posterior,
     worker_busy_share,
 )
+from .recommend import Recommendation, recommend
 from .stages import (
     Budget,
     ComparisonRow,
@@ -76,10 +78,15 @@ class TuneResult:
     parameter_names : list of str
     proposal_covariance : ndarray of shape (d, d)
         Ready to use: propose ``theta + N(0, proposal_covariance)``.
+    recommended : walktune.recommend.Recommendation
+        The measured option to use (``recommended.proposal`` names its comparison row).
+    recommended_proposal : ndarray of shape (d, d)
+        Its proposal covariance, in the coordinates it runs in (``recommended.coordinates``).
     posterior_mean : ndarray of shape (d,)
-        From the tuned fixed-proposal run, with ``posterior_mean_mcse``.
+        From the recommended fixed-proposal run (``posterior_run``), with
+        ``posterior_mean_mcse``, ``posterior_sd`` and ``posterior_rhat`` from the same draws.
     posterior_covariance : ndarray of shape (d, d)
-        The pilot's shrinkage estimate from pooled fixed-proposal stages.
+        The pilot's shrinkage estimate from pooled fixed-proposal stages (what the proposals are built from).
     step_sizes : ndarray of shape (d,)
         Per-parameter proposal standard deviations for samplers that take only those.
     single_step : float
@@ -120,6 +127,21 @@ class TuneResult:
     regions: list = field(default_factory=list)
     reparam: object = None
     worker_busy: float | None = None
+    recommended: Recommendation | None = None
+    recommended_proposal: np.ndarray | None = None
+    posterior_run: str = "tuned-covariance"
+    posterior_sd: np.ndarray | None = None
+    posterior_rhat: np.ndarray | None = None
+
+    @property
+    def converged(self) -> bool:
+        """The chains of the run the posterior table comes from agree: R-hat <= 1.01 for every parameter."""
+        return self.posterior_rhat is not None and bool(np.all(self.posterior_rhat <= 1.01))
+
+    @property
+    def pilot_converged(self) -> bool:
+        """The pilot's adaptation settled and the chains that followed agree (:attr:`converged`)."""
+        return bool(self.pilot.converged) and self.converged
 
     @property
     def slowdowns(self) -> dict:
@@ -170,7 +192,10 @@ class TuneResult:
             "pilot_evaluations": self.pilot_evaluations,
             "total_evaluations": self.total_evaluations,
             "worker_busy_share": self.worker_busy,
-            "pilot_converged": self.pilot.converged,
+            "pilot_settled": bool(self.pilot.converged),
+            "pilot_converged": self.pilot_converged,
+            "recommended": self._recommended_payload(),
+            "posterior_table": self._posterior_table_payload(),
             "comparison": [row.to_dict() for row in self.comparison],
             "regions": [
                 {
@@ -192,12 +217,36 @@ class TuneResult:
             "caution": CAUTION,
         }
 
-    def save(self, directory) -> Path:
-        """Write advice.json, the proposal covariance (.npy, .csv) and the draws (.npz) atomically."""
-        from .export import result_files
-        from .io import write_folder
+    def _recommended_payload(self) -> dict | None:
+        if self.recommended is None:
+            return None
+        return {
+            **self.recommended.to_dict(),
+            "proposal_covariance": None if self.recommended_proposal is None else self.recommended_proposal.tolist(),
+            "file": "recommended_proposal.npy",
+        }
 
-        return write_folder(Path(directory), result_files(self))
+    def _posterior_table_payload(self) -> dict:
+        return {
+            "run": self.posterior_run,
+            "mean": self.posterior_mean.tolist(),
+            "mcse": [_json_float(x) for x in self.posterior_mean_mcse],
+            "sd": None if self.posterior_sd is None else self.posterior_sd.tolist(),
+            "rhat": None if self.posterior_rhat is None else [_json_float(x) for x in self.posterior_rhat],
+            "converged": self.converged,
+        }
+
+    def save(self, directory, produced_by: dict | None = None) -> Path:
+        """Write advice.json, the proposal covariance (.npy, .csv) and the draws (.npz) into ``directory``.
+
+        The folder's earlier walktune files are replaced as a whole
+        (:func:`walktune.outputs.replace_files`). ``produced_by`` (command,
+        model file, its SHA-256, options) is recorded in advice.json.
+        """
+        from .export import result_files
+        from .outputs import replace_files
+
+        return replace_files(Path(directory), result_files(self, produced_by))
 
 
 def _json_float(value: float):
@@ -289,31 +338,50 @@ class _Inputs:
     seed: np.random.SeedSequence
 
 
-def _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator) -> _Inputs:
+def _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator,
+                  target_ess) -> _Inputs:
     start = as_float_array(start, "start")
     if start.ndim == 0:
         start = start.reshape(1)
-    if start.ndim != 1:
-        raise WalktuneError(f"`start` must be one point of shape (d,); got shape {start.shape}.")
+    if start.ndim != 1 or start.shape[0] == 0:
+        raise WalktuneError(f"`start` must be one point of shape (d,) with d >= 1; got shape {start.shape}.")
     check_finite(start, "start")
     dim = start.shape[0]
     names = parameter_names(names, dim)
     bound_array = parameter_bounds(bounds, names, start)
     current = current_proposal_covariance(current_proposal, dim)
-    n_chains = 4 if chains is None else int(chains)
+    n_chains = 4 if chains is None else check_positive_int(chains, "chains", minimum=1)
     if n_chains < 2:
         raise WalktuneError("`chains` must be at least 2, so that chains can disagree when they have not mixed.")
     if budget is not None:
+        budget = check_positive_int(budget, "budget")
         low = minimum_budget(dim, n_chains)
         if budget < low:
             raise WalktuneError(
                 f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
                 f"give at least {low}."
             )
+        _check_budget_fits(budget, dim)
+    check_positive_number(target_ess, "target_ess")
     if not callable(log_density) and evaluator is None:
         raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
-    seed_seq = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
-    return _Inputs(start, names, bound_array, current, n_chains, seed_seq)
+    return _Inputs(start, names, bound_array, current, n_chains, check_seed(seed))
+
+
+def _check_budget_fits(budget: int, dim: int) -> None:
+    """Refuse, before any work, a budget whose draws cannot be held: the job keeps up to one point of
+    ``dim`` float64 numbers per evaluation (pilot stages and proof runs), so ``8 budget dim`` bytes
+    must fit in the machine's physical memory."""
+    try:
+        memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (AttributeError, ValueError, OSError):  # not on POSIX: no check
+        return
+    needed = 8 * budget * dim
+    if needed > memory:
+        raise WalktuneError(
+            f"a budget of {budget:.3g} evaluations keeps up to {needed / 1e9:.3g} GB of draws of {dim} parameters "
+            f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {memory // (8 * dim)}."
+        )
 
 
 def _check_forced_transforms(posterior, transforms, forbid_transforms) -> None:
@@ -326,6 +394,13 @@ def _check_forced_transforms(posterior, transforms, forbid_transforms) -> None:
                           transforms, forbid_transforms)
 
 
+def _keep_checkpoint(checkpoint, error: BaseException) -> None:
+    """Keep what was evaluated (a no-op when the record did not grow), except after a user error
+    such as a start outside the support: there is nothing worth resuming, and a fresh run must not find it."""
+    if checkpoint is not None and (isinstance(error, SamplingError) or not isinstance(error, WalktuneError)):
+        checkpoint.save()
+
+
 @contextmanager
 def _guarded(checkpoint, tracker):
     """Around the job: partial advice on a stop, the checkpoint kept on a failure, the folder unlocked at the end."""
@@ -334,11 +409,21 @@ def _guarded(checkpoint, tracker):
     except Interrupted as stop:
         stop.partial = tracker.partial_advice()
         raise
+    except (ArithmeticError, np.linalg.LinAlgError, ValueError) as error:
+        if isinstance(error, WalktuneError):
+            _keep_checkpoint(checkpoint, error)
+            raise
+        # The model's own exceptions are failed evaluations (walktune.engine); what arrives here is the job's.
+        _keep_checkpoint(checkpoint, error)
+        text = str(error).strip().splitlines()[0] if str(error).strip() else ""
+        raise NumericalFailure(
+            f"numerical failure in the tuning job ({type(error).__name__}: {text}; last stage reported: "
+            f"{tracker.stage or 'none'}); "
+            "the posterior may be degenerate there (a density unbounded at a bound, a flat or singular direction). "
+            "Try bounds or a transform for the parameters involved, or report this with the model."
+        ) from error
     except BaseException as error:
-        # Keep what was evaluated (a no-op when the record did not grow), except after a user error
-        # such as a start outside the support: there is nothing worth resuming, and a fresh run must not find it.
-        if checkpoint is not None and (isinstance(error, SamplingError) or not isinstance(error, WalktuneError)):
-            checkpoint.save()
+        _keep_checkpoint(checkpoint, error)
         raise
     finally:
         if checkpoint is not None:
@@ -420,7 +505,8 @@ def tune(
     """
     tracker = _JobTracker(checkpoint, progress)
     with _guarded(checkpoint, tracker):
-        inputs = _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator)
+        inputs = _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator,
+                               target_ess)
         posterior = prepare_posterior(log_density, inputs.start, inputs.names, inputs.bounds, vectorized=vectorized,
                                       evaluator=evaluator, log_prior=log_prior, prior=prior, checkpoint=checkpoint)
         _check_forced_transforms(posterior, transforms, forbid_transforms)
@@ -438,9 +524,13 @@ def tune(
         pilot_evaluations = posterior.counted.count
         proof = run_proofs(posterior, pilot, advice, coords, plan, inputs.current, proof_seed, tracker)
         checks = check_geometry(posterior, proof, start_points, pilot, plan)
-        findings = collect_findings(posterior, structure, pilot, pilot_evaluations, coords, proof, checks)
+        recommended = recommend(proof.rows)
+        chosen = recommended.proposal
+        table_stats = proof.stats[chosen]
+        findings = collect_findings(posterior, structure, pilot, pilot_evaluations, coords, proof, checks,
+                                    recommended=chosen, expected_acceptance=advice.expected_acceptance)
 
-        tau_max = proof.tuned_row.iact_max
+        tau_max = next(row for row in proof.rows if row.proposal == chosen).iact_max
         warmup, thinning = warmup_and_thinning(tau_max)
         total = posterior.counted.count
         return TuneResult(
@@ -448,8 +538,13 @@ def tune(
             bounds=posterior.bounds,
             mode_fit=start_points.fit,
             proposal_covariance=advice.proposal_covariance,
-            posterior_mean=proof.tuned.draws.reshape(-1, posterior.dim).mean(axis=0),
-            posterior_mean_mcse=proof.tuned_stats.mcse,
+            posterior_mean=table_stats.mean,
+            posterior_mean_mcse=table_stats.mcse,
+            posterior_sd=table_stats.sd,
+            posterior_rhat=table_stats.rhat,
+            posterior_run=chosen,
+            recommended=recommended,
+            recommended_proposal=proof.proposals.get(chosen),
             posterior_covariance=pilot.covariance,
             step_sizes=advice.step_sizes,
             single_step=advice.single_step,

@@ -1,0 +1,229 @@
+"""Which measured proposal to use, and how far the measurement can be trusted.
+
+The proof's fixed-proposal runs are compared by their efficiency
+``e = min bulk ESS / evaluations``. An ESS estimate from ``N = m n`` draws of
+a chain with integrated autocorrelation time ``tau`` has relative standard error
+
+    se = sqrt(2 (2 M + 1) / N),    M = WINDOW_PER_IACT * tau,
+
+the variance of a windowed IACT estimate with window ``M`` (Sokal 1997); the
+window of Geyer's (1992) initial monotone sequence on AR(1) chains averages
+about two autocorrelation times (measured by simulation in
+tests/test_recommend.py). Run ``a`` is measured faster than run ``b`` when
+``log(e_a / e_b) > Z_RESOLVED * sqrt(se_a^2 + se_b^2)``.
+
+A run whose chains have not mixed at all (each half-chain no longer than one
+estimated IACT, the most an estimate from split chains can give, and R-hat above
+:data:`STUCK_RHAT`) has an ESS estimate that is too high: the estimate stays
+near the number of split chains while the truth ``m n / tau`` is far below it
+(checked by simulation on AR(1) chains with known IACT ``(1 + phi)/(1 - phi)``
+in tests/test_recommend.py). Its efficiency is then an upper bound, and a
+speed-up over it a lower bound. Everywhere else a short run's ESS is as
+likely under- as over-estimated, and a speed-up resting on one is rough.
+
+References
+----------
+Geyer, C. J. (1992). Practical Markov chain Monte Carlo. Statistical Science, 7(4), 473-483.
+Sokal, A. (1997). Monte Carlo methods in statistical mechanics: foundations and new algorithms.
+In Functional Integration, Springer, 131-192.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+import numpy as np
+
+from .diagnostics import MIN_DRAWS_PER_IACT
+
+#: Window of the IACT estimate, in autocorrelation times (about 2 on AR(1) chains, by simulation; 2.5 to be safe).
+WINDOW_PER_IACT = 2.5
+#: Normal quantile for a resolved difference (two-sided, about 95%).
+Z_RESOLVED = 2.0
+#: R-hat far above 1: together with half-chains no longer than one estimated IACT, chains that have not mixed at all.
+STUCK_RHAT = 2.0
+#: Predicted factors beyond this are printed as a bound: no measurement could tell them apart.
+LARGEST_SHOWN_FACTOR = 1e6
+
+#: When runs are within the measurement's error of each other, the first of these is recommended:
+#: no change over a change, then the tuned covariance (theory predicts it at least as fast as
+#: per-parameter or single steps), then the new coordinates (a map to carry along).
+PREFERENCE = ("current", "tuned-covariance", "step-sizes", "single-step", "transformed-rotated", "reduced-basis")
+
+
+def format_factor(value, digits: int = 3) -> str:
+    """A speed-up or slow-down factor for people: ``2.5x``, ``> 1e6x``, ``n/a``."""
+    if value is None or not np.isfinite(value):
+        return "n/a" if value is None or np.isnan(value) else f"> {LARGEST_SHOWN_FACTOR:.0e}x".replace("e+0", "e")
+    if value > LARGEST_SHOWN_FACTOR:
+        return f"> {LARGEST_SHOWN_FACTOR:.0e}x".replace("e+0", "e")
+    return f"{value:.{digits}g}x"
+
+
+def ess_relative_error(iact_max: float, chains: int, steps: int) -> float:
+    """Relative standard error of an ESS estimate from ``chains x steps`` draws with IACT ``iact_max`` (Sokal 1997)."""
+    tau = iact_max if np.isfinite(iact_max) else float(steps)
+    return float(np.sqrt(2.0 * (2.0 * WINDOW_PER_IACT * tau + 1.0) / (chains * steps)))
+
+
+def not_mixed(iact_max: float, steps: int, max_rhat: float) -> bool:
+    """Whether chains of ``steps`` draws have not mixed at all: estimated IACT at least the half-chain length, R-hat far above 1.
+
+    The IACT is estimated on split chains (:func:`walktune.diagnostics.summary`),
+    so it cannot much exceed ``steps / 2``: chains that hardly move reach that cap.
+
+    A chain that never moved (no IACT, no R-hat) has not mixed either.
+    """
+    if not np.isfinite(iact_max) or not np.isfinite(max_rhat):
+        return True
+    return iact_max >= steps / 2 and max_rhat > STUCK_RHAT
+
+
+def evaluations_to_settle(iact_max: float, chains: int, steps: int, ess_reliable: bool) -> int:
+    """Evaluations a run needs in all for a reliable ESS (``MIN_DRAWS_PER_IACT`` IACTs per chain); 0 when it has them."""
+    if ess_reliable or not np.isfinite(iact_max):
+        return 0
+    return int(np.ceil(chains * MIN_DRAWS_PER_IACT * iact_max))
+
+
+def speedup_kind(row, baseline) -> tuple[str, int | None]:
+    """What a row's speed-up over ``baseline`` is, and the evaluations that would settle it.
+
+    ``lower-bound`` where the baseline has not mixed at all and this run has a
+    reliable ESS; ``upper-bound`` the other way round; ``measured`` where both
+    ESS estimates are reliable; ``rough`` otherwise, with the evaluations both
+    runs need in all for reliable ESS (None when a side has not mixed and no
+    IACT is known).
+    """
+    if baseline is None:
+        return "baseline", 0
+    if not baseline.mixed and row.mixed and row.ess_reliable:
+        return "lower-bound", 0
+    if not row.mixed and baseline.mixed and baseline.ess_reliable:
+        return "upper-bound", 0
+    if row.ess_reliable and baseline.ess_reliable and row.mixed and baseline.mixed:
+        return "measured", 0
+    if not (row.mixed and baseline.mixed):
+        return "rough", None
+    return "rough", row.settle_evaluations + baseline.settle_evaluations
+
+
+def _efficiency(row) -> float:
+    return row.ess_per_1000 / 1000.0
+
+
+def measured_faster(a, b) -> bool:
+    """Whether run ``a`` is measured faster than run ``b`` beyond the measurement's error.
+
+    A run that has not mixed has an ESS that is too high: it can never be shown
+    faster, and only the other run's error counts against it.
+    """
+    ea, eb = _efficiency(a), _efficiency(b)
+    if not (ea > 0 and np.isfinite(ea)) or not a.mixed:
+        return False
+    if not (eb > 0 and np.isfinite(eb)):
+        return True
+    gap = np.log(ea / eb)
+    error = a.ess_relative_error if not b.mixed else np.hypot(a.ess_relative_error, b.ess_relative_error)
+    return bool(gap > Z_RESOLVED * error)
+
+
+def _evaluations_to_resolve(a, b) -> int | None:
+    """Evaluations per run at which the measured ratio of ``a`` and ``b`` would be resolved (None: equal within 5%)."""
+    gap = abs(np.log(_efficiency(a) / _efficiency(b)))
+    if not np.isfinite(gap) or gap < 0.05:
+        return None
+    per_draw = 2.0 * (2.0 * WINDOW_PER_IACT * (a.iact_max + b.iact_max) + 2.0)
+    return int(np.ceil(Z_RESOLVED**2 * per_draw / gap**2))
+
+
+@dataclass(frozen=True)
+class Recommendation:
+    """The measured option to use.
+
+    Attributes
+    ----------
+    proposal : str
+        Name of a comparison row: ``current``, ``tuned-covariance``, ``step-sizes``,
+        ``single-step``, ``transformed-rotated`` or ``reduced-basis``.
+    keep_current : bool
+        The user's current proposal is the one to use.
+    resolved : bool
+        The recommended run was measured faster than every other beyond the measurement's error.
+    close : list of str
+        Runs within the measurement's error of the recommended one.
+    speedup, speedup_kind : float, str
+        Its speed-up over the baseline row and what that figure is (see :func:`speedup_kind`).
+    baseline : str
+    evaluations_to_resolve : int or None
+        Evaluations per run that would resolve the closest contender (None: none, or equal within 5%).
+    coordinates : str
+        ``parameters``, or ``reparam.json`` when the proposal runs in the new coordinates.
+    message : str
+        One sentence saying what to use, what it is worth, and how sure that is.
+    """
+
+    proposal: str
+    keep_current: bool
+    resolved: bool
+    close: list
+    speedup: float
+    speedup_kind: str
+    baseline: str
+    evaluations_to_resolve: int | None
+    coordinates: str
+    message: str
+
+    def to_dict(self) -> dict:
+        out = asdict(self)
+        out["speedup"] = float(self.speedup) if np.isfinite(self.speedup) else None
+        return out
+
+
+def recommend(rows: list) -> Recommendation:
+    """Choose the row to recommend from the proof's comparison ``rows`` (the baseline first).
+
+    The candidates are the runs no other run was measured faster than
+    (:func:`measured_faster`), among those that mixed when any did; the first
+    candidate in :data:`PREFERENCE` is recommended.
+    """
+    usable = [row for row in rows if np.isfinite(row.ess_per_1000) and row.ess_per_1000 > 0] or list(rows)
+    candidates = [row for row in usable if not any(measured_faster(other, row) for other in usable)]
+    if any(row.mixed for row in candidates):
+        candidates = [row for row in candidates if row.mixed]
+    rank = {name: k for k, name in enumerate(PREFERENCE)}
+    chosen = min(candidates, key=lambda row: (rank.get(row.proposal, len(PREFERENCE)), -row.ess_per_1000))
+    close = [row for row in candidates if row is not chosen]
+    baseline = rows[0]
+    contender = max(close, key=lambda row: row.ess_per_1000) if close else None
+    to_resolve = _evaluations_to_resolve(chosen, contender) if contender is not None else None
+    coordinates = "reparam.json" if chosen.proposal in ("transformed-rotated", "reduced-basis") else "parameters"
+    message = _message(chosen, close, baseline, contender, to_resolve)
+    return Recommendation(
+        proposal=chosen.proposal, keep_current=chosen.proposal == "current", resolved=not close,
+        close=[row.proposal for row in close], speedup=float(chosen.speedup), speedup_kind=chosen.speedup_kind,
+        baseline=baseline.proposal, evaluations_to_resolve=to_resolve, coordinates=coordinates, message=message,
+    )
+
+
+def speedup_text(speedup: float, kind: str) -> str:
+    """``at least 3.2x``, ``at most 0.5x``, ``roughly 1.3x`` or ``2.1x``."""
+    prefix = {"lower-bound": "at least ", "upper-bound": "at most ", "rough": "roughly "}.get(kind, "")
+    return prefix + format_factor(speedup)
+
+
+def _message(chosen, close, baseline, contender, to_resolve) -> str:
+    if chosen.proposal == "current":
+        text = "Keep your current proposal: no option was measured faster beyond the measurement's error"
+    elif chosen is baseline:
+        text = f"Use {chosen.proposal}: no option was measured faster beyond the measurement's error"
+    else:
+        text = (f"Use {chosen.proposal}: measured at {speedup_text(chosen.speedup, chosen.speedup_kind)} "
+                f"the ESS per evaluation of {baseline.proposal}")
+    if contender is None:
+        return text + "."
+    ratio = contender.ess_per_1000 / chosen.ess_per_1000
+    settle = (f"; about {to_resolve:,} evaluations per run would settle it" if to_resolve
+              else "; they are equally fast within 5%")
+    return (text + f". Not resolved: {', '.join(row.proposal for row in close)} measured within the error of it "
+            f"({contender.proposal} at {format_factor(ratio)} of its efficiency){settle}.")
