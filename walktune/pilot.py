@@ -280,6 +280,21 @@ def _pooled(history: list, stage_index: int, fresh: bool) -> np.ndarray:
     return np.concatenate([previous[:, previous.shape[1] // 2 :], draws], axis=1)
 
 
+def _probe_and_rescale(evaluate, result: PilotResult, stage: PilotStage, rng: np.random.Generator) -> int:
+    """Probe each parameter's scale at the chains' states; rescale ``result.covariance`` where it is off.
+
+    Moves the chains (the probe is a Metropolis-within-Gibbs pass), records
+    the acceptance and the scaling applied in ``stage``, and returns the
+    evaluations spent.
+    """
+    found = probe_components(evaluate, result.states, result.state_log_density, result.covariance, rng)
+    result.states, result.state_log_density = found.states, found.log_density
+    scaling = np.where(found.off, found.ratio, 1.0)
+    result.covariance = result.covariance * np.outer(scaling, scaling)
+    stage.probe_acceptance, stage.component_scaling = found.acceptance, scaling
+    return found.evaluations
+
+
 def run_pilot(
     log_density,
     states: np.ndarray,
@@ -378,17 +393,11 @@ def run_pilot(
         # Probe only when a stage can follow to use (and test) a rescaled proposal.
         rescaled = False
         if probe and budget - spent >= probe_cost + n_chains * window:
-            found = probe_components(evaluate, result.states, result.state_log_density, result.covariance, probe_rng)
-            spent += found.evaluations
-            result.states, result.state_log_density = found.states, found.log_density
-            scaling = np.where(found.off, found.ratio, 1.0)
-            rescaled = bool(found.off.any())
-            probe = rescaled
+            spent += _probe_and_rescale(evaluate, result, stage, probe_rng)
+            rescaled = probe = bool(np.any(stage.component_scaling != 1.0))
             if rescaled:
                 trust_start = False
-                result.covariance = result.covariance * np.outer(scaling, scaling)
                 budget, extension = budget + extension, 0  # a poor start: take the extra allowance once
-            stage.probe_acceptance, stage.component_scaling = found.acceptance, scaling
         result.stages.append(stage)
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
         factor = _scale_step(factor, acceptance, target)

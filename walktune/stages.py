@@ -44,10 +44,10 @@ from .geometry import (
     within_chain_iact,
 )
 from .mode import ModeFit, find_mode
-from .pilot import PilotResult, run_pilot, shrunk_covariance
+from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator
 from .reparam import build_reparam, curved_ridge_findings
-from .unconstrained import UnconstrainedStart, near_bound, pilot_map, to_parameters, unconstrained_mode
+from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
 #: Up to this dimension the funnel detector also probes the log-density's
 #: curvature (2 d (2 d + 1) evaluations).
@@ -240,10 +240,10 @@ def _unconstrained_start(posterior: Posterior, fit: ModeFit, initial: np.ndarray
 def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, seed, tracker) -> PilotResult:
     """The adaptive pilot: what the pilot's budget leaves after the mode search.
 
-    With an unconstrained start (a mode or mass near a bound), the first 60% of
-    it runs in the unconstrained coordinates and the rest, from where those
-    chains ended and with the covariance of their draws mapped back, in the
-    user's parameters (whose proposal the job recommends).
+    With an unconstrained start (a mode or mass near a bound) it runs first in
+    the unconstrained coordinates, then in the user's parameters
+    (:func:`walktune.unconstrained.run_unconstrained_pilot`), with the extra
+    allowance of a poor start.
     """
     counted, dim = posterior.counted, posterior.dim
     available = max(budget.pilot - counted.count, _minimum_pilot(dim, budget.chains))
@@ -256,45 +256,9 @@ def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, 
             on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
         )
     else:
-        pilot = _pilot_through_unconstrained(posterior, start.unconstrained, available, budget, seed, tracker, within)
+        pilot = run_unconstrained_pilot(posterior.counted, start.unconstrained, available + budget.pilot_extension,
+                                        _minimum_pilot(dim, budget.chains), seed, tracker, within)
     tracker("pilot", pilot.evaluations, pilot.evaluations)
-    return pilot
-
-
-def _pilot_through_unconstrained(posterior: Posterior, start: UnconstrainedStart, available: int, budget: Budget,
-                                 seed, tracker, within: bool) -> PilotResult:
-    """The pilot in unconstrained coordinates, then in the user's parameters; one PilotResult in ``theta``.
-
-    The stages in ``theta`` do not probe parameters one at a time: near a
-    bound the conditional densities are far from Gaussian, so the probe's
-    acceptance no longer measures their scale (the stages in ``u`` did that).
-    """
-    counted, dim = posterior.counted, posterior.dim
-    reparam = start.reparam
-    seed_u, seed_theta = seed.spawn(2)
-    available += budget.pilot_extension  # a mode or mass near a bound is a poor start
-    first = max(int(0.6 * available), _minimum_pilot(dim, budget.chains))
-    pilot_u = run_pilot(
-        None, start.states, start.covariance, first, seed_u, evaluator=SamplerSpaceEvaluator(counted, reparam),
-        progress=lambda done, total: tracker("pilot", done, available), state_log_density=start.values,
-        within_chains=within, on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=False),
-    )
-    states, values = to_parameters(reparam, pilot_u.states, pilot_u.state_log_density)
-    draws = reparam.from_sampler(pilot_u.draws)
-    # The draws' covariance in theta, shrunk in standardised coordinates (their own scales).
-    covariance, _, _ = shrunk_covariance(draws, np.diag(np.var(draws.reshape(-1, dim), axis=0)), within)
-    rest = max(available - pilot_u.evaluations, _minimum_pilot(dim, budget.chains))
-    pilot = run_pilot(
-        None, states, covariance, rest, seed_theta, evaluator=counted,
-        progress=lambda done, total: tracker("pilot", pilot_u.evaluations + done, available),
-        state_log_density=values, within_chains=within, probe=False,
-        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
-    )
-    for stage in pilot_u.stages:
-        stage.coordinates = "unconstrained"
-    pilot.stages = pilot_u.stages + pilot.stages
-    pilot.all_draws = [reparam.from_sampler(d) for d in pilot_u.all_draws] + pilot.all_draws
-    pilot.evaluations += pilot_u.evaluations
     return pilot
 
 

@@ -33,6 +33,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .mode import ModeFit, find_mode
+from .pilot import PilotResult, run_pilot, shrunk_covariance
+from .posterior import SamplerSpaceEvaluator
 from .reparam import Reparam, TransformChoice, candidates
 
 #: The mode within this many sds of a bound is near it.
@@ -155,3 +157,54 @@ def to_parameters(reparam: Reparam, states_u: np.ndarray, values_u: np.ndarray) 
     """States (chains, d) in ``theta`` and ``log p(theta)`` there, from states and ``log p_u`` in ``u``."""
     theta, jacobian = reparam.from_sampler_with_jacobian(states_u)
     return theta, values_u - jacobian
+
+
+def run_unconstrained_pilot(counted, start: UnconstrainedStart, available: int, minimum: int, seed, tracker,
+                            within: bool) -> PilotResult:
+    """The pilot in unconstrained coordinates, then in the user's parameters; one PilotResult in ``theta``.
+
+    The first 60% of ``available`` evaluations run in ``u``; the rest, from
+    where those chains ended and with the covariance of their draws mapped
+    back (shrunk in the draws' own scales), in ``theta``, whose proposal the
+    job recommends. The stages in ``theta`` do not probe parameters one at a
+    time: near a bound the conditional densities are far from Gaussian, so the
+    probe's acceptance no longer measures their scale (the stages in ``u`` did).
+
+    Parameters
+    ----------
+    counted : walktune.posterior.CountedEvaluator
+    start : UnconstrainedStart
+    available : int
+        Evaluations of both parts together.
+    minimum : int
+        Least evaluations of either part (two stages).
+    seed : SeedSequence
+    tracker : callable
+        The job's progress channel (see walktune.tune).
+    within : bool
+        Estimate covariances within chains (chains started in separate modes).
+    """
+    reparam = start.reparam
+    seed_u, seed_theta = seed.spawn(2)
+    pilot_u = run_pilot(
+        None, start.states, start.covariance, max(int(0.6 * available), minimum), seed_u,
+        evaluator=SamplerSpaceEvaluator(counted, reparam), state_log_density=start.values, within_chains=within,
+        progress=lambda done, total: tracker("pilot", done, available),
+        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=False),
+    )
+    states, values = to_parameters(reparam, pilot_u.states, pilot_u.state_log_density)
+    draws = reparam.from_sampler(pilot_u.draws)
+    dim = draws.shape[-1]
+    covariance, _, _ = shrunk_covariance(draws, np.diag(np.var(draws.reshape(-1, dim), axis=0)), within)
+    pilot = run_pilot(
+        None, states, covariance, max(available - pilot_u.evaluations, minimum), seed_theta, evaluator=counted,
+        state_log_density=values, within_chains=within, probe=False,
+        progress=lambda done, total: tracker("pilot", pilot_u.evaluations + done, available),
+        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
+    )
+    for stage in pilot_u.stages:
+        stage.coordinates = "unconstrained"
+    pilot.stages = pilot_u.stages + pilot.stages
+    pilot.all_draws = [reparam.from_sampler(d) for d in pilot_u.all_draws] + pilot.all_draws
+    pilot.evaluations += pilot_u.evaluations
+    return pilot
