@@ -13,7 +13,10 @@ Gaussian parameters (mean and covariance below, exact):
 (c) a "smoothed Laplace" parameter, log p(y) = -sqrt(eps^2 + y^2) with
     eps = 1e-4: the curvature at the mode is 1/eps, so the Laplace sd is 0.01,
     141 times narrower than the exact sd (1.414, by quadrature with
-    scipy.integrate.quad).
+    scipy.integrate.quad);
+(d) a quartic parameter, log p(y) = -(y / 3)^4 / 4: the curvature at the mode
+    is 0 (a singular Hessian), so the finite-difference Laplace sd is hundreds
+    of times the exact one (by quadrature).
 
 Checks, as the issue asks: the tuned run's means within 4 of its reported MCSE
 of the exact ones and its sds within 30%; the recommended proposal covariance,
@@ -91,10 +94,22 @@ def _smoothed_laplace_exact():
     return 0.0, np.sqrt(second / mass)  # symmetric: mean 0
 
 
+def _quartic(theta):
+    theta = np.atleast_2d(theta)
+    return -0.25 * (theta[:, 0] / 3.0) ** 4 + _gauss3(theta[:, 1:])
+
+
+def _quartic_exact():
+    density = lambda y: np.exp(-0.25 * (y / 3.0) ** 4)  # noqa: E731
+    mass = integrate.quad(density, -np.inf, np.inf)[0]
+    return 0.0, np.sqrt(integrate.quad(lambda y: y * y * density(y), -np.inf, np.inf)[0] / mass)
+
+
 TARGETS = {
     "mode on the bound": (_truncated, [0.05, 0, 0, 0], {0: (0, None)}, _truncated_exact),
     "unbounded at the bound": (_gamma, [1.0, 0, 0, 0], {0: (0, None)}, _gamma_exact),
     "Laplace 141x too narrow": (_smoothed_laplace, [0.5, 0, 0, 0], None, _smoothed_laplace_exact),
+    "singular Hessian": (_quartic, [0.5, 0, 0, 0], None, _quartic_exact),
 }
 
 

@@ -21,7 +21,7 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
   conditional sd under ``C``, ``P = C^{-1}``). For a Gaussian conditional of sd
   ``k s_i`` the acceptance rate of that proposal is ``(2 / pi) arctan(2 / (2.4 / k))``
   (derived here by integrating the Metropolis ratio over the stationary
-  distribution; checked by simulation in tests/test_pilot.py), so
+  distribution; checked by simulation in tests/test_poor_start.py), so
   ``k = 1.2 tan(pi a / 2)``; a parameter whose ``k`` is far from 1 has its row
   and column of ``C`` rescaled by ``k`` (component-wise adaptive scaling:
   Haario, Saksman and Tamminen 2005; Andrieu and Thoms 2008, Sec. 5; Roberts
@@ -193,7 +193,10 @@ class ComponentProbe:
         Estimated conditional sd over the one the covariance implies, per parameter.
     states : ndarray of shape (chains, d)
     log_density : ndarray of shape (chains,)
+        The chains' states and log-densities after the probe (it moves them).
     evaluations : int
+    trials : int
+        One-parameter proposals per parameter (sweeps x chains).
     """
 
     acceptance: np.ndarray
