@@ -169,6 +169,9 @@ def run_unconstrained_pilot(counted, start: UnconstrainedStart, available: int, 
     job recommends. The stages in ``theta`` do not probe parameters one at a
     time: near a bound the conditional densities are far from Gaussian, so the
     probe's acceptance no longer measures their scale (the stages in ``u`` did).
+    When the stages in ``theta`` never found their draws to disagree with the
+    covariance they started from, the final covariance comes from all draws of
+    both parts after the first stage's warm-up half.
 
     Parameters
     ----------
@@ -202,6 +205,13 @@ def run_unconstrained_pilot(counted, start: UnconstrainedStart, available: int, 
         progress=lambda done, total: tracker("pilot", pilot_u.evaluations + done, available),
         on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
     )
+    if not any(stage.adopted for stage in pilot.stages):
+        # The draws in theta agreed with the start they were given: estimate the covariance from every
+        # draw after the first stage's warm-up, in both coordinates (skewed marginals need many draws).
+        first_stage = pilot_u.all_draws[0]
+        mapped = [first_stage[:, first_stage.shape[1] // 2 :]] + pilot_u.all_draws[1:]
+        pooled = np.concatenate([reparam.from_sampler(d) for d in mapped] + pilot.all_draws, axis=1)
+        pilot.covariance, _, _ = shrunk_covariance(pooled, pilot.covariance, within)
     for stage in pilot_u.stages:
         stage.coordinates = "unconstrained"
     pilot.stages = pilot_u.stages + pilot.stages
