@@ -23,7 +23,8 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
   (derived here by integrating the Metropolis ratio over the stationary
   distribution; checked by simulation in tests/test_poor_start.py), so
   ``k = 1.2 tan(pi a / 2)``; a parameter whose ``k`` is far from 1 has its row
-  and column of ``C`` rescaled by ``k`` (component-wise adaptive scaling:
+  and column of ``C`` rescaled by ``k`` (taken at the end of its 90% interval
+  nearest 1, so as not to overshoot; component-wise adaptive scaling:
   Haario, Saksman and Tamminen 2005; Andrieu and Thoms 2008, Sec. 5; Roberts
   and Rosenthal 2009). This is what lets a direction that a poor Laplace start
   gave tiny steps grow: its draws alone would take many stages to show its
@@ -207,6 +208,22 @@ class ComponentProbe:
     trials: int
 
     @property
+    def cautious_ratio(self) -> np.ndarray:
+        """The ratio at the end of the 90% Clopper-Pearson interval of the acceptance nearest a right scale, shape (d,).
+
+        The point estimate overshoots when nearly every proposal was accepted
+        (or none): 20 of 20 accepted happens with probability 0.5% at a scale
+        3x too small. Rescaling by the cautious ratio seldom overshoots; the
+        next probe takes the rest.
+        """
+        count = np.rint(self.acceptance * self.trials)
+        lower = np.where(count > 0, stats.beta.ppf(0.05, count, self.trials - count + 1), 0.0)
+        upper = np.where(count < self.trials, stats.beta.ppf(0.95, count + 1, self.trials - count), 1.0)
+        nearest = np.where(self.acceptance > RIGHT_SCALE_ACCEPTANCE, np.maximum(lower, RIGHT_SCALE_ACCEPTANCE),
+                           np.minimum(upper, RIGHT_SCALE_ACCEPTANCE))
+        return scale_ratio(nearest)
+
+    @property
     def off(self) -> np.ndarray:
         """Parameters whose acceptance is too improbable under a right scale (:data:`PROBE_FALSE_ALARM`), shape (d,)."""
         count = np.rint(self.acceptance * self.trials)
@@ -292,7 +309,7 @@ def _probe_and_rescale(evaluate, result: PilotResult, stage: PilotStage, rng: np
     """
     found = probe_components(evaluate, result.states, result.state_log_density, result.covariance, rng)
     result.states, result.state_log_density = found.states, found.log_density
-    scaling = np.where(found.off, found.ratio, 1.0)
+    scaling = np.where(found.off, found.cautious_ratio, 1.0)
     result.covariance = result.covariance * np.outer(scaling, scaling)
     stage.probe_acceptance, stage.component_scaling = found.acceptance, scaling
     return found.evaluations
@@ -376,8 +393,10 @@ def run_pilot(
         history.append(chains.draws)
         result.all_draws.append(chains.draws)
         pooled_draws = _pooled(history, stage_index, rescaled)
+        # Once the start has proved wrong, shrink towards the draws' own scales rather than towards it.
+        reference = result.covariance if trust_start else np.diag(np.var(pooled_draws.reshape(-1, dim), axis=0))
         try:
-            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, result.covariance, within_chains)
+            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, reference, within_chains)
             np.linalg.cholesky(new_cov)
         except np.linalg.LinAlgError:
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
@@ -390,8 +409,6 @@ def run_pilot(
         adopted = acceptance > 0 and (significant or not (trust_start or rescaled))
         if adopted:
             result.covariance = new_cov
-        elif acceptance == 0:
-            result.covariance = result.covariance / 10.0  # nothing moved: try much smaller steps
         stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted)
         # Probe only when a stage can follow to use (and test) a rescaled proposal.
         rescaled = False
@@ -401,6 +418,8 @@ def run_pilot(
             if rescaled:
                 trust_start = False
                 budget, extension = budget + extension, 0  # a poor start: take the extra allowance once
+        if acceptance == 0 and not rescaled:
+            result.covariance = result.covariance / 10.0  # nothing moved and no probe said why: much smaller steps
         result.stages.append(stage)
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
         factor = _scale_step(factor, acceptance, target)
