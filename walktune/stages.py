@@ -25,7 +25,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import stats
 
 from . import theory
 from .advice import Advice
@@ -141,35 +140,23 @@ def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> 
     return np.diag(guess**2)
 
 
-def _overdispersed_starts(counted, centres, cov, chains: int, rng, centre_value: float | None = None):
-    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite and not far below the centre's.
+def _overdispersed_starts(counted, centres, cov, chains: int, rng):
+    """Starts drawn from ``N(centre, 4 cov)``, pulled in until the density is finite.
 
     Chain ``c`` starts around ``centres[c % len(centres)]``, so that chains
-    begin in every separate mode the optimizer found. A candidate is pulled in
-    (spread 2, 1, 0.5, 0.25, 0.1, 0 sds of ``cov``) while its log-density lies
-    more than ``chi2_d(0.999)`` x 2 below the centre's: on the Gaussian
-    ``N(centre, cov)`` a draw of ``N(centre, 4 cov)`` drops by ``2 chi2_d``, so
-    a larger drop says ``cov`` is far too wide there (a flat or singular
-    Hessian), and a chain started there would spend the pilot walking in.
-    ``centre_value`` is the log-density at ``centres[0]`` when known. Returns
-    the points (chains, d) and their log-densities (chains,).
+    begin in every separate mode the optimizer found. Returns the points
+    (chains, d) and their log-densities (chains,).
     """
     chol = np.linalg.cholesky(cov)
-    dim = centres[0].shape[0]
-    largest_drop = 2.0 * stats.chi2.ppf(0.999, dim)
-    known = {0: centre_value} if centre_value is not None else {}
-    points = np.empty((chains, dim))
+    points = np.empty((chains, centres[0].shape[0]))
     values = np.empty(chains)
     for c in range(chains):
-        k = c % len(centres)
-        centre = centres[k]
-        if k not in known:
-            known[k] = counted.scalar(centre)
-        z = rng.standard_normal(dim)
+        centre = centres[c % len(centres)]
+        z = rng.standard_normal(centre.shape[0])
         for spread in (2.0, 1.0, 0.5, 0.25, 0.1, 0.0):
             candidate = centre + spread * (chol @ z)
             value = counted.scalar(candidate)
-            if np.isfinite(value) and not value < known[k] - largest_drop:
+            if np.isfinite(value):
                 break
         points[c], values[c] = candidate, value
     return points, values
@@ -217,7 +204,7 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     centres = [fit.mode] + other_modes
-    states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng, fit.log_density)
+    states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng)
     unconstrained = _unconstrained_start(posterior, fit, initial, centres, budget, rng)
     return StartingPoints(fit, initial, centres, states, values, unconstrained)
 
@@ -243,7 +230,7 @@ def _unconstrained_start(posterior: Posterior, fit: ModeFit, initial: np.ndarray
     with np.errstate(divide="ignore", invalid="ignore"):
         others = [reparam.to_sampler(c) for c in centres[1:]]
     centres_u = [fit_u.mode] + [c for c in others if np.all(np.isfinite(c))]
-    states, values = _overdispersed_starts(evaluate_u, centres_u, cov_u, budget.chains, rng, fit_u.log_density)
+    states, values = _overdispersed_starts(evaluate_u, centres_u, cov_u, budget.chains, rng)
     return UnconstrainedStart(reparam, near, fit_u, cov_u, states, values)
 
 
