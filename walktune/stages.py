@@ -48,6 +48,7 @@ from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator
 from .reparam import build_reparam, curved_ridge_findings
+from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
 #: Up to this dimension the funnel detector also probes the log-density's
 #: curvature (2 d (2 d + 1) evaluations).
@@ -58,7 +59,12 @@ MAX_CURVATURE_PROBE_DIM = 20
 
 
 def pilot_budget_default(dim: int) -> int:
-    """Default pilot evaluations: ``20 d^2 + 2000`` (mode search included)."""
+    """Default pilot evaluations: ``20 d^2 + 2000`` (mode search included).
+
+    Without a cap on the job, a pilot whose start proves poor (a parameter
+    near a bound, or one whose scale a probe had to correct) may spend as much
+    again: :meth:`Budget.pilot_extension`.
+    """
     return 20 * dim * dim + 2000
 
 
@@ -92,6 +98,11 @@ class Budget:
             return cls(None, pilot_budget_default(dim), chains, dim)
         return cls(total, max(int(0.4 * total), minimum_budget(dim, chains) - 3 * chains * 200), chains, dim)
 
+    @property
+    def pilot_extension(self) -> int:
+        """Evaluations a pilot with a poor start may add: the default pilot budget again, none under a cap."""
+        return self.pilot if self.total is None else 0
+
 
 # --------------------------------------------------------------------------- mode and starts
 
@@ -109,6 +120,9 @@ class StartingPoints:
         The mode and any separate modes found by the extra climbs.
     states, values : ndarray of shape (chains, d) and (chains,)
         Overdispersed starting states and their log-densities.
+    unconstrained : walktune.unconstrained.UnconstrainedStart or None
+        Where the pilot starts in unconstrained coordinates, when the mode or
+        the mass is near a bound.
     """
 
     fit: ModeFit
@@ -116,6 +130,7 @@ class StartingPoints:
     centres: list
     states: np.ndarray
     values: np.ndarray
+    unconstrained: UnconstrainedStart | None = None
 
 
 def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> np.ndarray:
@@ -202,22 +217,61 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     centres = [fit.mode] + other_modes
     states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng, bounds)
-    return StartingPoints(fit, initial, centres, states, values)
+    unconstrained = _unconstrained_start(posterior, fit, initial, centres, budget, rng)
+    return StartingPoints(fit, initial, centres, states, values, unconstrained)
+
+
+def _unconstrained_start(posterior: Posterior, fit: ModeFit, initial: np.ndarray, centres: list, budget: Budget,
+                         rng) -> UnconstrainedStart | None:
+    """The pilot's start in unconstrained coordinates, when a parameter's mode or mass is near a bound (else None).
+
+    The mode search in ``u`` may spend a sixth of the pilot's budget; the chains
+    start overdispersed around the ``u``-mode and the other modes, mapped.
+    """
+    bounds, counted = posterior.bounds, posterior.counted
+    if not np.any(np.isfinite(bounds)):
+        return None
+    sd = np.sqrt(np.diag(initial))
+    near = near_bound(counted.scalar, fit.mode, fit.log_density, sd, bounds)
+    if not near.any():
+        return None
+    reparam = pilot_map(posterior.names, bounds, near)
+    evaluate_u = SamplerSpaceEvaluator(counted, reparam)
+    search = max(20 * (posterior.dim + 1), budget.pilot // 6)
+    fit_u, cov_u = unconstrained_mode(evaluate_u.scalar, reparam, fit, posterior.start, initial, near, search)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        others = [reparam.to_sampler(c) for c in centres[1:]]
+    centres_u = [fit_u.mode] + [c for c in others if np.all(np.isfinite(c))]
+    # In u the transformed parameters are unbounded; the others keep their bounds.
+    bounds_u = np.where(near[:, None], [-np.inf, np.inf], bounds)
+    states, values = _overdispersed_starts(evaluate_u, centres_u, cov_u, budget.chains, rng, bounds_u)
+    return UnconstrainedStart(reparam, near, fit_u, cov_u, states, values)
 
 
 # --------------------------------------------------------------------------- pilot
 
 
 def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, seed, tracker) -> PilotResult:
-    """The adaptive pilot in the user's coordinates: what the pilot's budget leaves after the mode search."""
-    counted = posterior.counted
-    pilot = run_pilot(
-        None, start.states, start.initial_covariance,
-        max(budget.pilot - counted.count, _minimum_pilot(posterior.dim, budget.chains)),
-        seed, evaluator=counted, progress=lambda done, total: tracker("pilot", done, total),
-        state_log_density=start.values, within_chains=len(start.centres) > 1,
-        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
-    )
+    """The adaptive pilot: what the pilot's budget leaves after the mode search.
+
+    With an unconstrained start (a mode or mass near a bound) it runs first in
+    the unconstrained coordinates, then in the user's parameters
+    (:func:`walktune.unconstrained.run_unconstrained_pilot`), with the extra
+    allowance of a poor start.
+    """
+    counted, dim = posterior.counted, posterior.dim
+    available = max(budget.pilot - counted.count, _minimum_pilot(dim, budget.chains))
+    progress = lambda done, total: tracker("pilot", done, total)  # noqa: E731
+    within = len(start.centres) > 1
+    if start.unconstrained is None:
+        pilot = run_pilot(
+            None, start.states, start.initial_covariance, available, seed, evaluator=counted, progress=progress,
+            state_log_density=start.values, within_chains=within, extension=budget.pilot_extension,
+            on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
+        )
+    else:
+        pilot = run_unconstrained_pilot(posterior.counted, start.unconstrained, available + budget.pilot_extension,
+                                        _minimum_pilot(dim, budget.chains), seed, tracker, within)
     tracker("pilot", pilot.evaluations, pilot.evaluations)
     return pilot
 
