@@ -33,8 +33,12 @@ from pathlib import Path
 import numpy as np
 from scipy.signal import lfilter
 
-BASELINE = """
-import resource, sys, time
+# Peak resident memory of this process alone: VmHWM of /proc/self/status. (ru_maxrss is not used here:
+# Linux carries the parent's peak over into a child's ru_maxrss at exec, and the parent wrote the files.)
+PEAK = "int(dict(l.split(':', 1) for l in open('/proc/self/status'))['VmHWM'].split()[0]) * 1024"
+
+BASELINE = f"""
+import sys, time
 import numpy as np
 t0 = time.perf_counter()
 x = np.load(sys.argv[1])
@@ -44,18 +48,18 @@ for p in range(0, x.shape[2], 10):  # in blocks, or the padded spectrum alone wo
     block = x[:, :, p:p + 10]
     f = np.fft.rfft(block - block.mean(axis=1, keepdims=True), n=size, axis=1)
     np.fft.irfft(f.real**2 + f.imag**2, n=size, axis=1)[:, :n]
-print(time.perf_counter() - t0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024)
+print(time.perf_counter() - t0, {PEAK})
 """
 
-OURS = """
-import resource, sys, time
+OURS = f"""
+import sys, time
 t0 = time.perf_counter()
 from walktune.chainfiles import read_chains
 from walktune.inspection import inspect
 data = read_chains(sys.argv[1])
 result = inspect(data.draws, data.names)
 result.to_dict()
-print(time.perf_counter() - t0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024)
+print(time.perf_counter() - t0, {PEAK})
 """
 
 
@@ -64,10 +68,6 @@ def run(code: str, path: Path) -> tuple[float, float]:
     seconds, peak = out.stdout.split()
     return float(seconds), float(peak)
 
-
-# Peak resident memory of this process alone: VmHWM of /proc/self/status. (ru_maxrss is not used here:
-# Linux carries the parent's peak over into a child's ru_maxrss at exec, and the parent wrote the files.)
-PEAK = "int(dict(l.split(':', 1) for l in open('/proc/self/status'))['VmHWM'].split()[0]) * 1024"
 
 IMPORT_ONLY = f"""
 import walktune.inspection, walktune.chainfiles

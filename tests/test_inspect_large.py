@@ -172,3 +172,5 @@ def test_cli_layout_option(tmp_path):
     assert payload["inspection"]["layout"] == "draws,chains,params"
     assert read_chains(tmp_path / "dcp.npy", layout=payload["inspection"]["layout"]).draws.shape == (4, 500, 2)
     np.testing.assert_allclose(payload["posterior_mean"], x.reshape(-1, 2).mean(axis=0), rtol=1e-12)
+    report = runner.invoke(app, ["report", str(tmp_path / "o")])  # reads the files again, in the recorded layout
+    assert report.exit_code == 0, report.output
