@@ -99,6 +99,14 @@ def orient(array: np.ndarray, layout: str | None, what: str = "the draws") -> np
     return array
 
 
+def memory_map_of(array) -> mmap.mmap | None:
+    """The memory map ``array`` is a view of (found through ``.base``), or None for an in-memory array."""
+    base = array
+    while base is not None and not isinstance(base, mmap.mmap):
+        base = getattr(base, "base", None)
+    return base
+
+
 def release_pages(array) -> None:
     """Drop the pages of ``array``'s memory map from the process (no effect on in-memory arrays).
 
@@ -106,9 +114,7 @@ def release_pages(array) -> None:
     released; ``madvise(MADV_DONTNEED)`` on a read-only file mapping releases
     them, and a later read faults them in again from the file (or page cache).
     """
-    base = array
-    while base is not None and not isinstance(base, mmap.mmap):
-        base = getattr(base, "base", None)
+    base = memory_map_of(array)
     if base is not None and hasattr(base, "madvise") and hasattr(mmap, "MADV_DONTNEED"):
         base.madvise(mmap.MADV_DONTNEED)
 

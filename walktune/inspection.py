@@ -12,14 +12,15 @@ pages a block touched are released before the next (:func:`walktune.chainfiles.r
 One pass over blocks of draws (all parameters, :data:`READ_BLOCK_BYTES` of file
 at a time) gives the moments and move rates; then the per-parameter summary
 reads a slab of all chains and draws of a few parameters at a time
-(:data:`SLAB_BYTES`; at least one parameter, since rank normalisation and the
-FFT need every draw of a parameter). Peak memory is therefore about one slab
-and its working copies plus the output, whatever the file size.
+(:data:`SLAB_BYTES`, so that a slab and its working copies fit in
+:data:`MEMORY_BLOCK_BYTES`; at least one parameter, since rank normalisation and
+the FFT need every draw of a parameter), regrouped through a temporary file when
+slabs read straight from the file would take many passes over it. Peak memory is
+therefore about one block plus the output, whatever the file size.
 """
 
 from __future__ import annotations
 
-import mmap
 import os
 import tempfile
 from dataclasses import dataclass, field
@@ -31,7 +32,7 @@ from . import theory
 from ._validation import as_covariance, as_float_array, check_positive_number
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
-from .chainfiles import ChainData, check_layout, orient, release_pages
+from .chainfiles import ChainData, check_layout, memory_map_of, orient, release_pages
 from .diagnostics import Summary, summary_of_blocks
 from .errors import WalktuneError
 from .findings import Finding, conditioning_findings, convergence_findings, correlation_findings
@@ -239,7 +240,7 @@ class _Selection:
         per_slab = int(min(k, max(1, slab_bytes // (8 * m * n))))
         groups = [self.index[p0 : p0 + per_slab] for p0 in range(0, k, per_slab)]
         flat = np.empty(m * n * per_slab)
-        if len(groups) > 2 and _is_mapped(self.array):
+        if len(groups) > 2 and memory_map_of(self.array) is not None:
             yield from self._slabs_through_scratch(groups, flat)
             return
         rows = self._rows(m)
@@ -263,24 +264,22 @@ class _Selection:
             for start in range(0, n, rows):
                 block = np.array(self.array[:, start : start + rows], dtype=float)  # (m, r, all params)
                 release_pages(self.array)
-                r = block.shape[1]
                 for columns, offset in zip(groups, offsets):
                     part = np.ascontiguousarray(block[:, :, columns])  # (m, r, g)
                     for c in range(m):
-                        os.pwrite(descriptor, part[c].data, int(offset + (c * n + start) * columns.size * 8))
+                        try:
+                            os.pwrite(descriptor, part[c].data, int(offset + (c * n + start) * columns.size * 8))
+                        except OSError as error:
+                            raise WalktuneError(
+                                f"cannot write the temporary regrouped copy of the draws ({error.strerror}); "
+                                f"it needs {sum(sizes) * 8 / 1e9:.1f} GB in {tempfile.gettempdir()} (set TMPDIR)."
+                            ) from None
                 del block
             for columns, offset, size in zip(groups, offsets, sizes):
                 view = flat[:size]
                 if os.preadv(descriptor, [view.view(np.uint8)], int(offset)) != size * 8:
                     raise WalktuneError("the temporary copy of the draws came back short; is the temporary folder full?")
                 yield view.reshape(m, n, columns.size)
-
-
-def _is_mapped(array: np.ndarray) -> bool:
-    base = array
-    while base is not None and not isinstance(base, mmap.mmap):
-        base = getattr(base, "base", None)
-    return base is not None
 
 
 def _moments_and_moves(draws: _Selection):
