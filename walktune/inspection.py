@@ -437,6 +437,18 @@ def _select(draws, names, params, warmup: int, thin: int, layout: str | None, st
     return _Selection(array, np.asarray(index, dtype=np.intp), int(thin)), names
 
 
+def _select_input(draws, names, sources, layout, params, warmup: int, thin: int):
+    """:func:`_select` of an array or of a ChainData (oriented by read_chains); with the names, sources and layout."""
+    if not isinstance(draws, ChainData):
+        chosen, names = _select(draws, names, params, warmup, thin, layout, layout is not None)
+        return chosen, names, sources, layout
+    names = draws.names if names is None else names
+    sources = draws.sources if sources is None else sources
+    stated = draws.layout is not None or layout is not None
+    chosen, names = _select(draws.draws, names, params, warmup, thin, None, stated)
+    return chosen, names, sources, draws.layout or layout
+
+
 def inspect(
     draws,
     names=None,
@@ -487,14 +499,7 @@ def inspect(
         mcse = as_float_array(target_mcse, "target_mcse")
         if not np.all(np.isfinite(mcse) & (mcse > 0)):
             raise WalktuneError(f"`target_mcse` must be numbers > 0; got {target_mcse!r}.")
-    layout = check_layout(layout)
-    if isinstance(draws, ChainData):
-        names = draws.names if names is None else names
-        sources = draws.sources if sources is None else sources
-        stated, layout, draws = draws.layout is not None or layout is not None, layout or draws.layout, draws.draws
-        chosen, names = _select(draws, names, params, warmup, thin, None, stated)  # read_chains oriented it
-    else:
-        chosen, names = _select(draws, names, params, warmup, thin, layout, layout is not None)
+    chosen, names, sources, layout = _select_input(draws, names, sources, check_layout(layout), params, warmup, thin)
     m, n, d = chosen.shape
     current = None
     if proposal is not None:
