@@ -75,6 +75,10 @@ def test_release_pages_drops_mapped_pages(tmp_path):
     release_pages(mapped[:, ::2])  # a view: the mapping is found through .base
     assert resident_file_pages_kb() - before < 5_000
     assert float(mapped[:, ::2].sum()) == 4 * 62_500 * 8  # the pages come back from the file
+    private = np.load(tmp_path / "d.npy", mmap_mode="c")
+    private[0, 0, 0] = 5.0  # a change held only in this process's copy-on-write pages
+    release_pages(private[:, 1:])
+    assert private[0, 0, 0] == 5.0  # not discarded
 
 
 # The process's own peak (VmHWM): Linux carries a parent's peak into a child's ru_maxrss at exec,

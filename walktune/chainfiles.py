@@ -114,7 +114,12 @@ def release_pages(array) -> None:
     released; ``madvise(MADV_DONTNEED)`` on a read-only file mapping releases
     them, and a later read faults them in again from the file (or page cache).
     """
-    base = memory_map_of(array)
+    view = array
+    while view is not None and not isinstance(view, mmap.mmap):
+        if isinstance(view, np.memmap) and view.mode in ("c", "copyonwrite"):
+            return  # a private mapping: releasing would discard the caller's changes to it
+        view = getattr(view, "base", None)
+    base = view
     if base is not None and hasattr(base, "madvise") and hasattr(mmap, "MADV_DONTNEED"):
         base.madvise(mmap.MADV_DONTNEED)
 
