@@ -471,6 +471,11 @@ def tune_command(
 def inspect_command(
     files: List[Path] = typer.Argument(..., help="Draws: .npy, .npz, .csv or .tsv; several files are several chains."),
     chain_column: Optional[str] = typer.Option(None, "--chain-column", help="CSV column that names each row's chain."),
+    layout: Optional[str] = typer.Option(
+        None, "--layout",
+        help="Axes of a .npy/.npz array: chains,draws,params (3-D default), draws,chains,params, draws,params "
+        "(2-D default) or params,draws.",
+    ),
     warmup: int = typer.Option(0, "--warmup", help="Draws to drop from the start of every chain."),
     thin: int = typer.Option(1, "--thin", help="Keep every N-th draw after warm-up."),
     params: Optional[str] = typer.Option(None, "--params", help="Comma-separated parameters to analyse (default: all)."),
@@ -492,7 +497,7 @@ def inspect_command(
     from .outputs import FolderLock, check_free
 
     with _user_errors("read or write"):
-        data = read_chains(files, chain_column=chain_column)
+        data = read_chains(files, chain_column=chain_column, layout=layout)
         chosen = _split_list(params, "params")
         current = _read_proposal(proposal) if proposal is not None else None
         if out is not None and out.exists() and not out.is_dir():
@@ -504,12 +509,12 @@ def inspect_command(
             if lock is not None:
                 check_free(out, overwrite=overwrite)
             result = inspect(
-                data.draws, data.names, warmup=warmup, thin=thin, params=chosen, proposal=current,
-                target_ess=target_ess, target_mcse=target_mcse, sources=data.sources, chain_column=chain_column,
+                data, warmup=warmup, thin=thin, params=chosen, proposal=current,
+                target_ess=target_ess, target_mcse=target_mcse, chain_column=chain_column,
             )
             if out is not None:
                 options = {"files": [str(Path(f).resolve()) for f in files], "chain_column": chain_column,
-                           "warmup": warmup, "thin": thin, "params": chosen, "target_ess": target_ess,
+                           "layout": data.layout, "warmup": warmup, "thin": thin, "params": chosen, "target_ess": target_ess,
                            "target_mcse": target_mcse, "proposal": str(proposal) if proposal else None}
                 result.save(out, produced_by=_provenance("walktune inspect", options))
                 if report:

@@ -52,6 +52,7 @@ __all__ = [
     "esjd",
     "acceptance_rate",
     "summary",
+    "summary_of_blocks",
     "Summary",
     "MIN_DRAWS_PER_IACT",
 ]
@@ -398,6 +399,33 @@ def _summary_block(chains: np.ndarray) -> dict:
     )
 
 
+def summary_of_blocks(blocks, n_chains: int, n_draws: int) -> Summary:
+    """:func:`summary` from parameter blocks read one at a time.
+
+    Parameters
+    ----------
+    blocks : iterable of ndarray of shape (chains, draws, k)
+        Consecutive groups of parameters, each with all chains and all draws
+        (rank normalisation and the FFT need every draw of a parameter). A block
+        may be a reused buffer: it is not kept after the next one is asked for.
+    n_chains, n_draws : int
+
+    Returns
+    -------
+    Summary
+        Per parameter, the same values as ``summary`` of the whole array.
+    """
+    if n_draws < 4:
+        raise WalktuneError(f"each chain needs at least 4 draws for diagnostics; got {n_draws}.")
+    parts = []
+    for chunk in blocks:
+        if not np.all(np.isfinite(chunk)):
+            raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
+        parts.append(_summary_block(chunk))
+    fields = {key: np.concatenate([part[key] for part in parts], axis=-1) for key in parts[0]}
+    return Summary(n_chains=n_chains, n_draws=n_draws, **fields)
+
+
 def summary(draws, block: int = 8) -> Summary:
     """Mean, sd, MCSE, ESS, IACT, bulk and tail ESS and R-hat for every parameter.
 
@@ -411,13 +439,5 @@ def summary(draws, block: int = 8) -> Summary:
     else:
         source = as_chains(draws)
     m, n, p = source.shape
-    if n < 4:
-        raise WalktuneError(f"each chain needs at least 4 draws for diagnostics; got {n}.")
-    parts = []
-    for start in range(0, p, block):
-        chunk = np.array(source[:, :, start : start + block], dtype=float)  # the one copy of this block
-        if not np.all(np.isfinite(chunk)):
-            raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
-        parts.append(_summary_block(chunk))
-    fields = {key: np.concatenate([part[key] for part in parts], axis=-1) for key in parts[0]}
-    return Summary(n_chains=m, n_draws=n, **fields)
+    blocks = (np.array(source[:, :, start : start + block], dtype=float) for start in range(0, p, block))
+    return summary_of_blocks(blocks, m, n)

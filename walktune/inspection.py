@@ -6,10 +6,23 @@ which the state changes (for a random-walk Metropolis chain, the acceptance
 rate); a verdict per parameter; the posterior covariance (accumulated over row
 blocks, so a memory-mapped file is never copied whole), its structure and the
 proposal advice; and how many more draws each parameter needs.
+
+Memory: the draws (possibly a memory-mapped file) are read in blocks, and the
+pages a block touched are released before the next (:func:`walktune.chainfiles.release_pages`).
+One pass over blocks of draws (all parameters, :data:`READ_BLOCK_BYTES` of file
+at a time) gives the moments and move rates; then the per-parameter summary
+reads a slab of all chains and draws of a few parameters at a time
+(:data:`SLAB_BYTES`, so that a slab and its working copies fit in
+:data:`MEMORY_BLOCK_BYTES`; at least one parameter, since rank normalisation and
+the FFT need every draw of a parameter), regrouped through a temporary file when
+slabs read straight from the file would take many passes over it. Peak memory is
+therefore about one block plus the output, whatever the file size.
 """
 
 from __future__ import annotations
 
+import os
+import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -19,13 +32,26 @@ from . import theory
 from ._validation import as_covariance, as_float_array, check_positive_number
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
-from .diagnostics import Summary, summary
+from .chainfiles import ChainData, check_layout, memory_map_of, orient, release_pages
+from .diagnostics import Summary, summary_of_blocks
 from .errors import WalktuneError
 from .findings import Finding, conditioning_findings, convergence_findings, correlation_findings
 from .constants import ADVICE_SCHEMA as SCHEMA, CAUTION, DEFAULT_TARGET_ESS
 
 #: A chain whose state changes in less than this share of steps is called stuck (common practice).
 STUCK_MOVE_RATE = 0.01
+
+#: Working memory of one block of the per-parameter summary: the slab read plus its working copies.
+MEMORY_BLOCK_BYTES = 256 * 2**20
+#: The summary of a slab needs about this many slab sizes in all (the slab, its split copy, the
+#: zero-padded FFT, the ranks); measured with tracemalloc on (4, 250000, 2) draws: 7.6 + 1.
+SUMMARY_WORK_FACTOR = 9
+#: Bytes of one slab (all chains and draws of a few parameters).
+SLAB_BYTES = MEMORY_BLOCK_BYTES // SUMMARY_WORK_FACTOR
+#: Bytes of the draws (all parameters) read per block in the pass for moments and move rates.
+READ_BLOCK_BYTES = 16 * 2**20
+#: Several chains of fewer draws than this (or fewer draws than chains or parameters) make the layout doubtful.
+DOUBTFUL_DRAWS = 10
 
 
 @dataclass
@@ -75,6 +101,7 @@ class InspectionResult:
     warmup: int = 0
     thin: int = 1
     chain_column: str | None = None
+    layout: str | None = None
 
     def to_dict(self) -> dict:
         """advice.json payload, marked ``"source": "inspection"``."""
@@ -115,6 +142,7 @@ class InspectionResult:
                 "draws_per_chain": s.n_draws,
                 "warmup_dropped": self.warmup,
                 "chain_column": self.chain_column,
+                "layout": self.layout,
                 "thin": self.thin,
                 "acceptance_from_draws": self.move_rate,
                 "chain_acceptance_from_draws": self.chain_move_rate.tolist(),
@@ -161,34 +189,130 @@ class InspectionResult:
         )
 
 
-def _moments(draws: np.ndarray, rows_per_block: int = 65_536) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and covariance over all chains, accumulated over blocks of draws."""
+@dataclass(frozen=True)
+class _Selection:
+    """The chosen draws, read lazily in blocks.
+
+    ``array`` has shape (chains, draws, all params), warm-up and thinning
+    applied by slicing (a view: of a memory-mapped file, it is not read);
+    ``index`` (k,) are the chosen parameters' positions; ``thin`` is the step
+    between kept draws (a block touches the skipped rows' pages too).
+    """
+
+    array: np.ndarray
+    index: np.ndarray
+    thin: int
+
+    @property
+    def shape(self) -> tuple:
+        return self.array.shape[0], self.array.shape[1], self.index.size
+
+    def _rows(self, chains: int) -> int:
+        """Draws per read so that one read touches about READ_BLOCK_BYTES of the file."""
+        row_bytes = chains * self.array.shape[2] * self.array.itemsize * self.thin
+        return max(1, READ_BLOCK_BYTES // max(row_bytes, 1))
+
+    def _columns(self):
+        d = self.array.shape[2]
+        whole = self.index.size == d and np.array_equal(self.index, np.arange(d))
+        return slice(None) if whole else self.index
+
+    def row_blocks(self):
+        """Yield ``(chain, block)``, block of shape (rows, k) float64, chain by chain in order of draws."""
+        m, n, _ = self.array.shape
+        rows, columns = self._rows(1), self._columns()
+        for c in range(m):
+            for start in range(0, n, rows):
+                block = np.array(self.array[c, start : start + rows][:, columns], dtype=float)
+                release_pages(self.array)
+                yield c, block
+
+    def slabs(self, slab_bytes: int | None = None):
+        """Yield slabs of shape (chains, draws, a few params) float64, in one reused buffer.
+
+        Reading one slab reads every draw of the file; when that would take more
+        than two passes over a memory-mapped file, one pass copies the chosen
+        parameters slab by slab into a temporary file (as big as the chosen
+        draws), from which each slab is one contiguous read.
+        """
+        m, n, k = self.shape
+        slab_bytes = SLAB_BYTES if slab_bytes is None else slab_bytes
+        per_slab = int(min(k, max(1, slab_bytes // (8 * m * n))))
+        groups = [self.index[p0 : p0 + per_slab] for p0 in range(0, k, per_slab)]
+        flat = np.empty(m * n * per_slab)
+        if len(groups) > 2 and memory_map_of(self.array) is not None:
+            yield from self._slabs_through_scratch(groups, flat)
+            return
+        rows = self._rows(m)
+        for columns in groups:
+            slab = flat[: m * n * columns.size].reshape(m, n, columns.size)
+            contiguous = columns.size == 1 or np.all(np.diff(columns) == 1)
+            chosen = slice(int(columns[0]), int(columns[-1]) + 1) if contiguous else columns
+            for start in range(0, n, rows):
+                slab[:, start : start + rows] = self.array[:, start : start + rows][:, :, chosen]
+                release_pages(self.array)
+            yield slab
+
+    def _slabs_through_scratch(self, groups: list, flat: np.ndarray):
+        """Slabs of ``groups`` of parameters, regrouped through a temporary file in one pass."""
+        m, n, _ = self.shape
+        sizes = [m * n * g.size for g in groups]
+        offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]) * 8
+        rows = self._rows(m)
+        with tempfile.TemporaryFile(prefix="walktune-slabs-") as scratch:
+            descriptor = scratch.fileno()
+            for start in range(0, n, rows):
+                block = np.array(self.array[:, start : start + rows], dtype=float)  # (m, r, all params)
+                release_pages(self.array)
+                for columns, offset in zip(groups, offsets):
+                    part = np.ascontiguousarray(block[:, :, columns])  # (m, r, g)
+                    for c in range(m):
+                        try:
+                            os.pwrite(descriptor, part[c].data, int(offset + (c * n + start) * columns.size * 8))
+                        except OSError as error:
+                            raise WalktuneError(
+                                f"cannot write the temporary regrouped copy of the draws ({error.strerror}); "
+                                f"it needs {sum(sizes) * 8 / 1e9:.1f} GB in {tempfile.gettempdir()} (set TMPDIR)."
+                            ) from None
+                del block
+            for columns, offset, size in zip(groups, offsets, sizes):
+                view = flat[:size]
+                if os.preadv(descriptor, [view.view(np.uint8)], int(offset)) != size * 8:
+                    raise WalktuneError("the temporary copy of the draws came back short; is the temporary folder full?")
+                yield view.reshape(m, n, columns.size)
+
+
+def _moments_and_moves(draws: _Selection):
+    """One pass over blocks of draws: mean and covariance over all chains, and move rates.
+
+    Returns
+    -------
+    mean : ndarray of shape (params,)
+    covariance : ndarray of shape (params, params)
+    chain_moves : ndarray of shape (chains,)
+        Per chain, the share of steps where any parameter changed.
+    parameter_moves : ndarray of shape (params,)
+        Per parameter, the share of steps (over all chains) where it changed.
+    """
     m, n, d = draws.shape
     total = m * n
-    shift = np.array(draws[0, 0], dtype=float)  # centring improves the accuracy of the sums
-    sums = np.zeros(d)
-    cross = np.zeros((d, d))
-    for c in range(m):
-        for start in range(0, n, rows_per_block):
-            block = np.asarray(draws[c, start : start + rows_per_block], dtype=float) - shift
-            sums += block.sum(axis=0)
-            cross += block.T @ block
+    shift = sums = cross = previous = None
+    moved = np.zeros(m)
+    changed = np.zeros(d)
+    for c, block in draws.row_blocks():
+        if shift is None:
+            shift = block[0].copy()  # centring improves the accuracy of the sums
+            sums, cross = np.zeros(d), np.zeros((d, d))
+        steps = np.diff(block if previous is None or previous[0] != c else np.vstack([previous[1], block]), axis=0) != 0
+        moved[c] += np.count_nonzero(steps.any(axis=1))
+        changed += np.count_nonzero(steps, axis=0)
+        previous = (c, block[-1:].copy())
+        block -= shift
+        sums += block.sum(axis=0)
+        cross += block.T @ block
     mean_shifted = sums / total
     cov = (cross - total * np.outer(mean_shifted, mean_shifted)) / (total - 1)
-    return mean_shifted + shift, 0.5 * (cov + cov.T)
-
-
-def _move_rates(draws: np.ndarray, block: int = 8) -> tuple[np.ndarray, np.ndarray]:
-    """Per chain: share of steps where any parameter changed; per parameter: where it changed."""
-    m, n, d = draws.shape
-    moved = np.zeros((m, n - 1), dtype=bool)
-    per_parameter = np.zeros(d)
-    for start in range(0, d, block):
-        chunk = np.asarray(draws[:, :, start : start + block], dtype=float)
-        changed = np.diff(chunk, axis=1) != 0
-        moved |= changed.any(axis=2)
-        per_parameter[start : start + block] = changed.mean(axis=(0, 1))
-    return moved.mean(axis=1), per_parameter
+    return mean_shifted + shift, 0.5 * (cov + cov.T), moved / (n - 1), changed / (m * (n - 1))
 
 
 def _verdicts(names, s: Summary, chain_moves, needed_ess) -> list:
@@ -250,22 +374,49 @@ def _inspection_findings(structure, s: Summary, names: list, chain_moves: np.nda
     return findings
 
 
-def _chosen_draws(draws, names, params, warmup: int, thin: int) -> tuple[np.ndarray, list]:
-    """The draws as (chains, draws, params), restricted to ``params``, after warm-up and thinning; and their names."""
+def _doubtful_layout(shape: tuple) -> str | None:
+    """Why the (chains, draws, params) reading of ``shape`` looks wrong, or None."""
+    m, n, d = shape
+    if m > n:
+        return f"{m} chains of {n} draws each (more chains than draws)"
+    if d > n:
+        return f"{n} draws of {d} parameters (more parameters than draws)"
+    if m > 1 and n < DOUBTFUL_DRAWS:
+        return f"{m} chains of only {n} draws each"
+    return None
+
+
+def _as_array(draws) -> np.ndarray:
     array = draws if isinstance(draws, np.ndarray) else np.asarray(draws)
     if array.dtype.kind not in "fiu":
         try:
             array = np.asarray(array, dtype=float)
         except (TypeError, ValueError):
             raise WalktuneError("draws must be numbers shaped (chains, draws, params) or (draws, params).") from None
-    if array.ndim == 2:
-        array = array[None]
-    if array.ndim != 3:
-        raise WalktuneError(f"draws must be shaped (chains, draws, params) or (draws, params); got {array.ndim} dimensions.")
+    return array
+
+
+def _select(draws, names, params, warmup: int, thin: int, layout: str | None, stated: bool) -> tuple[_Selection, list]:
+    """The draws as a lazy (chains, draws, params) selection after warm-up and thinning; and the chosen names.
+
+    ``layout`` orients an array; ``stated`` says the orientation was stated by the
+    caller (else a doubtful shape is refused). Nothing is read from a memory map here.
+    """
+    raw = _as_array(draws)
+    if raw.ndim not in (1, 2, 3):
+        raise WalktuneError(f"draws must be shaped (chains, draws, params) or (draws, params); got {raw.ndim} dimensions.")
+    array = orient(raw, layout, "the draws")
     m, n, d = array.shape
+    doubt = None if stated else _doubtful_layout(array.shape)
+    if doubt is not None:
+        raise WalktuneError(
+            f"draws of shape {raw.shape} read as {doubt} look mis-laid; state the layout with --layout "
+            "(layout= in Python): draws,chains,params, chains,draws,params to keep this reading, draws,params or params,draws."
+        )
     names = [f"theta[{i}]" for i in range(d)] if names is None else [str(x) for x in names]
     if len(names) != d:
         raise WalktuneError(f"{len(names)} names for {d} parameters; give one name per parameter.")
+    index = list(range(d))
     if params is not None:
         index = []
         for p in params:
@@ -275,17 +426,27 @@ def _chosen_draws(draws, names, params, warmup: int, thin: int) -> tuple[np.ndar
                 index.append(names.index(p))
             else:
                 raise WalktuneError(f"parameter {p!r} is not in the draws; known: {', '.join(names)}.")
-        array = array[:, :, index]
         names = [names[i] for i in index]
     if warmup < 0 or thin < 1:
         raise WalktuneError("warm-up must be >= 0 and thin >= 1.")
     if warmup >= n:
         raise WalktuneError(f"warm-up of {warmup} draws leaves nothing of chains with {n} draws.")
     array = array[:, warmup::thin]
-    n = array.shape[1]
-    if n < 4:
-        raise WalktuneError(f"each chain needs at least 4 draws after warm-up and thinning; got {n}.")
-    return array, names
+    if array.shape[1] < 4:
+        raise WalktuneError(f"each chain needs at least 4 draws after warm-up and thinning; got {array.shape[1]}.")
+    return _Selection(array, np.asarray(index, dtype=np.intp), int(thin)), names
+
+
+def _select_input(draws, names, sources, layout, params, warmup: int, thin: int):
+    """:func:`_select` of an array or of a ChainData (oriented by read_chains); with the names, sources and layout."""
+    if not isinstance(draws, ChainData):
+        chosen, names = _select(draws, names, params, warmup, thin, layout, layout is not None)
+        return chosen, names, sources, layout
+    names = draws.names if names is None else names
+    sources = draws.sources if sources is None else sources
+    stated = draws.layout is not None or layout is not None
+    chosen, names = _select(draws.draws, names, params, warmup, thin, None, stated)
+    return chosen, names, sources, draws.layout or layout
 
 
 def inspect(
@@ -300,13 +461,17 @@ def inspect(
     target_mcse=None,
     sources=None,
     chain_column: str | None = None,
+    layout: str | None = None,
 ) -> InspectionResult:
     """Diagnose existing draws and advise a proposal.
 
     Parameters
     ----------
-    draws : array-like of shape (chains, draws, params) or (draws, params)
-        May be a memory-mapped array; it is read in blocks and not copied whole.
+    draws : array-like of shape (chains, draws, params) or (draws, params), or ChainData
+        May be a memory-mapped array; it is read in blocks, the pages of each
+        block released before the next, and never copied whole. A
+        :class:`walktune.chainfiles.ChainData` (from ``read_chains``) brings its
+        names, sources and the layout it was read with.
     names : list of str, optional
     warmup : int, default=0
         Draws to drop from the start of every chain.
@@ -323,26 +488,33 @@ def inspect(
         Wanted MCSE of each mean; overrides ``target_ess`` where it asks for more.
     sources, chain_column : optional
         Where the draws came from, recorded in advice.json so a report can read them again.
+    layout : {"chains,draws,params", "draws,chains,params", "draws,params", "params,draws"}, optional
+        How the axes of ``draws`` are laid out. Without it, 3-D draws are read as
+        (chains, draws, params) and 2-D as (draws, params), and a shape that makes
+        that reading doubtful (more chains or parameters than draws, or several
+        chains of fewer than :data:`DOUBTFUL_DRAWS` draws) is refused with a WalktuneError.
     """
     check_positive_number(target_ess, "target_ess")
     if target_mcse is not None:
         mcse = as_float_array(target_mcse, "target_mcse")
         if not np.all(np.isfinite(mcse) & (mcse > 0)):
             raise WalktuneError(f"`target_mcse` must be numbers > 0; got {target_mcse!r}.")
-    array, names = _chosen_draws(draws, names, params, warmup, thin)
-    m, n, d = array.shape
+    chosen, names, sources, layout = _select_input(draws, names, sources, check_layout(layout), params, warmup, thin)
+    m, n, d = chosen.shape
     current = None
     if proposal is not None:
         proposal = np.asarray(proposal, dtype=float)
         current = np.diag(proposal**2) if proposal.ndim == 1 and proposal.shape[0] == d else as_covariance(proposal, d, "proposal")
 
-    s = summary(array)
-    chain_moves, parameter_moves = _move_rates(array)
-    mean, covariance = _moments(array)
+    mean, covariance, chain_moves, parameter_moves = _moments_and_moves(chosen)
+    if not np.all(np.isfinite(covariance)):
+        raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
     sd = np.sqrt(np.diag(covariance))
-    if np.any(sd == 0):
+    if np.any(sd == 0):  # checked before the summary: a file of constants is refused after one pass
         constant = [names[i] for i in np.flatnonzero(sd == 0)]
-        raise WalktuneError(f"parameter(s) {', '.join(constant)} never change in any chain; drop them (--params).")
+        listed = ", ".join(constant[:10]) + (f" and {len(constant) - 10} more" if len(constant) > 10 else "")
+        raise WalktuneError(f"parameter(s) {listed} never change in any chain; drop them (--params).")
+    s = summary_of_blocks(chosen.slabs(), m, n)
     structure = analyse(covariance)
     advice = advise(covariance, current=current)
 
@@ -378,4 +550,5 @@ def inspect(
         warmup=warmup,
         thin=thin,
         chain_column=chain_column,
+        layout=layout,
     )
