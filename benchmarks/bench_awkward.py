@@ -8,18 +8,22 @@ forms, quadrature or a cached reference run; see that module):
 1. run ``walktune.tune`` with its default options and a fixed seed (the
    log-density is given as a batch function, ``vectorized=True``; positive
    parameters are given their bound, as a user would);
-2. compare the reported posterior means with the exact ones (within 4
-   reported MCSE, widened by the reference's own MCSE where the answer comes
-   from a reference run; an MCSE above sd / 10, an ESS below 100, fails) and
-   the reported sds (within 30%);
+2. compare the posterior table (``posterior_mean``, ``posterior_mean_mcse``,
+   ``posterior_sd``: all from one run, the recommended one, named by
+   ``posterior_run``) with the exact answers: means within 4 reported MCSE,
+   widened by the reference's own MCSE where the answer comes from a reference
+   run (an MCSE above sd / 10, an ESS below 100, fails), sds within 30%;
 3. run, with the plain sampler of benchmarks/plain_rwm.py (not walktune's
    engine), three fixed proposals on equal evaluation budgets from exact
-   (stationary) draws: the proposal walktune recommends
-   (``TuneResult.recommended`` when it exists, else ``proposal_covariance``),
-   the oracle per-parameter steps ``2.38 / sqrt(d)`` times the exact marginal
-   sds (Roberts, Gelman and Gilks 1997), and walktune's tuned covariance; the
-   efficiency of each is its minimum bulk ESS over parameters (Vehtari et al.
-   2021, via walktune.diagnostics) per evaluation;
+   (stationary) draws: the option walktune recommends
+   (``TuneResult.recommended``; a row in the new coordinates is run as a plain
+   random walk in z on the log-density at ``reparam.from_sampler(z)`` plus the
+   log-Jacobian and measured in the user's parameters; the reduced-basis row,
+   which needs independence proposals, is replaced by the tuned covariance and
+   marked), the oracle per-parameter steps ``2.38 / sqrt(d)`` times the exact
+   marginal sds (Roberts, Gelman and Gilks 1997), and walktune's tuned
+   covariance; the efficiency of each is its minimum bulk ESS over parameters
+   (Vehtari et al. 2021, via walktune.diagnostics) per evaluation;
 4. record the findings walktune raised.
 
 A target passes when (where a fixed proposal can mix) means and sds are right
