@@ -102,9 +102,11 @@ def recommended_proposal(result) -> tuple[np.ndarray, str, object]:
                 "plain random-walk sampler; tuned covariance run instead)", None)
     cov = getattr(result, "recommended_proposal", None)
     if cov is None:
-        return result.proposal_covariance, f"recommended = {name} (no proposal given; tuned covariance run instead)", None
+        return (result.proposal_covariance, f"recommended = {name} (no proposal given; tuned covariance run instead)",
+                None)
     if recommended.coordinates != "parameters":
-        return np.asarray(cov, float), f"recommended = {name} (random walk in z of {recommended.coordinates})", result.reparam
+        how = f"recommended = {name} (random walk in z of {recommended.coordinates})"
+        return np.asarray(cov, float), how, result.reparam
     return np.asarray(cov, float), f"recommended = {name}", None
 
 
@@ -267,7 +269,8 @@ def markdown_table(rows: list) -> str:
         findings = ", ".join(row["findings"]) or "none"
         fallback = " (run: tuned covariance)" if "instead" in row["recommended_as"] else ""
         lines.append(
-            f"| {row['target']} | {row['dim']} | {row['recommended_row']}{fallback}; R-hat {row['posterior_max_rhat']:.3g} "
+            f"| {row['target']} | {row['dim']} | {row['recommended_row']}{fallback}; "
+            f"R-hat {row['posterior_max_rhat']:.3g} "
             f"| {'yes' if row['means_ok'] else 'no'} (max {worst_z:.1f} MCSE; "
             f"MCSE up to {max(row['mcse_in_sds']):.2g} sd) "
             f"| {'yes' if row['sds_ok'] else 'no'} (worst x{worst_sd:.2f}) "
