@@ -8,18 +8,22 @@ forms, quadrature or a cached reference run; see that module):
 1. run ``walktune.tune`` with its default options and a fixed seed (the
    log-density is given as a batch function, ``vectorized=True``; positive
    parameters are given their bound, as a user would);
-2. compare the reported posterior means with the exact ones (within 4
-   reported MCSE, widened by the reference's own MCSE where the answer comes
-   from a reference run; an MCSE above sd / 10, an ESS below 100, fails) and
-   the reported sds (within 30%);
+2. compare the posterior table (``posterior_mean``, ``posterior_mean_mcse``,
+   ``posterior_sd``: all from one run, the recommended one, named by
+   ``posterior_run``) with the exact answers: means within 4 reported MCSE,
+   widened by the reference's own MCSE where the answer comes from a reference
+   run (an MCSE above sd / 10, an ESS below 100, fails), sds within 30%;
 3. run, with the plain sampler of benchmarks/plain_rwm.py (not walktune's
    engine), three fixed proposals on equal evaluation budgets from exact
-   (stationary) draws: the proposal walktune recommends
-   (``TuneResult.recommended`` when it exists, else ``proposal_covariance``),
-   the oracle per-parameter steps ``2.38 / sqrt(d)`` times the exact marginal
-   sds (Roberts, Gelman and Gilks 1997), and walktune's tuned covariance; the
-   efficiency of each is its minimum bulk ESS over parameters (Vehtari et al.
-   2021, via walktune.diagnostics) per evaluation;
+   (stationary) draws: the option walktune recommends
+   (``TuneResult.recommended``; a row in the new coordinates is run as a plain
+   random walk in z on the log-density at ``reparam.from_sampler(z)`` plus the
+   log-Jacobian and measured in the user's parameters; the reduced-basis row,
+   which needs independence proposals, is replaced by the tuned covariance and
+   marked), the oracle per-parameter steps ``2.38 / sqrt(d)`` times the exact
+   marginal sds (Roberts, Gelman and Gilks 1997), and walktune's tuned
+   covariance; the efficiency of each is its minimum bulk ESS over parameters
+   (Vehtari et al. 2021, via walktune.diagnostics) per evaluation;
 4. record the findings walktune raised.
 
 A target passes when (where a fixed proposal can mix) means and sds are right
@@ -73,43 +77,50 @@ def tune_target(target: A.Target, seed: int):
         return error
 
 
-def recommended_proposal(result) -> tuple[np.ndarray, str]:
-    """The proposal covariance walktune recommends, and how it was read.
+def recommended_proposal(result) -> tuple[np.ndarray, str, object]:
+    """The proposal walktune recommends, how it was read, and the map it runs through (or None).
 
-    ``TuneResult.recommended`` when it exists: an array is taken as the
-    covariance; a name is matched to the user-space options (tuned covariance,
-    per-parameter steps, one step size). Otherwise ``proposal_covariance``.
+    ``TuneResult.recommended`` names a comparison row and its coordinates:
+
+    * in the user's parameters (``coordinates == "parameters"``): the row's
+      covariance (``recommended_proposal``), run as is;
+    * in the new coordinates (``reparam.json``): ``recommended_proposal`` is a
+      covariance in z and the map is ``TuneResult.reparam``; the plain sampler
+      walks z (see :func:`efficiency`);
+    * the reduced-basis row mixes a random walk with independence proposals
+      from a fitted Gaussian, which the plain random-walk sampler does not do:
+      the tuned covariance is run instead and the row says so.
+
+    Without ``recommended`` (older walktune): ``proposal_covariance``.
     """
-    dim = len(result.parameter_names)
     recommended = getattr(result, "recommended", None)
     if recommended is None:
-        return result.proposal_covariance, "proposal_covariance (no `recommended` attribute)"
-    if not isinstance(recommended, str) and np.ndim(recommended) == 2:
-        return np.asarray(recommended, float), "recommended (a covariance)"
-    name = str(getattr(recommended, "proposal", recommended))
-    options = {
-        "tuned-covariance": result.proposal_covariance,
-        "step-sizes": np.diag(np.asarray(result.step_sizes) ** 2),
-        "single-step": result.single_step**2 * np.eye(dim),
-    }
-    if name in options:
-        return options[name], f"recommended = {name}"
-    if name == "current" and result.current_proposal is not None:
-        return np.asarray(result.current_proposal, float), "recommended = current"
-    return result.proposal_covariance, f"recommended = {name} (not runnable here; tuned covariance run instead)"
+        return result.proposal_covariance, "proposal_covariance (no `recommended` attribute)", None
+    name = str(recommended.proposal)
+    if name == "reduced-basis":
+        return (result.proposal_covariance, "recommended = reduced-basis (independence proposals: not runnable by the "
+                "plain random-walk sampler; tuned covariance run instead)", None)
+    cov = getattr(result, "recommended_proposal", None)
+    if cov is None:
+        return (result.proposal_covariance, f"recommended = {name} (no proposal given; tuned covariance run instead)",
+                None)
+    if recommended.coordinates != "parameters":
+        how = f"recommended = {name} (random walk in z of {recommended.coordinates})"
+        return np.asarray(cov, float), how, result.reparam
+    return np.asarray(cov, float), f"recommended = {name}", None
 
 
 def check_moments(target: A.Target, result) -> dict:
     """Reported means within 4 reported MCSE (plus the exact answer's own MC error) and sds within 30%.
 
-    A mean counts as right only when its MCSE is at most ``sd / sqrt(MIN_REPORTED_ESS)``.
+    The posterior table comes from one run, the recommended one
+    (``TuneResult.posterior_run``): ``posterior_mean``, ``posterior_mean_mcse``
+    and ``posterior_sd`` are its draws' figures. A mean counts as right only
+    when its MCSE is at most ``sd / sqrt(MIN_REPORTED_ESS)``.
     """
     mean = np.asarray(result.posterior_mean, float)
     mcse = np.asarray(result.posterior_mean_mcse, float)
-    reported_sd = getattr(result, "posterior_sd", None)
-    if reported_sd is None:
-        reported_sd = result.structure.sd
-    reported_sd = np.asarray(reported_sd, float)
+    reported_sd = np.asarray(result.posterior_sd, float)
     allowed = MEAN_MCSE_MULTIPLE * np.sqrt(mcse**2 + target.mean_error**2)
     z = np.abs(mean - target.mean) / np.sqrt(mcse**2 + target.mean_error**2)
     sd_ratio = reported_sd / target.sd
@@ -117,13 +128,11 @@ def check_moments(target: A.Target, result) -> dict:
     informative = bool(np.all(mcse_in_sds <= 1 / np.sqrt(MIN_REPORTED_ESS)))
     means_ok = bool(informative and np.all(np.isfinite(allowed)) and np.all(np.abs(mean - target.mean) <= allowed))
     sds_ok = bool(np.all(np.isfinite(sd_ratio)) and np.all(np.abs(sd_ratio - 1) <= SD_TOLERANCE))
-    # For diagnosis only: the sd of walktune's own tuned-covariance draws (the mean above comes from that run).
-    tuned_runs = getattr(result, "runs", {}) or {}
-    tuned_sd = (tuned_runs["tuned-covariance"].draws.reshape(-1, target.dim).std(axis=0)
-                if "tuned-covariance" in tuned_runs else np.full(target.dim, np.nan))
+    rhat = getattr(result, "posterior_rhat", None)
+    max_rhat = float(np.nanmax(rhat)) if rhat is not None and np.any(np.isfinite(rhat)) else float("nan")
     return {"means_ok": means_ok, "sds_ok": sds_ok, "mean_z": z.tolist(), "sd_ratio": sd_ratio.tolist(),
-            "mcse_in_sds": mcse_in_sds.tolist(),
-            "tuned_run_sd_ratio": (tuned_sd / target.sd).tolist(),
+            "mcse_in_sds": mcse_in_sds.tolist(), "posterior_run": str(getattr(result, "posterior_run", "")),
+            "posterior_max_rhat": max_rhat,
             "reported_mean": mean.tolist(), "reported_mcse": mcse.tolist(), "reported_sd": reported_sd.tolist()}
 
 
@@ -134,14 +143,37 @@ def stationary_starts(target: A.Target, chains: int, rng: np.random.Generator) -
     return finite[:chains]
 
 
-def efficiency(target: A.Target, cov, chains: int, steps: int, seed: int) -> dict:
+def _sampler_space(target: A.Target, reparam):
+    """The log-density of z, ``log p(theta(z)) + log |det d theta / d z|``, for a plain walk in z."""
+
+    def log_density_z(z):
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            theta, log_jacobian = reparam.from_sampler_with_jacobian(z)
+            lp = np.asarray(target.log_density(theta), float) + log_jacobian
+        return np.where(np.all(np.isfinite(theta), axis=-1), lp, -np.inf)
+
+    return log_density_z
+
+
+def efficiency(target: A.Target, cov, chains: int, steps: int, seed: int, reparam=None) -> dict:
     """Min bulk ESS per evaluation of plain fixed-proposal chains started from exact draws.
+
+    With ``reparam`` (walktune's map to new coordinates), the chains are a
+    plain random walk in z with covariance ``cov`` on the log-density of z
+    (:func:`_sampler_space`), started at the exact draws' z, and measured in
+    the user's parameters (``reparam.from_sampler`` of the draws): one
+    evaluation of the target per proposal, as in the user's parameters.
 
     The relative standard error is Sokal's (1997) approximation for a window of
     about 5 IACTs, ``sqrt(2 (2 M + 1) / N)`` with ``M = 5 tau_max``, ``N`` all draws.
     """
     rng = np.random.default_rng(seed)
-    draws, acceptance = run_chains(target.log_density, stationary_starts(target, chains, rng), cov, steps, rng)
+    starts = stationary_starts(target, chains, rng)
+    if reparam is None:
+        draws, acceptance = run_chains(target.log_density, starts, cov, steps, rng)
+    else:
+        z_draws, acceptance = run_chains(_sampler_space(target, reparam), reparam.to_sampler(starts), cov, steps, rng)
+        draws = reparam.from_sampler(z_draws)
     ess = D.bulk_ess(draws)
     values = np.where(np.isfinite(np.asarray(ess)), np.asarray(ess), 0.0)
     worst = int(np.argmin(values))
@@ -150,7 +182,7 @@ def efficiency(target: A.Target, cov, chains: int, steps: int, seed: int) -> dic
     return {
         "ess_per_eval": float(values[worst] / n_total), "acceptance": float(acceptance), "worst": target.names[worst],
         "reliable": not bool(np.any(ess.too_short)), "relative_se": float(np.sqrt(2 * (10 * tau + 1) / n_total)),
-        "evaluations": n_total,
+        "evaluations": n_total, "in_new_coordinates": reparam is not None,
     }
 
 
@@ -190,18 +222,19 @@ def evaluate_target(name: str, quick: bool = False, seed: int = 1, steps: int | 
                pilot_converged=bool(result.pilot.converged), **check_moments(target, result))
     chains, default_steps = run_settings(target.dim, quick)
     steps = default_steps if steps is None else int(steps)
-    cov, how = recommended_proposal(result)
+    cov, how, reparam = recommended_proposal(result)
     oracle = np.diag((2.38 / np.sqrt(target.dim) * target.sd) ** 2)
     # The same seed for every proposal; the recommended run is reused when it is the tuned covariance.
-    runs = {"recommended": efficiency(target, cov, chains, steps, seed=seed + 10),
+    runs = {"recommended": efficiency(target, cov, chains, steps, seed=seed + 10, reparam=reparam),
             "oracle": efficiency(target, oracle, chains, steps, seed=seed + 10)}
-    same = np.array_equal(cov, result.proposal_covariance)
+    same = reparam is None and np.array_equal(cov, result.proposal_covariance)
     runs["tuned_covariance"] = runs["recommended"] if same else efficiency(
         target, result.proposal_covariance, chains, steps, seed=seed + 10)
     if with_exact:
         runs["exact_covariance"] = efficiency(target, exact_covariance_proposal(target), chains, steps, seed=seed + 10)
     base = runs["oracle"]["ess_per_eval"]
-    row.update(recommended_as=how, runs=runs)
+    row.update(recommended_as=how, recommended_row=str(getattr(getattr(result, "recommended", None), "proposal", "")),
+               runs=runs)
     for key in runs:
         if key == "oracle":
             continue
@@ -224,20 +257,23 @@ def _ratio_cell(row, key) -> str:
 
 
 def markdown_table(rows: list) -> str:
-    lines = ["| target | d | means ok | sds ok | recommended vs oracle | tuned covariance vs oracle "
-             "| exact covariance vs oracle | total evaluations | findings | passes |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+    lines = ["| target | d | recommended (table's run) | means ok | sds ok | recommended vs oracle "
+             "| tuned covariance vs oracle | exact covariance vs oracle | total evaluations | findings | passes |",
+             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
     for row in rows:
         if row["crashed"]:
-            lines.append(f"| {row['target']} | {row['dim']} | crash | crash | - | - | - | - | `{row['crashed'][:80]}` | no |")
+            lines.append(f"| {row['target']} | {row['dim']} | - | crash | crash | - | - | - | - "
+                         f"| `{row['crashed'][:80]}` | no |")
             continue
         worst_z, worst_sd = max(row["mean_z"]), row["sd_ratio"][int(np.argmax(np.abs(np.log(row["sd_ratio"]))))]
-        run_sd = row["tuned_run_sd_ratio"][int(np.argmax(np.abs(np.log(row["tuned_run_sd_ratio"]))))]
         findings = ", ".join(row["findings"]) or "none"
+        fallback = " (run: tuned covariance)" if "instead" in row["recommended_as"] else ""
         lines.append(
-            f"| {row['target']} | {row['dim']} | {'yes' if row['means_ok'] else 'no'} (max {worst_z:.1f} MCSE; "
+            f"| {row['target']} | {row['dim']} | {row['recommended_row']}{fallback}; "
+            f"R-hat {row['posterior_max_rhat']:.3g} "
+            f"| {'yes' if row['means_ok'] else 'no'} (max {worst_z:.1f} MCSE; "
             f"MCSE up to {max(row['mcse_in_sds']):.2g} sd) "
-            f"| {'yes' if row['sds_ok'] else 'no'} (worst x{worst_sd:.2f}; tuned run x{run_sd:.2f}) "
+            f"| {'yes' if row['sds_ok'] else 'no'} (worst x{worst_sd:.2f}) "
             f"| {_ratio_cell(row, 'recommended')} "
             f"| {_ratio_cell(row, 'tuned_covariance')} | {_ratio_cell(row, 'exact_covariance')} "
             f"| {row['total_evaluations']} | {findings} "
