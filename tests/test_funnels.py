@@ -153,7 +153,11 @@ def test_centred_hierarchical_on_the_natural_scale_gets_a_funnel_finding(prior, 
     start = np.r_[ASSAY.mean(), 1.0, ASSAY.mean(axis=1)]
     result = walktune.tune(_centred(prior), start, names=NAMES, bounds={"tau": (0, None)}, seed=seed, budget=40_000)
     funnel = [f for f in result.findings if f.kind == "varying-scale"]
-    assert len(funnel) == 1 and funnel[0].severity in ("warn", "critical"), [f.message for f in funnel]
+    assert len(funnel) == 1, [f.message for f in result.findings]
+    # Confirmed by the draws (warn/critical); or, where the chains never reached the neck and have not mixed
+    # along tau (R-hat above 1.1), a suspicion the draws cannot rule out, which must still name the fix.
+    confirmed = funnel[0].severity in ("warn", "critical")
+    assert confirmed or (funnel[0].evidence["status"] == "suspected" and funnel[0].evidence["rhat"] > 1.1)
     assert funnel[0].parameters[0] == "tau"
     # The rewrite names this model's parameters: effects, their location and the scale on its own scale.
     assert "batch_1 = mu + tau * z_batch_1" in funnel[0].message

@@ -35,6 +35,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
+from .diagnostics import rhat
 from .findings import Finding
 from .reparam import candidates, forward, inverse, log_jacobian
 
@@ -310,6 +311,7 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     kept = draws if log_densities is None else draws[~chains_apart(np.asarray(log_densities))]
     confirmation = _confirm_in_draws(log_density, kept, n_independent * kept.shape[0] / draws.shape[0], centre,
                                      covariance, sd, j, affected, sign)
+    confirmation["rhat"] = float(rhat(draws[:, :, j : j + 1])[0])
     small = abs(np.log(confirmation["predicted_factor_between_fifths"])) < 0.5 * np.log(threshold)
     if small and confirmation["chains_fill_fifths"]:
         # Within the draws' range the curvature predicts little change: the funnel it sees lies in tails the
@@ -317,6 +319,10 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
         return []
     return [_funnel_finding(j, float(np.exp(size)), affected, names, bounds, flat, values, confirmation)]
 
+
+#: Above this R-hat of the candidate parameter the chains have plainly not mixed along it (the
+#: critical level of the not-converged finding; common practice): the draws cannot rule a funnel out.
+UNMIXED_RHAT = 1.1
 
 #: Each fifth of the candidate's draws must hold at least this many chains (each with 5% of
 #: it or more) for the draws to confirm or rule out a funnel: otherwise the fifths compare
@@ -452,6 +458,10 @@ def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmati
     elif not np.isfinite(needed):
         settle = (f"the change lies outside the range of the draws of {names[j]}, so more draws of this posterior "
                   "will not settle it; a run of the non-centred form beside this one would")
+    elif not confirmation["rhat"] <= UNMIXED_RHAT:
+        settle = (f"the chains have not mixed along {names[j]} (R-hat {confirmation['rhat']:.2f}), as chains kept out "
+                  "of a funnel's neck do, so the draws cannot rule it out; run the non-centred form beside this one. "
+                  f"{rewrite}")
     elif needed > n:
         settle = (f"a run with about {needed:.0f} roughly independent draws (now {n:.0f}; about "
                   f"{needed * max(tau, 1.0):.2g} evaluations of the tuned proposal) would settle it")
