@@ -469,7 +469,12 @@ def tune_command(
 
 @app.command("inspect")
 def inspect_command(
-    files: List[Path] = typer.Argument(..., help="Draws: .npy, .npz, .csv or .tsv; several files are several chains."),
+    files: List[Path] = typer.Argument(
+        ..., help="Draws: .npy, .npz, .csv or .tsv (several files are several chains), or a folder written by tune."
+    ),
+    run: Optional[str] = typer.Option(
+        None, "--run", help="Run of a tune folder to read (default: the recommended one, else tuned-covariance)."
+    ),
     chain_column: Optional[str] = typer.Option(None, "--chain-column", help="CSV column that names each row's chain."),
     warmup: int = typer.Option(0, "--warmup", help="Draws to drop from the start of every chain."),
     thin: int = typer.Option(1, "--thin", help="Keep every N-th draw after warm-up."),
@@ -488,11 +493,16 @@ def inspect_command(
     from .chainfiles import read_chains
     from .console import render_inspection
     from .inspection import inspect
-
     from .outputs import FolderLock, check_free
+    from .tunefolder import is_tune_output, read_tune_output
 
     with _user_errors("read or write"):
-        data = read_chains(files, chain_column=chain_column)
+        if is_tune_output(files):
+            data, run = read_tune_output(files[0], run)
+        elif run is not None:
+            raise WalktuneError("--run picks a run of a folder written by walktune tune; give that folder or its draws.npz.")
+        else:
+            data = read_chains(files, chain_column=chain_column)
         chosen = _split_list(params, "params")
         current = _read_proposal(proposal) if proposal is not None else None
         if out is not None and out.exists() and not out.is_dir():
@@ -505,12 +515,13 @@ def inspect_command(
                 check_free(out, overwrite=overwrite)
             result = inspect(
                 data.draws, data.names, warmup=warmup, thin=thin, params=chosen, proposal=current,
-                target_ess=target_ess, target_mcse=target_mcse, sources=data.sources, chain_column=chain_column,
+                target_ess=target_ess, target_mcse=target_mcse, sources=data.sources,
+                chain_column=chain_column, run=run,
             )
             if out is not None:
                 options = {"files": [str(Path(f).resolve()) for f in files], "chain_column": chain_column,
                            "warmup": warmup, "thin": thin, "params": chosen, "target_ess": target_ess,
-                           "target_mcse": target_mcse, "proposal": str(proposal) if proposal else None}
+                           "target_mcse": target_mcse, "proposal": str(proposal) if proposal else None, "run": run}
                 result.save(out, produced_by=_provenance("walktune inspect", options))
                 if report:
                     from .report import write_report

@@ -75,6 +75,7 @@ class InspectionResult:
     warmup: int = 0
     thin: int = 1
     chain_column: str | None = None
+    run: str | None = None
 
     def to_dict(self) -> dict:
         """advice.json payload, marked ``"source": "inspection"``."""
@@ -115,6 +116,7 @@ class InspectionResult:
                 "draws_per_chain": s.n_draws,
                 "warmup_dropped": self.warmup,
                 "chain_column": self.chain_column,
+                "run": self.run,
                 "thin": self.thin,
                 "acceptance_from_draws": self.move_rate,
                 "chain_acceptance_from_draws": self.chain_move_rate.tolist(),
@@ -300,6 +302,7 @@ def inspect(
     target_mcse=None,
     sources=None,
     chain_column: str | None = None,
+    run: str | None = None,
 ) -> InspectionResult:
     """Diagnose existing draws and advise a proposal.
 
@@ -323,6 +326,8 @@ def inspect(
         Wanted MCSE of each mean; overrides ``target_ess`` where it asks for more.
     sources, chain_column : optional
         Where the draws came from, recorded in advice.json so a report can read them again.
+    run : str, optional
+        The run of a ``walktune tune`` folder the draws are (recorded likewise).
     """
     check_positive_number(target_ess, "target_ess")
     if target_mcse is not None:
@@ -378,4 +383,5 @@ def inspect(
         warmup=warmup,
         thin=thin,
         chain_column=chain_column,
+        run=run,
     )

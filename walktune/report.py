@@ -96,7 +96,12 @@ def load_run(folder) -> Run:
                 f"the draws this inspection read are missing ({', '.join(missing) or 'none recorded'}); "
                 "re-run `walktune inspect ... --out` with them in place."
             )
-        data = read_chains(files, chain_column=advice.get("inspection", {}).get("chain_column"))
+        if advice.get("inspection", {}).get("run") is not None:
+            from .tunefolder import read_tune_output
+
+            data, _ = read_tune_output(files[0], advice["inspection"]["run"])
+        else:
+            data = read_chains(files, chain_column=advice.get("inspection", {}).get("chain_column"))
         index = [data.names.index(n) for n in names] if set(names) <= set(data.names) else list(range(len(names)))
         info = advice.get("inspection", {})
         draws = data.draws[:, info.get("warmup_dropped", 0) :: info.get("thin", 1)]
