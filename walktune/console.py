@@ -16,6 +16,7 @@ from rich.text import Text
 
 from . import theory
 from .constants import CAUTION
+from .diagnostics import MIN_DRAWS_PER_IACT as IACTS_PER_CHAIN
 from .recommend import format_factor
 
 if TYPE_CHECKING:  # for annotations only: showing an inspection needs no tuning code
@@ -64,6 +65,45 @@ class StageProgress:
         self.progress.update(self.tasks[stage], completed=min(done, total), total=total)
 
 
+def _needs(columns: list, rows: list) -> int:
+    """Width of a boxed table whose cells (and headers) are kept whole on one line."""
+    def length(cell) -> int:
+        return (cell if isinstance(cell, Text) else Text(str(cell))).cell_len
+
+    widest = [max([length(header)] + [length(row[i]) for row in rows]) for i, (header, _) in enumerate(columns)]
+    return sum(widest) + 3 * len(columns) + 1  # one space of padding each side, a border between columns
+
+
+def fitted_table(title: str, columns: list, rows: list, width: int | None, caption: str | None = None) -> Table:
+    """A table of ``columns`` (header, justify) and ``rows``, laid out to fit ``width`` columns.
+
+    Every cell is kept whole (no wrapping inside a value): side by side when the
+    terminal is wide enough, else one block per row, each value under its
+    header, so a narrow or piped terminal (80 columns) still shows every value in full.
+    """
+    table = Table(title=title, title_justify="left", caption=caption, caption_justify="left")
+    for header, justify in columns:
+        table.add_column(header, justify=justify, no_wrap=True)
+    for row in rows:
+        table.add_row(*row)
+    if width is None or _needs(columns, rows) <= width:
+        return table
+    vertical = Table(title=title, title_justify="left", caption=caption, caption_justify="left", show_header=False,
+                     show_lines=True, expand=True)
+    vertical.add_column("what", style="bold", no_wrap=True)
+    vertical.add_column("value", ratio=1)
+    for row in rows:
+        label = row[0] if isinstance(row[0], Text) else Text(str(row[0]), style="bold")
+        lines = Text()
+        for (header, _), cell in zip(columns[1:], row[1:]):
+            lines.append(f"{header}: ", style="dim")
+            lines.append(cell if isinstance(cell, Text) else Text(str(cell)))
+            lines.append("\n")
+        lines.rstrip()
+        vertical.add_row(label, lines)
+    return vertical
+
+
 def _fmt(x: float, digits: int = 3) -> str:
     if x is None or not np.isfinite(x):
         return "n/a"
@@ -81,7 +121,7 @@ def _hours(evaluations: float, seconds_per_evaluation: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def posterior_table(result: TuneResult) -> Table:
+def posterior_table(result: TuneResult, width: int | None = None) -> Table:
     """Mean, MCSE, sd and R-hat, all from the draws of one run: the recommended one."""
     run = result.posterior_run
     rows = {row.proposal: row for row in result.comparison}
@@ -89,33 +129,30 @@ def posterior_table(result: TuneResult) -> Table:
     title = f"Posterior (mean, MCSE, sd and R-hat from the {run} fixed-proposal run{shape})"
     if result.posterior_rhat is not None and not result.converged:
         title += f"\nNOT CONVERGED: R-hat up to {np.nanmax(result.posterior_rhat):.3g} (below 1.01 wanted); do not trust these numbers"
-    table = Table(title=title, title_justify="left")
-    for column, justify in [
-        ("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
-        ("step size", "right"), ("R^2 by others", "right"),
-    ]:
-        table.add_column(column, justify=justify)
+    columns = [("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
+               ("step", "right"), ("R^2 others", "right")]
     sd = result.posterior_sd if result.posterior_sd is not None else result.structure.sd
+    table_rows = []
     for i, name in enumerate(result.parameter_names):
         rhat = result.posterior_rhat[i] if result.posterior_rhat is not None else float("nan")
         flag = "" if rhat <= 1.01 else " !"
-        table.add_row(
+        table_rows.append([
             name, _fmt(result.posterior_mean[i], 5), _fmt(result.posterior_mean_mcse[i], 2), _fmt(sd[i]),
             Text(f"{rhat:.3f}{flag}", style="bold red" if flag else ""),
             _fmt(result.step_sizes[i]), f"{result.structure.determined_by_others[i]:.3f}",
-        )
-    table.caption = ("step size: tuned per-parameter proposal sd; R^2 by others: from the pilot's covariance. "
-                     "! R-hat above 1.01: the chains disagree.")
-    return table
+        ])
+    caption = ("step: tuned per-parameter proposal sd; R^2 others: how well the other parameters predict it (pilot's "
+               "covariance). ! R-hat above 1.01: the chains disagree.")
+    return fitted_table(title, columns, table_rows, width, caption)
 
 
 def geometry_table(result: TuneResult, max_rows: int = 5) -> Table:
     return geometry_table_from(result.structure, result.parameter_names, max_rows)
 
 
-def geometry_table_from(s, names, max_rows: int = 5) -> Table:
-    table = Table(title="Geometry (from the pilot's covariance estimate)", title_justify="left", show_header=False)
-    table.add_column("what", style="bold")
+def geometry_table_from(s, names, max_rows: int = 5, source: str = "the pilot's covariance estimate") -> Table:
+    table = Table(title=f"Geometry (from {source})", title_justify="left", show_header=False)
+    table.add_column("what", style="bold", no_wrap=True)
     table.add_column("value")
     table.add_row("effective dimension", f"{s.effective_dimension:.2f} of {len(names)} (participation ratio)")
     table.add_row("spectrum", f"correlation eigenvalues span {s.decades:.1f} decades")
@@ -140,7 +177,7 @@ def _predicted(slowdown: dict) -> str:
 
 def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     table = Table(title="Advice", title_justify="left", show_header=False)
-    table.add_column("what", style="bold")
+    table.add_column("what", style="bold", no_wrap=True)
     table.add_column("advice")
     rec = result.recommended
     rows = {row.proposal: row for row in result.comparison}
@@ -197,29 +234,37 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     return table
 
 
-def comparison_table(result: TuneResult) -> Table:
-    table = Table(title="Measured: fixed-proposal runs on equal budgets from the pilot's end states", title_justify="left")
-    for column, justify in [
-        ("proposal", "left"), ("accept", "right"), ("min ESS /1k eval", "right"),
-        ("median ESS /1k eval", "right"), ("evals", "right"), ("speed-up", "right"), ("max R-hat", "right"),
-    ]:
-        table.add_column(column, justify=justify)
+def comparison_table(result: TuneResult, width: int | None = None) -> Table:
+    """The proof runs side by side; the notes below explain the marks."""
+    rows = result.comparison
+    budgets = sorted({row.evaluations for row in rows})
+    budget = f"{budgets[0]} evaluations each" if len(budgets) == 1 else "evaluations in the evals column"
+    title = f"Measured: fixed-proposal runs on equal budgets ({budget}) from the pilot's end states"
+    columns = [("proposal", "left"), ("accept", "right"), ("min ESS", "right"), ("med ESS", "right"),
+               ("speed-up", "right"), ("R-hat max", "right")]
+    if len(budgets) > 1:
+        columns.insert(4, ("evals", "right"))
     chosen = result.recommended.proposal if result.recommended is not None else None
-    for row in result.comparison:
-        mark = (" <- recommended" if row.proposal == chosen else "") + ("" if row.ess_reliable else " *")
+    table_rows, notes = [], []
+    for row in rows:
+        mark = ("> " if row.proposal == chosen else "") + row.proposal + ("" if row.ess_reliable else " *")
         if not row.mixed:
-            mark += " (not mixed)"
-        table.add_row(
-            row.proposal + mark, f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
-            str(row.evaluations), speedup_cell(row), _fmt(row.max_rhat, 4),
-        )
-    table.caption = ("* ESS rests on fewer than 50 autocorrelation times per chain. >= : a lower bound (the baseline's "
-                     "chains had not mixed at all, so its ESS is too high); <= : an upper bound; ~ : rough, as likely "
-                     "too high as too low.")
-    return table
+            mark += " !"
+        cells = [mark, f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
+                 speedup_cell(row, short=True), _fmt(row.max_rhat, 4)]
+        if len(budgets) > 1:
+            cells.insert(4, str(row.evaluations))
+        table_rows.append(cells)
+        if getattr(row, "speedup_kind", "measured") == "rough":
+            notes.append(f"{row.proposal}: {speedup_cell(row)}")
+    caption = (f"> recommended. * ESS rests on fewer than {IACTS_PER_CHAIN} autocorrelation times per chain "
+               "(rough). ! not mixed. min/med ESS: smallest and median over parameters, per 1000 evaluations. >= : a lower bound (the baseline's chains had "
+               "not mixed at all, so its ESS is too high); <= : an upper bound; ~ : rough, as likely too high as too low."
+               + "".join(f"\n{note}" for note in notes))
+    return fitted_table(title, columns, table_rows, width, caption)
 
 
-def speedup_cell(row) -> str:
+def speedup_cell(row, short: bool = False) -> str:
     """A comparison row's speed-up as measured, a bound, or rough with the evaluations that would settle it."""
     value = format_factor(row.speedup)
     kind = getattr(row, "speedup_kind", "measured")
@@ -228,6 +273,8 @@ def speedup_cell(row) -> str:
     if kind == "upper-bound":
         return "<= " + value
     if kind == "rough":
+        if short:
+            return "~" + value
         settle = row.evaluations_to_settle
         return f"~{value} (rough; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
     return value
@@ -237,8 +284,8 @@ def findings_table(result) -> Table | Text:
     if not result.findings:
         return Text("No findings: nothing unusual was seen (which does not prove there is nothing).")
     table = Table(title="Findings", title_justify="left")
-    table.add_column("severity")
-    table.add_column("kind")
+    table.add_column("severity", no_wrap=True)
+    table.add_column("kind", no_wrap=True)
     table.add_column("what it means", ratio=1)
     for finding in result.findings:
         style = SEVERITY_STYLE[finding.severity]
@@ -259,8 +306,8 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
         header += " [PARTIAL: interrupted]"
     console.print(Panel(header, title="walktune", expand=False))
     console.print(advice_table(result, output_folder))
-    console.print(comparison_table(result))
-    console.print(posterior_table(result))
+    console.print(comparison_table(result, console.width))
+    console.print(posterior_table(result, console.width))
     console.print(geometry_table(result))
     console.print(findings_table(result))
     _list_outputs(console, output_folder)
@@ -318,25 +365,25 @@ def _list_outputs(console: Console, output_folder: str | None) -> None:
 VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
 
 
-def inspection_table(result) -> Table:
+def inspection_table(result, width: int | None = None) -> Table:
     s = result.summary
-    table = Table(
-        title=f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps",
-        title_justify="left",
-    )
-    for column in ("parameter", "mean", "sd", "MCSE", "bulk ESS", "tail ESS", "R-hat", "IACT", "more draws", "verdict"):
-        table.add_column(column, justify="left" if column in ("parameter", "verdict") else "right")
+    title = f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps"
+    columns = [(c, "left" if c in ("parameter", "verdict") else "right")
+               for c in ("parameter", "mean", "sd", "MCSE", "bulk ESS", "tail ESS", "R-hat", "IACT", "more draws", "verdict")]
+    rows, notes = [], []
     for i, name in enumerate(result.parameter_names):
         rough = "~" if s.bulk_too_short[i] else ""
         verdict = result.verdicts[i]
-        table.add_row(
+        rows.append([
             name, _fmt(s.mean[i], 5), _fmt(s.sd[i]), _fmt(s.mcse[i], 2), rough + _fmt(s.bulk_ess[i], 4),
             _fmt(s.tail_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(result.more_draws_observed[i], 3),
-            Text(verdict.verdict if verdict.verdict == "ok" else f"{verdict.verdict}: {verdict.reason}",
-                 style=VERDICT_STYLE.get(verdict.verdict, "")),
-        )
-    table.caption = "~ rough: fewer than 50 IACTs per chain. 'more draws' at the observed efficiency for the ESS wanted."
-    return table
+            Text(verdict.verdict, style=VERDICT_STYLE.get(verdict.verdict, "")),
+        ])
+        if verdict.verdict != "ok":
+            notes.append(f"{name}: {verdict.reason}")
+    caption = ("~ rough: fewer than 50 IACTs per chain. 'more draws' at the observed efficiency for the ESS wanted."
+               + "".join(f"\n{note}" for note in notes))
+    return fitted_table(title, columns, rows, width, caption)
 
 
 def inspection_advice_table(result) -> Table:
@@ -365,9 +412,9 @@ def inspection_advice_table(result) -> Table:
 
 def render_inspection(console: Console, result, output_folder: str | None) -> None:
     console.print(Panel(f"inspected: {', '.join(result.sources) or 'array'}", title="walktune", expand=False))
-    console.print(inspection_table(result))
+    console.print(inspection_table(result, console.width))
     console.print(inspection_advice_table(result))
-    console.print(geometry_table_from(result.structure, result.parameter_names))
+    console.print(geometry_table_from(result.structure, result.parameter_names, source="the covariance of these draws"))
     console.print(findings_table(result))
     _list_outputs(console, output_folder)
     console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))

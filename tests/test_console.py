@@ -1,0 +1,83 @@
+"""Terminal tables: readable at 80 columns (a piped or narrow terminal) and wide.
+
+A cell rich has to cut shows the ellipsis character; a value kept whole shows
+every one of its words. Both are checked on the whole rendered output at 80
+and 120 columns, against the cells the tables are built from.
+"""
+
+import numpy as np
+import pytest
+from rich.console import Console
+from rich.table import Table
+from rich.text import Text
+
+import walktune
+from walktune import console as C
+
+from conftest import ar1, load_demo
+
+WIDTHS = (80, 120)
+
+
+@pytest.fixture(scope="module")
+def tuned():
+    # Two separated modes: every finding, rough speed-ups and a not-converged posterior table.
+    model = load_demo("mirror_sensor")
+    return walktune.tune(model.log_posterior, list(model.PARAMETERS.values()), names=list(model.PARAMETERS),
+                         seed=3, budget=30_000)
+
+
+@pytest.fixture(scope="module")
+def inspected():
+    draws = np.stack([ar1(0.97, 4, 3000, seed=s) for s in range(3)], axis=-1)
+    draws[1, :, 2] += 3.0  # one chain apart: verdicts with reasons
+    return walktune.inspect(draws, ["a_rather_long_parameter_name", "beta", "gamma_sd"])
+
+
+def cell_words(table: Table) -> list:
+    """Every word of every cell and header of ``table`` (laid out side by side)."""
+    words = []
+    for column in table.columns:
+        for cell in [column.header, *column._cells]:
+            text = cell.plain if isinstance(cell, Text) else str(cell)
+            words.extend(text.split())
+    return words
+
+
+def rendered(width: int, draw) -> str:
+    console = Console(width=width, record=True, color_system=None)
+    draw(console)
+    return console.export_text()
+
+
+def assert_whole(text: str, tables: list, width: int) -> None:
+    assert "\u2026" not in text, "a cell was cut"
+    assert max(len(line) for line in text.splitlines()) <= width
+    for table in tables:
+        for word in cell_words(table):
+            assert word in text, f"{word!r} missing at {width} columns"
+
+
+@pytest.mark.parametrize("width", WIDTHS)
+def test_tuning_tables_fit(tuned, width):
+    text = rendered(width, lambda c: C.render(c, tuned, "mirror", None))
+    wide = [C.comparison_table(tuned), C.posterior_table(tuned)]  # side by side: the reference cells
+    assert_whole(text, wide, width)
+    for proposal in ("single-step", "step-sizes", "tuned-covariance"):
+        assert proposal in text
+
+
+@pytest.mark.parametrize("width", WIDTHS)
+def test_inspection_tables_fit(inspected, width):
+    text = rendered(width, lambda c: C.render_inspection(c, inspected, None))
+    assert_whole(text, [C.inspection_table(inspected)], width)
+    assert "a_rather_long_parameter_name" in text
+
+
+def test_narrow_layout_keeps_every_value():
+    columns = [("name", "left")] + [(f"column {i}", "right") for i in range(8)]
+    rows = [["first-row-name"] + [f"{1.23456789 * 10**i:.6g}" for i in range(8)]]
+    wide = C.fitted_table("t", columns, rows, None)
+    for width in WIDTHS:
+        text = rendered(width, lambda c: c.print(C.fitted_table("t", columns, rows, width)))
+        assert_whole(text, [wide], width)
