@@ -365,24 +365,42 @@ def _list_outputs(console: Console, output_folder: str | None) -> None:
 VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
 
 
+def mean_with_mcse(mean: float, mcse: float) -> str:
+    """``mean +/- MCSE``, the MCSE to two significant digits and the mean to the same decimal place."""
+    if not (np.isfinite(mean) and np.isfinite(mcse) and mcse > 0):
+        return f"{_fmt(mean, 5)} +/- {_fmt(mcse, 2)}"
+    decimals = 1 - int(np.floor(np.log10(mcse)))
+    if not 0 <= decimals <= 8 or abs(mean) >= 1e6:
+        return f"{mean:.4g} +/- {mcse:.2g}"
+    return f"{mean:.{decimals}f} +/- {mcse:.{decimals}f}"
+
+
 def inspection_table(result, width: int | None = None) -> Table:
+    """Per parameter, what to do first (verdict, draws still needed), then the numbers behind it.
+
+    Columns in order of weight for the decision: the verdict; the draws still
+    needed for the ESS wanted at the observed efficiency; the mean with its
+    MCSE; bulk ESS and R-hat, on which the verdict rests; the IACT; tail ESS and sd.
+    """
     s = result.summary
-    title = f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps"
-    columns = [(c, "left" if c in ("parameter", "verdict") else "right")
-               for c in ("parameter", "mean", "sd", "MCSE", "bulk ESS", "tail ESS", "R-hat", "IACT", "more draws", "verdict")]
+    title = (f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps; "
+             f"ESS wanted {result.target_ess:g}")
+    columns = [("parameter", "left"), ("verdict", "left"), ("draws needed", "right"), ("mean +/- MCSE", "right"),
+               ("ESS", "right"), ("R-hat", "right"), ("IACT", "right"), ("tail ESS", "right"), ("sd", "right")]
     rows, notes = [], []
     for i, name in enumerate(result.parameter_names):
         rough = "~" if s.bulk_too_short[i] else ""
         verdict = result.verdicts[i]
+        more = result.more_draws_observed[i]
         rows.append([
-            name, _fmt(s.mean[i], 5), _fmt(s.sd[i]), _fmt(s.mcse[i], 2), rough + _fmt(s.bulk_ess[i], 4),
-            _fmt(s.tail_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(result.more_draws_observed[i], 3),
-            Text(verdict.verdict, style=VERDICT_STYLE.get(verdict.verdict, "")),
+            name, Text(verdict.verdict, style=VERDICT_STYLE.get(verdict.verdict, "")),
+            "none" if more == 0 else "+" + _fmt(more, 3), mean_with_mcse(s.mean[i], s.mcse[i]),
+            rough + _fmt(s.bulk_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(s.tail_ess[i], 4), _fmt(s.sd[i]),
         ])
         if verdict.verdict != "ok":
             notes.append(f"{name}: {verdict.reason}")
-    caption = ("~ rough: fewer than 50 IACTs per chain. 'more draws' at the observed efficiency for the ESS wanted."
-               + "".join(f"\n{note}" for note in notes))
+    caption = ("draws needed: more draws in all chains for the ESS wanted, at the observed efficiency. ESS: bulk ESS; "
+               f"~ rough: fewer than {IACTS_PER_CHAIN} IACTs per chain." + "".join(f"\n{note}" for note in notes))
     return fitted_table(title, columns, rows, width, caption)
 
 
