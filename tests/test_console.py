@@ -81,3 +81,31 @@ def test_narrow_layout_keeps_every_value():
     for width in WIDTHS:
         text = rendered(width, lambda c: c.print(C.fitted_table("t", columns, rows, width)))
         assert_whole(text, [wide], width)
+
+
+@pytest.mark.parametrize("seconds, text", [(0.00042, "0.42 ms"), (0.0111, "11 ms"), (5.36, "5.36 s"),
+                                           (300.0, "5 min"), (36_000.0, "10 h")])
+def test_durations_get_a_unit_that_fits(seconds, text):
+    # Unit conversions: 1 s = 1000 ms, 1 min = 60 s, 1 h = 3600 s.
+    assert C.duration(seconds) == text
+
+
+@pytest.mark.parametrize("mean, mcse, text", [(1.23456, 0.0123, "1.235 +/- 0.012"), (-0.15373, 0.28, "-0.15 +/- 0.28"),
+                                              (123.4, 15.0, "123 +/- 15")])
+def test_mean_with_mcse_rounds_to_the_mcse(mean, mcse, text):
+    assert C.mean_with_mcse(mean, mcse) == text
+
+
+def test_short_repr_and_advice_text(tuned, inspected):
+    for result in (tuned, inspected):
+        text = repr(result)
+        assert len(text.splitlines()) <= 5 and len(text) < 600, text
+        assert f"{len(result.parameter_names)} parameters" in text
+        assert f"findings: {len(result.findings)}" in text
+    assert tuned.recommended.proposal in repr(tuned)
+    advice = tuned.advice_text()
+    assert tuned.recommended.message in advice and "0.0 s" not in advice
+    for finding in tuned.findings + inspected.findings:
+        assert finding.message in advice or finding.message in inspected.advice_text()
+    for name, verdict in zip(inspected.parameter_names, inspected.verdicts):
+        assert f"{name}: {verdict.verdict}" in inspected.advice_text()

@@ -17,6 +17,7 @@ from rich.text import Text
 from . import theory
 from .constants import CAUTION
 from .diagnostics import MIN_DRAWS_PER_IACT as IACTS_PER_CHAIN
+from .plaintext import duration, mean_with_mcse
 from .recommend import format_factor
 
 if TYPE_CHECKING:  # for annotations only: showing an inspection needs no tuning code
@@ -111,14 +112,7 @@ def _fmt(x: float, digits: int = 3) -> str:
 
 
 def _hours(evaluations: float, seconds_per_evaluation: float) -> str:
-    seconds = evaluations * seconds_per_evaluation
-    if not np.isfinite(seconds):
-        return "n/a"
-    if seconds < 120:
-        return f"{seconds:.1f} s"
-    if seconds < 7200:
-        return f"{seconds / 60:.1f} min"
-    return f"{seconds / 3600:.1f} h"
+    return duration(evaluations * seconds_per_evaluation)
 
 
 def posterior_table(result: TuneResult, width: int | None = None) -> Table:
@@ -298,7 +292,7 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
     header = (
         f"{label}: {d} parameters, {result.total_evaluations} evaluations "
         f"({result.pilot_evaluations} for the mode and pilot), "
-        f"{result.seconds_per_evaluation * 1e3:.3g} ms per evaluation"
+        f"{duration(result.seconds_per_evaluation)} per evaluation"
     )
     if result.worker_busy is not None:
         header += f"; workers busy {result.worker_busy:.0%} of the evaluation time"
@@ -363,16 +357,6 @@ def _list_outputs(console: Console, output_folder: str | None) -> None:
 
 
 VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
-
-
-def mean_with_mcse(mean: float, mcse: float) -> str:
-    """``mean +/- MCSE``, the MCSE to two significant digits and the mean to the same decimal place."""
-    if not (np.isfinite(mean) and np.isfinite(mcse) and mcse > 0):
-        return f"{_fmt(mean, 5)} +/- {_fmt(mcse, 2)}"
-    decimals = 1 - int(np.floor(np.log10(mcse)))
-    if not 0 <= decimals <= 8 or abs(mean) >= 1e6:
-        return f"{mean:.4g} +/- {mcse:.2g}"
-    return f"{mean:.{decimals}f} +/- {mcse:.{decimals}f}"
 
 
 def inspection_table(result, width: int | None = None) -> Table:

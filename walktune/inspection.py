@@ -77,6 +77,17 @@ class InspectionResult:
     chain_column: str | None = None
     run: str | None = None
 
+    def __repr__(self) -> str:
+        from .plaintext import inspection_repr
+
+        return inspection_repr(self)
+
+    def advice_text(self) -> str:
+        """The advice as plain text (for notebooks and logs): verdicts, draws needed, proposal, findings."""
+        from .plaintext import inspection_advice
+
+        return inspection_advice(self)
+
     def to_dict(self) -> dict:
         """advice.json payload, marked ``"source": "inspection"``."""
         from . import __version__
