@@ -45,7 +45,7 @@ def test_mcse_of_ar1_mean(ar1_factory):
     phi = 0.9
     x = ar1_factory(phi, chains=4, n=200_000, seed=5)[..., None]
     expected = np.sqrt(1 / (1 - phi**2) * (1 + phi) / (1 - phi) / x.size)
-    assert D.mcse_mean(x)[0] == pytest.approx(expected, rel=0.05)
+    assert D.mean_mcse(x)[0] == pytest.approx(expected, rel=0.05)
 
 
 def test_iid_draws_have_ess_near_n_and_rhat_near_one():
@@ -137,17 +137,17 @@ def test_average_ranks_match_scipy_rankdata():
     np.testing.assert_allclose(D._average_ranks(column), stats.rankdata(column, method="average"))
 
 
-def test_summary_agrees_with_the_single_functions():
-    # summary() computes block by block; every field must equal the function of the same name.
+def test_measure_chains_agrees_with_the_single_functions():
+    # measure_chains() computes block by block; every field must equal the function of the same name.
     rng = np.random.default_rng(12)
     x = rng.standard_normal((3, 800, 11)).cumsum(axis=1) * 0.1 + rng.standard_normal((3, 800, 11))
-    s = D.summary(x, block=4)
+    s = D.measure_chains(x, block=4)
     np.testing.assert_allclose(s.ess, D.ess(x, split=True))
     np.testing.assert_allclose(s.iact, D.iact(x, split=True))
     np.testing.assert_allclose(s.bulk_ess, D.bulk_ess(x))
     np.testing.assert_allclose(s.tail_ess, D.tail_ess(x))
     np.testing.assert_allclose(s.rhat, D.rhat(x))
-    np.testing.assert_allclose(s.mcse, D.mcse_mean(x))
+    np.testing.assert_allclose(s.mcse, D.mean_mcse(x))
     np.testing.assert_array_equal(s.ess_too_short, D.ess(x, split=True).too_short)
     np.testing.assert_allclose(s.mcse, s.sd / np.sqrt(s.ess))  # the numbers shown agree with each other
     np.testing.assert_allclose(s.iact, x.shape[0] * x.shape[1] / s.ess)
@@ -192,8 +192,8 @@ def test_split_ess_and_mcse_match_an_independent_implementation(ar1_factory, cas
     draws = x[..., None]
     assert D.ess(draws, split=True)[0] == pytest.approx(split, rel=1e-10)
     assert D.ess(draws)[0] == pytest.approx(unsplit, rel=1e-10)
-    assert D.mcse_mean(draws)[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
-    s = D.summary(draws)
+    assert D.mean_mcse(draws)[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
+    s = D.measure_chains(draws)
     assert s.mcse[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
     assert s.ess[0] == pytest.approx(split, rel=1e-10)
 
@@ -237,6 +237,6 @@ def test_mcse_covers_the_true_mean_of_ar1_chains(ar1_factory):
     covered = 0
     for seed in range(runs):
         x = ar1_factory(0.9, chains=4, n=2000, seed=1000 + seed)[..., None]
-        covered += abs(x.mean()) <= 1.96 * D.mcse_mean(x)[0]
+        covered += abs(x.mean()) <= 1.96 * D.mean_mcse(x)[0]
     binomial_se = np.sqrt(0.95 * 0.05 / runs)
     assert abs(covered / runs - 0.95) < 3 * binomial_se

@@ -14,7 +14,7 @@ import pytest
 import scipy.stats as st
 
 from walktune import recommend as R
-from walktune.diagnostics import MIN_DRAWS_PER_IACT, summary
+from walktune.diagnostics import MIN_DRAWS_PER_IACT, measure_chains
 
 
 def ar1_chains(tau: float, chains: int, steps: int, rng) -> np.ndarray:
@@ -33,7 +33,7 @@ def _measure(tau, chains, steps, replicates, seed):
     rng = np.random.default_rng(seed)
     ratio, stuck = [], []
     for _ in range(replicates):
-        s = summary(ar1_chains(tau, chains, steps, rng))
+        s = measure_chains(ar1_chains(tau, chains, steps, rng))
         ratio.append(float(s.bulk_ess[0]) / (chains * steps / tau))
         stuck.append(R.not_mixed(float(s.iact[0]), steps, float(s.rhat[0])))
     return np.array(ratio), np.array(stuck)

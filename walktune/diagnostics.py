@@ -48,11 +48,11 @@ __all__ = [
     "tail_ess",
     "rhat",
     "split_rhat",
-    "mcse_mean",
+    "mean_mcse",
     "esjd",
     "acceptance_rate",
-    "summary",
-    "Summary",
+    "measure_chains",
+    "ChainMeasures",
     "MIN_DRAWS_PER_IACT",
 ]
 
@@ -210,7 +210,7 @@ def ess(draws, split: bool = False) -> Estimate:
     split : bool, default False
         Split every chain in two halves first, as Vehtari et al. (2021) do for
         every ESS: a chain that drifts then disagrees with itself, which lowers
-        the ESS. This is the ESS behind :func:`mcse_mean`. Unsplit, the value
+        the ESS. This is the ESS behind :func:`mean_mcse`. Unsplit, the value
         describes a stationary chain's autocorrelation (what the pilot needs).
 
     Returns
@@ -310,7 +310,7 @@ def rhat(draws) -> np.ndarray:
     return np.fmax(bulk, folded)
 
 
-def mcse_mean(draws) -> Estimate:
+def mean_mcse(draws) -> Estimate:
     """Monte Carlo standard error of the posterior mean: ``sd / sqrt(ESS)``, shape (params,).
 
     ``sd`` is the standard deviation of all draws pooled; ``ESS`` is the ESS
@@ -342,7 +342,7 @@ def acceptance_rate(draws) -> float:
 
 
 @dataclass(frozen=True)
-class Summary:
+class ChainMeasures:
     """All per-parameter diagnostics of a set of chains, computed in one pass.
 
     Every array has shape (params,), except ``chain_sd`` (chains, params).
@@ -368,7 +368,7 @@ class Summary:
     n_draws: int
 
 
-def _summary_block(chains: np.ndarray) -> dict:
+def _measure_block(chains: np.ndarray) -> dict:
     split = _split(chains)
     raw = _ess_of(split)  # the ESS of the mean, behind the MCSE and the IACT (split chains)
     ranked = _rank_normalise(split)
@@ -380,7 +380,7 @@ def _summary_block(chains: np.ndarray) -> dict:
     folded_rhat = _psrf(_rank_normalise(np.abs(split - median[None, None, :])))
     quantiles = np.quantile(pooled, [0.05, 0.95], axis=0)
     tails = [_ess_of((split <= q[None, None, :]).astype(float)) for q in quantiles]
-    everything = chains.reshape(-1, chains.shape[2])  # mean and sd of all draws, as mcse_mean has them
+    everything = chains.reshape(-1, chains.shape[2])  # mean and sd of all draws, as mean_mcse has them
     sd = everything.std(axis=0, ddof=1)
     return dict(
         mean=everything.mean(axis=0),
@@ -398,7 +398,7 @@ def _summary_block(chains: np.ndarray) -> dict:
     )
 
 
-def summary(draws, block: int = 8) -> Summary:
+def measure_chains(draws, block: int = 8) -> ChainMeasures:
     """Mean, sd, MCSE, ESS, IACT, bulk and tail ESS and R-hat for every parameter.
 
     Computes parameters ``block`` at a time, so a large (possibly memory-mapped)
@@ -418,6 +418,6 @@ def summary(draws, block: int = 8) -> Summary:
         chunk = np.array(source[:, :, start : start + block], dtype=float)  # the one copy of this block
         if not np.all(np.isfinite(chunk)):
             raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
-        parts.append(_summary_block(chunk))
+        parts.append(_measure_block(chunk))
     fields = {key: np.concatenate([part[key] for part in parts], axis=-1) for key in parts[0]}
-    return Summary(n_chains=m, n_draws=n, **fields)
+    return ChainMeasures(n_chains=m, n_draws=n, **fields)

@@ -19,7 +19,7 @@ from . import theory
 from ._validation import as_covariance, as_float_array, check_positive_number
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
-from .diagnostics import Summary, summary
+from .diagnostics import ChainMeasures, measure_chains
 from .errors import WalktuneError
 from .findings import Finding, conditioning_findings, convergence_findings, correlation_findings
 from .constants import ADVICE_SCHEMA as SCHEMA, CAUTION, DEFAULT_TARGET_ESS
@@ -42,7 +42,7 @@ class InspectionResult:
     Attributes
     ----------
     parameter_names : list of str
-    summary : walktune.diagnostics.Summary
+    summary : walktune.diagnostics.ChainMeasures
     move_rate : float
         Share of steps at which the state changed, over all chains.
     chain_move_rate : ndarray of shape (chains,)
@@ -58,7 +58,7 @@ class InspectionResult:
     """
 
     parameter_names: list
-    summary: Summary
+    summary: ChainMeasures
     move_rate: float
     chain_move_rate: np.ndarray
     parameter_move_rate: np.ndarray
@@ -204,7 +204,7 @@ def _move_rates(draws: np.ndarray, block: int = 8) -> tuple[np.ndarray, np.ndarr
     return moved.mean(axis=1), per_parameter
 
 
-def _verdicts(names, s: Summary, chain_moves, needed_ess) -> list:
+def _verdicts(names, s: ChainMeasures, chain_moves, needed_ess) -> list:
     stuck_chains = np.flatnonzero(chain_moves < STUCK_MOVE_RATE)
     pooled_sd = np.where(s.sd > 0, s.sd, 1.0)
     flat_chains = s.chain_sd < 1e-3 * pooled_sd[None, :]  # (chains, params)
@@ -226,7 +226,7 @@ def _verdicts(names, s: Summary, chain_moves, needed_ess) -> list:
     return out
 
 
-def _inspection_findings(structure, s: Summary, names: list, chain_moves: np.ndarray, rate: float) -> list:
+def _inspection_findings(structure, s: ChainMeasures, names: list, chain_moves: np.ndarray, rate: float) -> list:
     """Structure, convergence, stuck chains, acceptance far from optimal, and too-short chains."""
     m, d = chain_moves.shape[0], len(names)
     findings: list = []
@@ -352,7 +352,7 @@ def inspect(
         proposal = np.asarray(proposal, dtype=float)
         current = np.diag(proposal**2) if proposal.ndim == 1 and proposal.shape[0] == d else as_covariance(proposal, d, "proposal")
 
-    s = summary(array)
+    s = measure_chains(array)
     chain_moves, parameter_moves = _move_rates(array)
     mean, covariance = _moments(array)
     sd = np.sqrt(np.diag(covariance))

@@ -69,7 +69,7 @@ def ess_relative_error(iact_max: float, chains: int, steps: int) -> float:
 def not_mixed(iact_max: float, steps: int, max_rhat: float) -> bool:
     """Whether chains of ``steps`` draws have not mixed at all: estimated IACT at least the half-chain length, R-hat far above 1.
 
-    The IACT is estimated on split chains (:func:`walktune.diagnostics.summary`),
+    The IACT is estimated on split chains (:func:`walktune.diagnostics.measure_chains`),
     so it cannot much exceed ``steps / 2``: chains that hardly move reach that cap.
 
     A chain that never moved (no IACT, no R-hat) has not mixed either.

@@ -28,7 +28,7 @@ import numpy as np
 
 from . import recommend, theory
 from .advice import Advice
-from .diagnostics import Summary, summary
+from .diagnostics import ChainMeasures, measure_chains
 from .engine import Chains, sample
 from .errors import WalktuneError
 from .findings import Finding
@@ -363,7 +363,7 @@ class ComparisonRow:
 
 
 def _row_from_run(name, description, chains, stats, predicted, baseline=None):
-    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.Summary)."""
+    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.ChainMeasures)."""
     ess = stats.bulk_ess
     evaluations = chains.evaluations
     ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
@@ -416,7 +416,7 @@ class Proof:
         The baseline first.
     runs : dict of str to Chains
         Draws in the user's parameters, by proposal name.
-    stats : dict of str to walktune.diagnostics.Summary
+    stats : dict of str to walktune.diagnostics.ChainMeasures
     steps : int
         Steps per chain of every run.
     proposals : dict of str to ndarray of shape (d, d)
@@ -435,7 +435,7 @@ class Proof:
         return self.runs["tuned-covariance"]
 
     @property
-    def tuned_stats(self) -> Summary:
+    def tuned_stats(self) -> ChainMeasures:
         return self.stats["tuned-covariance"]
 
     @property
@@ -488,7 +488,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
             start_log_density=pilot.state_log_density,
             progress=lambda done, total, name=name: tracker(name, done, total),
         )
-        runs[name], stats[name], proposals[name] = run, summary(run.draws), run_plan.covariance
+        runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
         rows.append(_row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
                                   rows[0] if rows else None))
     if coords.plan:
@@ -500,7 +500,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
                          progress=lambda done, total, name=name: tracker(name, done, total))
             # Measured in the user's own parameters.
             run = replace(run, draws=coords.reparam.from_sampler(run.draws))
-            runs[name], stats[name], proposals[name] = run, summary(run.draws), run_plan.covariance
+            runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
             rows.append(_row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
     return Proof(rows, runs, stats, steps, proposals)
 
