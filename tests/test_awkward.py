@@ -81,9 +81,9 @@ def test_walktune_meets_the_criteria_on_awkward_target(name):
     per-parameter steps set from the exact marginal sds x 2.38 / sqrt(d)
     (Roberts, Gelman and Gilks 1997).
 
-    The recommended run must be long enough (50 IACTs per chain) for its ESS
-    to be reliable. Where the oracle's run is not (tumour_logistic: per-parameter
-    steps on strongly correlated coefficients), its ESS is a rough estimate,
+    The recommended run must be long enough (diagnostics.IACTS_FOR_PRECISE_ESS
+    IACTs over its chains) for its ESS to be precise. Where the oracle's run is not (tumour_logistic: per-parameter
+    steps on strongly correlated coefficients), its ESS is imprecise,
     so the ratio must clear 0.8 by more than 3 relative standard errors of
     the ratio (Sokal's 1997 approximation, see bench_awkward.efficiency).
     """

@@ -21,7 +21,7 @@ WIDTHS = (80, 120)
 
 @pytest.fixture(scope="module")
 def tuned():
-    # Two separated modes: every finding, rough speed-ups and a not-converged posterior table.
+    # Two separated modes: every finding, imprecise speed-ups and a not-converged posterior table.
     model = load_demo("mirror_sensor")
     return walktune.tune(model.log_posterior, list(model.PARAMETERS.values()), names=list(model.PARAMETERS),
                          seed=3, budget=30_000)

@@ -15,8 +15,9 @@ from rich.table import Table
 from rich.text import Text
 
 from . import theory
+from .advice import THINNING_ESS_LOSS
 from .constants import CAUTION
-from .diagnostics import MIN_DRAWS_PER_IACT as IACTS_PER_CHAIN
+from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS
 from .plaintext import duration, mean_with_mcse
 from .recommend import format_factor
 
@@ -216,7 +217,8 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     table.add_row(
         "thinning",
         "keep every draw; thinning adds no information"
-        + (f" (to save storage, every {result.thinning}th draw loses little)" if result.thinning > 1 else ""),
+        + (f" (to save storage, keeping one draw in {result.thinning} keeps at least "
+           f"{1 - THINNING_ESS_LOSS:.0%} of the ESS)" if result.thinning > 1 else ""),
     )
     needed = result.evaluations_needed()
     for row in result.comparison:
@@ -249,28 +251,28 @@ def comparison_table(result: TuneResult, width: int | None = None) -> Table:
         if len(budgets) > 1:
             cells.insert(4, str(row.evaluations))
         table_rows.append(cells)
-        if getattr(row, "speedup_kind", "measured") == "rough":
+        if getattr(row, "speedup_kind", "measured") == "imprecise":
             notes.append(f"{row.proposal}: {speedup_cell(row)}")
-    caption = (f"> recommended. * ESS rests on fewer than {IACTS_PER_CHAIN} autocorrelation times per chain "
-               "(rough). ! not mixed. min/med ESS: smallest and median over parameters, per 1000 evaluations. >= : a lower bound (the baseline's chains had "
-               "not mixed at all, so its ESS is too high); <= : an upper bound; ~ : rough, as likely too high as too low."
+    caption = (f"> recommended. * imprecise ESS: fewer than {IACTS_FOR_PRECISE_ESS} autocorrelation times over the "
+               f"chains (error above {IACT_RELATIVE_ERROR:.0%}). ! not mixed. min/med ESS: smallest and median over parameters, per 1000 evaluations. >= : a lower bound (the baseline's chains had "
+               "not mixed at all, so its ESS is too high); <= : an upper bound; ~ : imprecise, as likely too high as too low."
                + "".join(f"\n{note}" for note in notes))
     return fitted_table(title, columns, table_rows, width, caption)
 
 
 def speedup_cell(row, short: bool = False) -> str:
-    """A comparison row's speed-up as measured, a bound, or rough with the evaluations that would settle it."""
+    """A comparison row's speed-up as measured, a bound, or imprecise with the evaluations that would settle it."""
     value = format_factor(row.speedup)
     kind = getattr(row, "speedup_kind", "measured")
     if kind == "lower-bound":
         return ">= " + value
     if kind == "upper-bound":
         return "<= " + value
-    if kind == "rough":
+    if kind == "imprecise":
         if short:
             return "~" + value
         settle = row.evaluations_to_settle
-        return f"~{value} (rough; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
+        return f"~{value} (imprecise; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
     return value
 
 
@@ -356,7 +358,7 @@ def _list_outputs(console: Console, output_folder: str | None) -> None:
     console.print(f"Outputs in [bold]{output_folder}[/bold]: {', '.join(files)}")
 
 
-VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
+VERDICT_STYLE = {"ok": "green", "imprecise-ess": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
 
 
 def inspection_table(result, width: int | None = None) -> Table:
@@ -373,18 +375,18 @@ def inspection_table(result, width: int | None = None) -> Table:
                ("ESS", "right"), ("R-hat", "right"), ("IACT", "right"), ("tail ESS", "right"), ("sd", "right")]
     rows, notes = [], []
     for i, name in enumerate(result.parameter_names):
-        rough = "~" if s.bulk_too_short[i] else ""
+        imprecise = "~" if s.bulk_too_short[i] else ""
         verdict = result.verdicts[i]
         more = result.more_draws_observed[i]
         rows.append([
             name, Text(verdict.verdict, style=VERDICT_STYLE.get(verdict.verdict, "")),
             "none" if more == 0 else "+" + _fmt(more, 3), mean_with_mcse(s.mean[i], s.mcse[i]),
-            rough + _fmt(s.bulk_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(s.tail_ess[i], 4), _fmt(s.sd[i]),
+            imprecise + _fmt(s.bulk_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(s.tail_ess[i], 4), _fmt(s.sd[i]),
         ])
         if verdict.verdict != "ok":
             notes.append(f"{name}: {verdict.reason}")
     caption = ("draws needed: more draws in all chains for the ESS wanted, at the observed efficiency. ESS: bulk ESS; "
-               f"~ rough: fewer than {IACTS_PER_CHAIN} IACTs per chain." + "".join(f"\n{note}" for note in notes))
+               f"~ imprecise: fewer than {IACTS_FOR_PRECISE_ESS} IACTs over the chains (error above {IACT_RELATIVE_ERROR:.0%})." + "".join(f"\n{note}" for note in notes))
     return fitted_table(title, columns, rows, width, caption)
 
 

@@ -12,8 +12,8 @@ the ESS of split chains (each chain cut in two halves), as Vehtari et al.
 
 Every function takes draws shaped (chains, draws, params), (draws, params) or
 (draws,) and returns one value per parameter. Estimates that rest on too few
-draws (fewer than :data:`MIN_DRAWS_PER_IACT` autocorrelation times per chain)
-come back as a :class:`Estimate` whose ``too_short`` mask flags them.
+draws (fewer than :data:`IACTS_FOR_PRECISE_ESS` autocorrelation times over all
+chains) come back as a :class:`Estimate` whose ``too_short`` mask flags them.
 
 References
 ----------
@@ -34,9 +34,19 @@ from scipy import fft, special
 
 from .errors import WalktuneError
 
-#: A chain shorter than this many autocorrelation times gives an estimate that
-#: cannot be trusted (common practice: Sokal 1997 suggests at least about 50).
-MIN_DRAWS_PER_IACT = 50
+#: Window of the IACT estimate below, in autocorrelation times: Geyer's initial
+#: monotone sequence on AR(1) chains sums about two (by simulation,
+#: tests/test_diagnostics.py); 2.5 to be safe.
+WINDOW_PER_IACT = 2.5
+#: The relative error (one standard deviation) accepted in an IACT, hence in an ESS.
+IACT_RELATIVE_ERROR = 0.2
+#: Draws over all chains, in IACTs, for that error. The variance of a windowed
+#: IACT estimate is 2 (2M + 1) / S tau^2 for S draws and a window M (Sokal
+#: 1997); with M = WINDOW_PER_IACT tau the relative error is below
+#: IACT_RELATIVE_ERROR once S >= 4 WINDOW_PER_IACT tau / IACT_RELATIVE_ERROR^2
+#: (250 tau). Measured on AR(1) chains with closed-form IACT (1 + phi) / (1 - phi),
+#: 1 to 8 chains: 0.18 to 0.20 at 250 IACTs (docs/method.md).
+IACTS_FOR_PRECISE_ESS = round(4 * WINDOW_PER_IACT / IACT_RELATIVE_ERROR**2)
 
 __all__ = [
     "Estimate",
@@ -53,7 +63,9 @@ __all__ = [
     "acceptance_rate",
     "measure_chains",
     "ChainMeasures",
-    "MIN_DRAWS_PER_IACT",
+    "IACTS_FOR_PRECISE_ESS",
+    "IACT_RELATIVE_ERROR",
+    "WINDOW_PER_IACT",
 ]
 
 
@@ -61,8 +73,9 @@ class Estimate(np.ndarray):
     """One value per parameter, with a flag where the chains are too short.
 
     Behaves as a float array. ``too_short[i]`` is true when the value for
-    parameter ``i`` rests on fewer than ``MIN_DRAWS_PER_IACT`` autocorrelation
-    times per chain (or the chains are constant), so it is a rough guess only.
+    parameter ``i`` rests on fewer than ``IACTS_FOR_PRECISE_ESS`` autocorrelation
+    times over all chains (or the chains are constant), so its relative error is
+    above ``IACT_RELATIVE_ERROR``.
     """
 
     def __new__(cls, values, too_short):
@@ -177,7 +190,7 @@ def _ess_of(chains: np.ndarray) -> Estimate:
     rho, constant = _combined_rho(chains)
     tau = _tau_from_rho(rho, m * n)
     ess_values = np.where(constant, np.nan, m * n / tau)
-    too_short = constant | (n < MIN_DRAWS_PER_IACT * tau)
+    too_short = constant | (m * n < IACTS_FOR_PRECISE_ESS * tau)
     return Estimate(ess_values, too_short)
 
 
@@ -349,7 +362,7 @@ class ChainMeasures:
     ``ess``, ``iact`` and ``mcse`` come from split chains (``ess(draws,
     split=True)``), so ``mcse = sd / sqrt(ess)`` and ``iact = S / ess`` agree
     with each other. ``*_too_short`` flag estimates resting on fewer than
-    :data:`MIN_DRAWS_PER_IACT` autocorrelation times per (half-)chain.
+    :data:`IACTS_FOR_PRECISE_ESS` autocorrelation times over all chains.
     """
 
     mean: np.ndarray

@@ -19,7 +19,7 @@ from . import theory
 from ._validation import as_covariance, as_float_array, check_positive_number
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
-from .diagnostics import ChainMeasures, measure_chains
+from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS, ChainMeasures, measure_chains
 from .errors import WalktuneError
 from .findings import Finding, conditioning_findings, convergence_findings, correlation_findings
 from .constants import ADVICE_SCHEMA as SCHEMA, CAUTION, DEFAULT_TARGET_ESS
@@ -31,7 +31,7 @@ STUCK_MOVE_RATE = 0.01
 @dataclass
 class ParameterVerdict:
     name: str
-    verdict: str  # "ok", "not-converged", "too-few-draws", "stuck-chain", "rough"
+    verdict: str  # "ok", "not-converged", "too-few-draws", "stuck-chain", "imprecise-ess"
     reason: str
 
 
@@ -220,7 +220,8 @@ def _verdicts(names, s: ChainMeasures, chain_moves, needed_ess) -> list:
                 ParameterVerdict(name, "too-few-draws", f"bulk ESS {s.bulk_ess[i]:.0f} < {needed_ess[i]:.0f} needed")
             )
         elif s.bulk_too_short[i] or s.tail_too_short[i]:
-            out.append(ParameterVerdict(name, "rough", "fewer than 50 IACTs per chain: ESS is rough"))
+            out.append(ParameterVerdict(name, "imprecise-ess", f"fewer than {IACTS_FOR_PRECISE_ESS} IACTs in all: "
+                                        f"the ESS may be off by more than {IACT_RELATIVE_ERROR:.0%}"))
         else:
             out.append(ParameterVerdict(name, "ok", "no problem seen (which does not prove convergence)"))
     return out
@@ -255,8 +256,9 @@ def _inspection_findings(structure, s: ChainMeasures, names: list, chain_moves: 
     if np.any(s.bulk_too_short):
         findings.append(
             Finding(
-                "short-chains", "warn", [names[i] for i in np.flatnonzero(s.bulk_too_short)],
-                "these parameters have fewer than 50 autocorrelation times per chain: their ESS is rough.",
+                "imprecise-ess", "warn", [names[i] for i in np.flatnonzero(s.bulk_too_short)],
+                f"these parameters have fewer than {IACTS_FOR_PRECISE_ESS} autocorrelation times over all chains: "
+                f"their ESS may be off by more than {IACT_RELATIVE_ERROR:.0%}.",
                 {},
             )
         )

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .advice import THINNING_ESS_LOSS
 from .constants import CAUTION
 from .recommend import format_factor
 
@@ -55,7 +56,7 @@ def _findings_count(findings: list) -> str:
 
 
 def _speedup(rec) -> str:
-    prefix = {"lower-bound": ">= ", "upper-bound": "<= ", "rough": "~"}.get(rec.speedup_kind, "")
+    prefix = {"lower-bound": ">= ", "upper-bound": "<= ", "imprecise": "~"}.get(rec.speedup_kind, "")
     return f"{prefix}{format_factor(rec.speedup)} the ESS per evaluation of {rec.baseline}"
 
 
@@ -90,8 +91,8 @@ def tune_advice(result) -> str:
                  + ", ".join(f"{n}={_number(s)}" for n, s in zip(result.parameter_names, result.step_sizes)))
     lines.append(f"Proposal covariance: result.proposal_covariance (expected acceptance {result.expected_acceptance:.2f})")
     lines.append(f"Warm-up: about {result.warmup_steps} steps per chain from a start near the mode")
-    lines.append("Thinning: keep every draw" + (f"; to save storage, keeping every {result.thinning}th draw loses "
-                                                "little" if result.thinning > 1 else ""))
+    lines.append("Thinning: keep every draw" + (f"; to save storage, keeping one draw in {result.thinning} keeps at "
+                                                f"least {1 - THINNING_ESS_LOSS:.0%} of the ESS" if result.thinning > 1 else ""))
     lines += _findings_lines(result.findings)
     lines.append(f"Caution: {CAUTION}")
     return "\n".join(lines)

@@ -327,14 +327,14 @@ def figure_ess(run: Run):
                 ax.annotate("", xy=(k, values[k] * (2.5 if kind == "lower-bound" else 0.4)), xytext=(k, values[k]),
                             arrowprops={"arrowstyle": "->", "color": "black"})
                 text = (">= " if kind == "lower-bound" else "<= ") + text
-            elif kind == "rough":
+            elif kind == "imprecise":
                 text = "~" + text
             ax.text(k, values[k], text, ha="center", va="bottom", fontsize=8)
         ax.set_xticks(range(len(rows)), labels)
         ax.set_ylim(min(values) / 3, max(values) * 6)
         ax.set_ylabel("min ESS per 1000 evaluations (log scale)")
         ax.set_title("Measured efficiency of every proof run (bars: min over parameters; diamonds: median)")
-        _note(ax, "speed-ups over the first run; arrow: a bound (truth beyond it); hatched, ~: rough (chain too short)", top=True)
+        _note(ax, "speed-ups over the first run; arrow: a bound (truth beyond it); hatched, ~: imprecise ESS (run too short)", top=True)
     else:
         info = run.advice.get("inspection", {}).get("parameters", [])
         ess = [p["bulk_ess"] or 0.0 for p in info]
@@ -506,7 +506,7 @@ def render_html(run: Run, pngs: dict) -> str:
         for r in rows:
             kind = r.get("speedup_kind") or ("lower-bound" if r.get("speedup_is_lower_bound") else "measured")
             speed = esc(speedup_text(r["speedup"], kind)) if r.get("speedup") is not None else "n/a"
-            if kind == "rough" and r.get("evaluations_to_settle"):
+            if kind == "imprecise" and r.get("evaluations_to_settle"):
                 speed += f" (about {r['evaluations_to_settle']:,} evaluations in all, over both runs, would settle it)"
             if r["proposal"] == (a.get("recommended") or {}).get("proposal"):
                 speed += " &larr; recommended"

@@ -333,7 +333,7 @@ class ComparisonRow:
     ``speedup`` its ratio to the baseline's, and ``speedup_kind`` what that
     figure is: ``baseline``, ``measured``, ``lower-bound`` (the baseline's
     chains have not mixed at all, so its ESS is too high), ``upper-bound``
-    (this run's have not), or ``rough`` (a short run's ESS, as likely under-
+    (this run's have not), or ``imprecise`` (a short run's ESS, as likely under-
     as over-estimated; ``evaluations_to_settle`` in all would make both
     reliable). See :mod:`walktune.recommend`. ``predicted_slowdown`` is the
     predicted ratio of the tuned run's smallest ESS to this run's
