@@ -22,7 +22,14 @@ app = typer.Typer(
     help="Tune random-walk Metropolis proposals from the geometry of your posterior, and prove the gain.",
 )
 
-DEMO_MODEL = Path(__file__).resolve().parent.parent / "demo_models" / "sensor_calibration.py"
+def _demo_model(name: str = "sensor_calibration.py") -> Path:
+    """A demo model file: shipped inside the package (an install), else in the repository's demo_models/."""
+    here = Path(__file__).resolve().parent
+    installed = here / "demo_models" / name
+    return installed if installed.exists() else here.parent / "demo_models" / name
+
+
+DEMO_MODEL = _demo_model()
 
 
 def _console(stderr: bool = False) -> Console:
@@ -558,7 +565,7 @@ def demo_command(
     """Run the whole job on a bundled demo model (a sensor calibration with correlated parameters)."""
     with _user_errors("write outputs"):
         if not DEMO_MODEL.exists():
-            raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune from its repository.")
+            raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune.")
         _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet,
                   report=True, overwrite=overwrite, command="walktune demo")
 
