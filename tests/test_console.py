@@ -74,9 +74,11 @@ def test_inspection_tables_fit(inspected, width):
     assert "a_rather_long_parameter_name" in text
 
 
-def test_narrow_layout_keeps_every_value():
+@pytest.mark.parametrize("name", ["first-row-name", "a-parameter-name-so-long-that-no-other-column-fits-beside-it"])
+def test_narrow_layouts_keep_every_value(name):
+    # Stacked tables when columns fit beside the first one; one block per row when not even one does.
     columns = [("name", "left")] + [(f"column {i}", "right") for i in range(8)]
-    rows = [["first-row-name"] + [f"{1.23456789 * 10**i:.6g}" for i in range(8)]]
+    rows = [[name] + [f"{1.23456789 * 10**i:.6g} units" for i in range(8)]]
     wide = C.fitted_table("t", columns, rows, None)
     for width in WIDTHS:
         text = rendered(width, lambda c: c.print(C.fitted_table("t", columns, rows, width)))

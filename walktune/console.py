@@ -8,7 +8,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 import numpy as np
-from rich.console import Console
+from rich.console import Console, Group
 from rich.panel import Panel
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 from rich.table import Table
@@ -76,20 +76,51 @@ def _needs(columns: list, rows: list) -> int:
     return sum(widest) + 3 * len(columns) + 1  # one space of padding each side, a border between columns
 
 
-def fitted_table(title: str, columns: list, rows: list, width: int | None, caption: str | None = None) -> Table:
-    """A table of ``columns`` (header, justify) and ``rows``, laid out to fit ``width`` columns.
+def _column_groups(columns: list, rows: list, width: int) -> list | None:
+    """Consecutive groups of columns after the first that fit ``width`` beside it; None when one column cannot."""
+    groups, current = [], []
+    for index in range(1, len(columns)):
+        trial = current + [index]
+        if _needs([columns[i] for i in [0, *trial]], [[row[i] for i in [0, *trial]] for row in rows]) <= width:
+            current = trial
+        elif current:
+            groups.append(current)
+            current = [index]
+            if _needs([columns[0], columns[index]], [[row[0], row[index]] for row in rows]) > width:
+                return None
+        else:
+            return None
+    return groups + [current] if current else groups
 
-    Every cell is kept whole (no wrapping inside a value): side by side when the
-    terminal is wide enough, else one block per row, each value under its
-    header, so a narrow or piped terminal (80 columns) still shows every value in full.
-    """
+
+def _plain_table(title, columns: list, rows: list, caption) -> Table:
     table = Table(title=title, title_justify="left", caption=caption, caption_justify="left")
     for header, justify in columns:
         table.add_column(header, justify=justify, no_wrap=True)
     for row in rows:
         table.add_row(*row)
+    return table
+
+
+def fitted_table(title: str, columns: list, rows: list, width: int | None, caption: str | None = None):
+    """A table of ``columns`` (header, justify) and ``rows``, laid out to fit ``width`` columns.
+
+    Every cell is kept whole (no wrapping inside a value): side by side when the
+    terminal is wide enough; else the columns in stacked tables, each repeating
+    the first column, in their order of importance; else one block per row, each
+    value under its header. A narrow or piped terminal (80 columns) thus still
+    shows every value in full. Returns a rich Table, or a Group of them.
+    """
     if width is None or _needs(columns, rows) <= width:
-        return table
+        return _plain_table(title, columns, rows, caption)
+    groups = _column_groups(columns, rows, width)
+    if groups is not None and len(groups) <= 3:
+        parts = []
+        for number, group in enumerate(groups):
+            keep = [0, *group]
+            parts.append(_plain_table(title if number == 0 else None, [columns[i] for i in keep],
+                                      [[row[i] for i in keep] for row in rows], None))
+        return Group(*parts, *([Text(caption)] if caption else []))
     vertical = Table(title=title, title_justify="left", caption=caption, caption_justify="left", show_header=False,
                      show_lines=True, expand=True)
     vertical.add_column("what", style="bold", no_wrap=True)
@@ -415,7 +446,8 @@ def inspection_advice_table(result) -> Table:
 
 
 def render_inspection(console: Console, result, output_folder: str | None) -> None:
-    console.print(Panel(f"inspected: {', '.join(result.sources) or 'array'}", title="walktune", expand=False))
+    run = f", run {result.run}" if getattr(result, "run", None) else ""
+    console.print(Panel(f"inspected: {', '.join(result.sources) or 'array'}{run}", title="walktune", expand=False))
     console.print(inspection_table(result, console.width))
     console.print(inspection_advice_table(result))
     console.print(geometry_table_from(result.structure, result.parameter_names, source="the covariance of these draws"))
