@@ -38,14 +38,16 @@ from sklearn.mixture import GaussianMixture
 
 from .diagnostics import iact
 from .findings import Finding
+from .funnels import (  # noqa: F401  (the funnel detectors live in walktune.funnels)
+    MIN_DRAWS_FOR_SPREAD,
+    curvature_probe_cost,
+    funnel_findings_from_curvature,
+    local_spread_ratio,
+    varying_scale_findings,
+)
 
 #: Fewer (roughly independent) draws than this and a detector declines to decide.
 MIN_DRAWS_TO_DECIDE = 100
-
-#: The funnel detector compares spreads that differ 4-fold or more; with 50
-#: independent draws (10 per fifth) a robust sd is within about 35%, so it
-#: can decide with fewer draws than the mode search.
-MIN_DRAWS_FOR_SPREAD = 50
 
 #: A log-density dip of this many nats between two modes separates them (common practice:
 #: e^-3 ~ 0.05 of the lower peak's density).
@@ -241,138 +243,6 @@ def multimodal_finding(regions: list, names: list) -> Finding | None:
             ]
         },
     )
-
-
-def local_spread_ratio(draws: np.ndarray, index: int, bins: int = 5) -> np.ndarray:
-    """How much the conditional spread of each parameter changes along parameter ``index``.
-
-    ``draws`` is (n, d). Every other parameter is regressed linearly on
-    parameter ``index`` (which removes the trend of a correlated Gaussian,
-    whose conditional spread is constant); the robust sd (1.4826 x median
-    absolute deviation) of the residuals is compared between the top and the
-    bottom ``1/bins`` of the draws sorted by parameter ``index``. Returns the
-    ratio top / bottom per parameter (1 for ``index`` itself).
-    """
-    n, d = draws.shape
-    v = draws[:, index]
-    centred = draws - draws.mean(axis=0)
-    vc = centred[:, index]
-    slope = vc @ centred / max(vc @ vc, np.finfo(float).tiny)  # least squares on v, closed form
-    residual = centred - np.outer(vc, slope)
-    order = np.argsort(v, kind="stable")
-    size = n // bins
-
-    def robust_sd(rows):
-        part = residual[rows]
-        return 1.4826 * np.median(np.abs(part - np.median(part, axis=0)), axis=0)
-
-    low, high = robust_sd(order[:size]), robust_sd(order[-size:])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(low > 0, high / low, np.inf)
-    ratio[index] = 1.0
-    return ratio
-
-
-def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold: float = 4.0):
-    """``varying-scale`` findings from (chains, n, d) draws; and a note when undecidable.
-
-    ``tau`` is a typical within-chain IACT; the draws must hold at least
-    :data:`MIN_DRAWS_FOR_SPREAD` of them.
-    """
-    m, n, d = draws.shape
-    if d < 2:
-        return [], None
-    flat = draws.reshape(-1, d)
-    n_independent = flat.shape[0] / max(tau, 1.0)
-    flat = flat[:: max(1, flat.shape[0] // 20_000)]  # 20,000 rows are plenty for five bins
-    if n_independent < MIN_DRAWS_FOR_SPREAD:
-        return [], f"only about {n_independent:.0f} roughly independent draws; too few to measure how local spread changes"
-    strongest = {}
-    for j in range(d):
-        ratio = local_spread_ratio(flat, j)
-        factor = np.where(ratio >= 1, ratio, 1.0 / ratio)
-        factor[j] = 1.0
-        affected = [i for i in range(d) if factor[i] >= threshold]
-        # A funnel parameter changes the spread of most of the others, not of one partner.
-        if affected and len(affected) >= (d - 1) / 2:
-            strongest[j] = (float(np.median(factor[affected])), affected)
-    return _varying_scale(strongest, names, "the spread of the draws"), None
-
-
-def curvature_spread_ratio(log_density, centre: np.ndarray, sd: np.ndarray, index: int, reach: float = 2.0) -> np.ndarray:
-    """Local spread of every parameter at ``centre -/+ reach sd`` along parameter ``index``, as a ratio.
-
-
-    The local spread of parameter i at a point is ``(-d^2 log p / d theta_i^2)^{-1/2}``
-    (central differences, step 1e-3 sd_i). Returns, per parameter, the ratio
-    of the local spread at the upper point to that at the lower one; NaN where
-    the log-density is not concave in that parameter at either point, and 1 for
-    ``index`` itself. For a Gaussian every ratio is exactly 1; in Neal's funnel
-    the x's ratio is ``exp(reach sd_v)``.
-    """
-    low, high = centre.copy(), centre.copy()
-    low[index] -= reach * sd[index]
-    high[index] += reach * sd[index]
-    ratio = _local_sd(log_density, high, sd) / _local_sd(log_density, low, sd)
-    ratio[index] = 1.0
-    return ratio
-
-
-def _local_sd(log_density, point: np.ndarray, sd: np.ndarray) -> np.ndarray:
-    """``(-d^2 log p / d theta_i^2)^{-1/2}`` per parameter by central differences; NaN where not concave."""
-    d = point.shape[0]
-    f0 = log_density(point)
-    out = np.full(d, np.nan)
-    for i in range(d):
-        h = 1e-3 * sd[i]
-        step = np.zeros(d)
-        step[i] = h
-        second = (log_density(point + step) - 2 * f0 + log_density(point - step)) / h**2
-        if np.isfinite(second) and second < 0:
-            out[i] = 1.0 / np.sqrt(-second)
-    return out
-
-
-def funnel_findings_from_curvature(log_density, centre, sd, names, threshold: float = 4.0) -> list:
-    """``varying-scale`` from how the local curvature of the log-density changes along each parameter.
-
-    Each parameter is probed 2 spreads either side of ``centre``, the spread
-    being the larger of ``sd`` (from the draws) and the local spread from the
-    curvature at ``centre``: chains stuck in a funnel's neck have a small sd
-    that would hide the funnel.
-    """
-    d = centre.shape[0]
-    if d < 2:
-        return []
-    sd = np.maximum(sd, np.nan_to_num(_local_sd(log_density, centre, sd), nan=0.0))
-    strongest = {}
-    for j in range(d):
-        ratio = curvature_spread_ratio(log_density, centre, sd, j)
-        factor = np.where(ratio >= 1, ratio, 1.0 / ratio)
-        factor[j] = 1.0
-        affected = [i for i in range(d) if np.isfinite(factor[i]) and factor[i] >= threshold]
-        if affected and len(affected) >= (d - 1) / 2:
-            strongest[j] = (float(np.median(factor[affected])), affected)
-    return _varying_scale(strongest, names, "the curvature of the log-density")
-
-
-def _varying_scale(strongest: dict, names: list, evidence: str) -> list:
-    out = []
-    for j, (factor, affected) in sorted(strongest.items(), key=lambda kv: -kv[1][0])[:1]:
-        out.append(
-            Finding(
-                "varying-scale",
-                "critical" if factor >= 10 else "warn",
-                [names[j]] + [names[i] for i in affected],
-                f"the spread of {', '.join(names[i] for i in affected[:5])}{' ...' if len(affected) > 5 else ''} changes "
-                f"about {factor:.0f}-fold along {names[j]} (a funnel; from {evidence}): no single step size fits both "
-                f"ends. If {names[j]} is a group-level scale, use the non-centred parameterisation (Papaspiliopoulos, "
-                f"Roberts and Sköld 2007): sample standardised effects z and set effect = mean + exp({names[j]}) * z "
-                "(or scale * z).",
-                {"parameter": names[j], "spread_factor": factor, "affected": [names[i] for i in affected]},
-            )
-        )
-    return out
 
 
 def boundary_findings(draws: np.ndarray, bounds: np.ndarray, names: list) -> list:

@@ -18,7 +18,24 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
   the acceptance just measured (at most 4-fold either way). It is not the
   Robbins-Monro (stochastic-approximation) steering of ``log c`` by
   diminishing steps that Andrieu and Thoms (2008) describe, though it serves
-  the same end.
+  the same end;
+* each parameter's own scale is checked by a component-wise probe, a short
+  fixed-kernel Metropolis-within-Gibbs pass that proposes one parameter at a
+  time with the 1-d optimal step ``2.4 s_i`` (``s_i = 1 / sqrt(P_ii)``, the
+  conditional sd under ``C``, ``P = C^{-1}``). For a Gaussian conditional of sd
+  ``k s_i`` the acceptance rate of that proposal is ``(2 / pi) arctan(2 / (2.4 / k))``
+  (derived here by integrating the Metropolis ratio over the stationary
+  distribution; checked by simulation in tests/test_poor_start.py), so
+  ``k = 1.2 tan(pi a / 2)``; a parameter whose ``k`` is far from 1 has its row
+  and column of ``C`` rescaled by ``k`` (taken at the end of its 90% interval
+  nearest 1, so as not to overshoot; component-wise adaptive scaling:
+  Haario, Saksman and Tamminen 2005; Andrieu and Thoms 2008, Sec. 5; Roberts
+  and Rosenthal 2009). This is what lets a direction that a poor Laplace start
+  gave tiny steps grow: its draws alone would take many stages to show its
+  width. Probing stops once a probe finds every parameter in range; once a
+  probe has rescaled anything, the start has proved wrong and every later
+  estimate from the draws of a stage run at corrected scales is adopted (the
+  draws win).
 
 Adaptation happens only between stages; nothing measured after the pilot comes
 from an adapting chain.
@@ -27,6 +44,10 @@ References
 ----------
 Haario, H., Saksman, E. and Tamminen, J. (2001). An adaptive Metropolis algorithm. Bernoulli, 7(2), 223-242.
 Andrieu, C. and Thoms, J. (2008). A tutorial on adaptive MCMC. Statistics and Computing, 18, 343-373.
+Haario, H., Saksman, E. and Tamminen, J. (2005). Componentwise adaptation for high dimensional MCMC.
+Computational Statistics, 20(2), 265-273.
+Roberts, G. O. and Rosenthal, J. S. (2009). Examples of adaptive MCMC. Journal of Computational and
+Graphical Statistics, 18(2), 349-367.
 Ledoit, O. and Wolf, M. (2004). A well-conditioned estimator for large-dimensional
 covariance matrices. Journal of Multivariate Analysis, 88(2), 365-411.
 """
@@ -42,6 +63,19 @@ from sklearn.covariance import ledoit_wolf_shrinkage
 from . import theory
 from .diagnostics import iact
 from .engine import Chains, sample
+from .evaluators import InProcessEvaluator
+
+#: One-parameter proposals per parameter and chain in a component-wise probe.
+PROBE_SWEEPS = 5
+#: A probe rescales a parameter only when its count of accepted proposals is
+#: this improbable (either tail) under a right scale, whose acceptance is
+#: ``(2 / pi) arctan(2 / 2.4) = 0.4395`` (binomial; one false alarm in about
+#: 10^4 parameters probed). With 4 chains x 5 sweeps that is 17 or more, or 1
+#: or fewer, of 20 accepted: scales off by more than about 5x and 10x.
+PROBE_FALSE_ALARM = 1e-4
+RIGHT_SCALE_ACCEPTANCE = 2.0 / np.pi * np.arctan(2.0 / 2.4)
+#: Largest rescaling one probe applies (an all-accepted probe says only "much wider").
+PROBE_LIMIT = 10.0
 
 
 @dataclass
@@ -56,6 +90,9 @@ class PilotStage:
     change: float
     noise_level: float
     adopted: bool
+    probe_acceptance: np.ndarray | None = None
+    component_scaling: np.ndarray | None = None
+    coordinates: str = "parameters"
 
 
 @dataclass
@@ -164,11 +201,137 @@ def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates:
     return float(np.quantile(values, quantile, method="weibull"))
 
 
+@dataclass(frozen=True)
+class ComponentProbe:
+    """What a component-wise probe measured.
+
+    Attributes
+    ----------
+    acceptance : ndarray of shape (d,)
+        Acceptance rate of the one-parameter proposals, per parameter.
+    ratio : ndarray of shape (d,)
+        Estimated conditional sd over the one the covariance implies, per parameter.
+    states : ndarray of shape (chains, d)
+    log_density : ndarray of shape (chains,)
+        The chains' states and log-densities after the probe (it moves them).
+    evaluations : int
+    trials : int
+        One-parameter proposals per parameter (sweeps x chains).
+    """
+
+    acceptance: np.ndarray
+    ratio: np.ndarray
+    states: np.ndarray
+    log_density: np.ndarray
+    evaluations: int
+    trials: int
+
+    @property
+    def cautious_ratio(self) -> np.ndarray:
+        """The ratio at the end of the 90% Clopper-Pearson interval of the acceptance nearest a right scale, shape (d,).
+
+        The point estimate overshoots when nearly every proposal was accepted
+        (or none): 20 of 20 accepted happens with probability 0.5% at a scale
+        3x too small. Rescaling by the cautious ratio seldom overshoots; the
+        next probe takes the rest.
+        """
+        count = np.rint(self.acceptance * self.trials)
+        lower = np.where(count > 0, stats.beta.ppf(0.05, count, self.trials - count + 1), 0.0)
+        upper = np.where(count < self.trials, stats.beta.ppf(0.95, count + 1, self.trials - count), 1.0)
+        nearest = np.where(self.acceptance > RIGHT_SCALE_ACCEPTANCE, np.maximum(lower, RIGHT_SCALE_ACCEPTANCE),
+                           np.minimum(upper, RIGHT_SCALE_ACCEPTANCE))
+        return scale_ratio(nearest)
+
+    @property
+    def off(self) -> np.ndarray:
+        """Parameters whose acceptance is too improbable under a right scale (:data:`PROBE_FALSE_ALARM`), shape (d,)."""
+        count = np.rint(self.acceptance * self.trials)
+        high = stats.binom.sf(count - 1, self.trials, RIGHT_SCALE_ACCEPTANCE)
+        low = stats.binom.cdf(count, self.trials, RIGHT_SCALE_ACCEPTANCE)
+        return (high < PROBE_FALSE_ALARM) | (low < PROBE_FALSE_ALARM)
+
+
+def scale_ratio(acceptance) -> np.ndarray:
+    """Conditional sd over the assumed one, from the acceptance of 1-d steps ``2.4 x`` the assumed sd.
+
+    Inverts ``a = (2 / pi) arctan(2 / sigma)`` (``sigma``: step over the true
+    sd of a Gaussian) at ``sigma = 2.4 / k``: ``k = 1.2 tan(pi a / 2)``, clipped
+    to ``[1 / PROBE_LIMIT, PROBE_LIMIT]``. Shape of ``acceptance``.
+    """
+    a = np.clip(np.asarray(acceptance, dtype=float), 0.0, 1.0)
+    with np.errstate(over="ignore"):
+        ratio = 1.2 * np.tan(0.5 * np.pi * a)
+    return np.clip(np.where(a >= 1.0, PROBE_LIMIT, ratio), 1.0 / PROBE_LIMIT, PROBE_LIMIT)
+
+
+def probe_components(evaluate, states: np.ndarray, log_density: np.ndarray, covariance: np.ndarray,
+                     rng: np.random.Generator, sweeps: int = PROBE_SWEEPS) -> ComponentProbe:
+    """Metropolis-within-Gibbs sweeps with fixed 1-d steps ``2.4 / sqrt(P_ii)``; measures each parameter's acceptance.
+
+    Parameters
+    ----------
+    evaluate : callable
+        Takes points (chains, d), returns a BatchResult.
+    states : ndarray of shape (chains, d)
+    log_density : ndarray of shape (chains,)
+    covariance : ndarray of shape (d, d)
+        ``C``; the step of parameter ``i`` is ``2.4 / sqrt((C^{-1})_ii)``.
+    rng : Generator
+    sweeps : int
+        Passes over the parameters; each proposes every parameter once per chain.
+    """
+    n_chains, dim = states.shape
+    step = 2.4 / np.sqrt(np.diag(np.linalg.inv(covariance)))
+    current, current_lp = states.copy(), np.asarray(log_density, dtype=float).copy()
+    accepted = np.zeros(dim)
+    for _ in range(sweeps):
+        for i in range(dim):
+            proposal = current.copy()
+            proposal[:, i] += step[i] * rng.standard_normal(n_chains)
+            values = np.asarray(evaluate(proposal).values, dtype=float)
+            values = np.where(np.isnan(values), -np.inf, values)
+            accept = np.log(rng.random(n_chains)) < values - current_lp
+            current[accept], current_lp[accept] = proposal[accept], values[accept]
+            accepted[i] += accept.sum()
+    acceptance = accepted / (sweeps * n_chains)
+    return ComponentProbe(acceptance, scale_ratio(acceptance), current, current_lp, sweeps * dim * n_chains,
+                          sweeps * n_chains)
+
+
 def _scale_step(factor: float, acceptance: float, target: float) -> float:
     """New global factor so that the diffusion-limit acceptance hits ``target``."""
     acceptance = min(max(acceptance, 0.01), 0.95)
     ratio = stats.norm.ppf(target / 2) / stats.norm.ppf(acceptance / 2)
     return factor * float(np.clip(ratio, 0.25, 4.0))
+
+
+def _pooled(history: list, stage_index: int, fresh: bool) -> np.ndarray:
+    """The newest draws: this stage and the later half of the one before.
+
+    In the first stage, or after a probe rescaled the proposal (the stage
+    before ran with the old scales), only this stage's later half: the early
+    part is warm-up.
+    """
+    draws = history[-1]
+    if stage_index == 0 or fresh:
+        return draws[:, draws.shape[1] // 2 :]
+    previous = history[-2]
+    return np.concatenate([previous[:, previous.shape[1] // 2 :], draws], axis=1)
+
+
+def _probe_and_rescale(evaluate, result: PilotResult, stage: PilotStage, rng: np.random.Generator) -> int:
+    """Probe each parameter's scale at the chains' states; rescale ``result.covariance`` where it is off.
+
+    Moves the chains (the probe is a Metropolis-within-Gibbs pass), records
+    the acceptance and the scaling applied in ``stage``, and returns the
+    evaluations spent.
+    """
+    found = probe_components(evaluate, result.states, result.state_log_density, result.covariance, rng)
+    result.states, result.state_log_density = found.states, found.log_density
+    scaling = np.where(found.off, found.cautious_ratio, 1.0)
+    result.covariance = result.covariance * np.outer(scaling, scaling)
+    stage.probe_acceptance, stage.component_scaling = found.acceptance, scaling
+    return found.evaluations
 
 
 def run_pilot(
@@ -185,6 +348,8 @@ def run_pilot(
     state_log_density: np.ndarray | None = None,
     within_chains: bool = False,
     on_stage=None,
+    probe: bool = True,
+    extension: int = 0,
 ) -> PilotResult:
     """Adapt the proposal in stages of doubling length until it settles or the budget ends.
 
@@ -205,6 +370,12 @@ def run_pilot(
         Estimate the covariance within chains (for chains started in separate modes).
     on_stage : callable, optional
         Called with the :class:`PilotResult` so far after each stage.
+    probe : bool, default=True
+        Probe each parameter's scale after a stage (:func:`probe_components`)
+        until a probe finds every parameter in range.
+    extension : int, default=0
+        Evaluations added to ``budget`` the first time a probe rescales a
+        parameter (the start was poor, and the pilot needs more stages).
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -213,10 +384,16 @@ def run_pilot(
     factor = 1.0
     result = PilotResult(covariance=covariance, scale_factor=factor, states=states, state_log_density=state_log_density)
     history: list[np.ndarray] = []
-    noise_rng = np.random.default_rng(seed.spawn(1)[0])
+    noise_seed = seed.spawn(1)[0]
+    noise_rng = np.random.default_rng(noise_seed)
+    probe_rng = np.random.default_rng(noise_seed.spawn(1)[0])  # apart from the stages' seeds
+    evaluate = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
+    probe_cost = PROBE_SWEEPS * dim * n_chains
     spent = 0
     stage_index = 0
     settled = 0
+    rescaled = False
+    trust_start = True
     while True:
         steps = window * 2 ** min(stage_index, 6)
         remaining = budget - spent
@@ -234,34 +411,41 @@ def run_pilot(
         result.state_log_density = chains.log_density[:, -1]
         history.append(chains.draws)
         result.all_draws.append(chains.draws)
-        # Pool the newest draws: this stage and the later half of the one before;
-        # in the first stage only its later half (the early part is warm-up).
-        if stage_index == 0:
-            pooled_draws = chains.draws[:, steps // 2 :]
-        else:
-            previous = history[-2]
-            pooled_draws = np.concatenate([previous[:, previous.shape[1] // 2 :], chains.draws], axis=1)
+        pooled_draws = _pooled(history, stage_index, rescaled)
+        # Once the start has proved wrong, shrink towards the draws' own scales rather than towards it.
+        reference = result.covariance if trust_start else np.diag(np.var(pooled_draws.reshape(-1, dim), axis=0))
         try:
-            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, result.covariance, within_chains)
+            new_cov, shrinkage, n_independent = shrunk_covariance(pooled_draws, reference, within_chains)
             np.linalg.cholesky(new_cov)
         except np.linalg.LinAlgError:
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
         change = theory.direction_slowdown(new_cov, result.covariance)
         noise = noise_slowdown(dim, n_independent, noise_rng)
         acceptance = chains.acceptance_rate
-        adopted = acceptance > 0 and change > noise
-        result.stages.append(
-            PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted)
-        )
+        significant = change > noise
+        # Once a probe has shown the start wrong, the draws win even when the change is within
+        # noise; but not the draws of a stage that ran with scales a probe has just corrected.
+        adopted = acceptance > 0 and (significant or not (trust_start or rescaled))
         if adopted:
             result.covariance = new_cov
-        elif acceptance == 0:
-            result.covariance = result.covariance / 10.0  # nothing moved: try much smaller steps
+        stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted)
+        # Probe only when a stage can follow to use (and test) a rescaled proposal.
+        rescaled = False
+        if probe and budget - spent >= probe_cost + n_chains * window:
+            spent += _probe_and_rescale(evaluate, result, stage, probe_rng)
+            rescaled = probe = bool(np.any(stage.component_scaling != 1.0))
+            if rescaled:
+                trust_start = False
+                budget, extension = budget + extension, 0  # a poor start: take the extra allowance once
+        if acceptance == 0 and not rescaled:
+            result.covariance = result.covariance / 10.0  # nothing moved and no probe said why: much smaller steps
+        result.stages.append(stage)
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
         factor = _scale_step(factor, acceptance, target)
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
-        settled = settled + 1 if (not adopted and good_acceptance and stage_index >= 1) else 0
+        steady = not significant and not rescaled and good_acceptance and stage_index >= 1
+        settled = settled + 1 if steady else 0
         stage_index += 1
         if on_stage is not None:
             on_stage(result)

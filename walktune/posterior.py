@@ -169,6 +169,11 @@ class SamplerSpaceEvaluator:
             errors = {int(index[k]): v for k, v in inner.errors.items()}
         return BatchResult(values, errors)
 
+    def scalar(self, z: np.ndarray) -> float:
+        """One point, for the optimizer: exceptions and NaN become -inf."""
+        value = float(self(np.asarray(z, dtype=float)[None, :]).values[0])
+        return value if np.isfinite(value) or value == -np.inf else -np.inf
+
 
 class PriorAddedEvaluator:
     """An evaluator of the likelihood (anywhere) plus a prior given apart (here, on the driver).

@@ -35,6 +35,7 @@ from .findings import Finding
 from .geometry import (
     boundary_findings,
     climb,
+    curvature_probe_cost,
     find_regions,
     funnel_findings_from_curvature,
     heavy_tail_findings,
@@ -47,6 +48,7 @@ from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator
 from .reparam import build_reparam, curved_ridge_findings
+from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
 #: Up to this dimension the funnel detector also probes the log-density's
 #: curvature (2 d (2 d + 1) evaluations).
@@ -57,7 +59,12 @@ MAX_CURVATURE_PROBE_DIM = 20
 
 
 def pilot_budget_default(dim: int) -> int:
-    """Default pilot evaluations: ``20 d^2 + 2000`` (mode search included)."""
+    """Default pilot evaluations: ``20 d^2 + 2000`` (mode search included).
+
+    Without a cap on the job, a pilot whose start proves poor (a parameter
+    near a bound, or one whose scale a probe had to correct) may spend as much
+    again: :meth:`Budget.pilot_extension`.
+    """
     return 20 * dim * dim + 2000
 
 
@@ -91,6 +98,11 @@ class Budget:
             return cls(None, pilot_budget_default(dim), chains, dim)
         return cls(total, max(int(0.4 * total), minimum_budget(dim, chains) - 3 * chains * 200), chains, dim)
 
+    @property
+    def pilot_extension(self) -> int:
+        """Evaluations a pilot with a poor start may add: the default pilot budget again, none under a cap."""
+        return self.pilot if self.total is None else 0
+
 
 # --------------------------------------------------------------------------- mode and starts
 
@@ -108,6 +120,9 @@ class StartingPoints:
         The mode and any separate modes found by the extra climbs.
     states, values : ndarray of shape (chains, d) and (chains,)
         Overdispersed starting states and their log-densities.
+    unconstrained : walktune.unconstrained.UnconstrainedStart or None
+        Where the pilot starts in unconstrained coordinates, when the mode or
+        the mass is near a bound.
     """
 
     fit: ModeFit
@@ -115,6 +130,7 @@ class StartingPoints:
     centres: list
     states: np.ndarray
     values: np.ndarray
+    unconstrained: UnconstrainedStart | None = None
 
 
 def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> np.ndarray:
@@ -201,22 +217,61 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     centres = [fit.mode] + other_modes
     states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng, bounds)
-    return StartingPoints(fit, initial, centres, states, values)
+    unconstrained = _unconstrained_start(posterior, fit, initial, centres, budget, rng)
+    return StartingPoints(fit, initial, centres, states, values, unconstrained)
+
+
+def _unconstrained_start(posterior: Posterior, fit: ModeFit, initial: np.ndarray, centres: list, budget: Budget,
+                         rng) -> UnconstrainedStart | None:
+    """The pilot's start in unconstrained coordinates, when a parameter's mode or mass is near a bound (else None).
+
+    The mode search in ``u`` may spend a sixth of the pilot's budget; the chains
+    start overdispersed around the ``u``-mode and the other modes, mapped.
+    """
+    bounds, counted = posterior.bounds, posterior.counted
+    if not np.any(np.isfinite(bounds)):
+        return None
+    sd = np.sqrt(np.diag(initial))
+    near = near_bound(counted.scalar, fit.mode, fit.log_density, sd, bounds)
+    if not near.any():
+        return None
+    reparam = pilot_map(posterior.names, bounds, near)
+    evaluate_u = SamplerSpaceEvaluator(counted, reparam)
+    search = max(20 * (posterior.dim + 1), budget.pilot // 6)
+    fit_u, cov_u = unconstrained_mode(evaluate_u.scalar, reparam, fit, posterior.start, initial, near, search)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        others = [reparam.to_sampler(c) for c in centres[1:]]
+    centres_u = [fit_u.mode] + [c for c in others if np.all(np.isfinite(c))]
+    # In u the transformed parameters are unbounded; the others keep their bounds.
+    bounds_u = np.where(near[:, None], [-np.inf, np.inf], bounds)
+    states, values = _overdispersed_starts(evaluate_u, centres_u, cov_u, budget.chains, rng, bounds_u)
+    return UnconstrainedStart(reparam, near, fit_u, cov_u, states, values)
 
 
 # --------------------------------------------------------------------------- pilot
 
 
 def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, seed, tracker) -> PilotResult:
-    """The adaptive pilot in the user's coordinates: what the pilot's budget leaves after the mode search."""
-    counted = posterior.counted
-    pilot = run_pilot(
-        None, start.states, start.initial_covariance,
-        max(budget.pilot - counted.count, _minimum_pilot(posterior.dim, budget.chains)),
-        seed, evaluator=counted, progress=lambda done, total: tracker("pilot", done, total),
-        state_log_density=start.values, within_chains=len(start.centres) > 1,
-        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
-    )
+    """The adaptive pilot: what the pilot's budget leaves after the mode search.
+
+    With an unconstrained start (a mode or mass near a bound) it runs first in
+    the unconstrained coordinates, then in the user's parameters
+    (:func:`walktune.unconstrained.run_unconstrained_pilot`), with the extra
+    allowance of a poor start.
+    """
+    counted, dim = posterior.counted, posterior.dim
+    available = max(budget.pilot - counted.count, _minimum_pilot(dim, budget.chains))
+    progress = lambda done, total: tracker("pilot", done, total)  # noqa: E731
+    within = len(start.centres) > 1
+    if start.unconstrained is None:
+        pilot = run_pilot(
+            None, start.states, start.initial_covariance, available, seed, evaluator=counted, progress=progress,
+            state_log_density=start.values, within_chains=within, extension=budget.pilot_extension,
+            on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
+        )
+    else:
+        pilot = run_unconstrained_pilot(posterior.counted, start.unconstrained, available + budget.pilot_extension,
+                                        _minimum_pilot(dim, budget.chains), seed, tracker, within)
     tracker("pilot", pilot.evaluations, pilot.evaluations)
     return pilot
 
@@ -546,13 +601,19 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
     )
     multimodal = multimodal_finding(regions, names)
-    funnel, undecided_scale = varying_scale_findings(proof_draws, within_chain_iact(proof_draws, np.median), names)
-    probe_cost = 2 * dim * (2 * dim + 1) + 2 * dim + 1
+    tau_median = within_chain_iact(proof_draws, np.median)
+    # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
+    proof_ess = measure_chains(proof_draws).bulk_ess
+    funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds,
+                                                     ess=proof_ess)
+    probe_cost = curvature_probe_cost(dim)
     if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget.total is None or budget.total - counted.count >= probe_cost):
-        # The model itself can show a funnel the draws were too few to show.
-        posterior_mean = proof.tuned.draws.reshape(-1, dim).mean(axis=0)
-        funnel = funnel_findings_from_curvature(counted.scalar, posterior_mean, np.sqrt(np.diag(pilot.covariance)), names)
-        if funnel:
+        # The model itself can show a funnel the draws do not show plainly (chains kept out of its neck);
+        # it is reported as more than a hypothesis only where the draws confirm it.
+        funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
+                                                spread=np.sqrt(np.diag(pilot.covariance)),
+                                                log_densities=np.concatenate([run.log_density for run in proof.runs.values()]))
+        if funnel and funnel[0].severity != "info":
             undecided_scale = None
     return GeometryChecks(
         regions=regions,
