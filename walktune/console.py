@@ -211,7 +211,7 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
         worth = result.evaluations_needed().get(rec.proposal, float("nan"))
         saved = f" Saved as {output_folder}/recommended_proposal.npy and .csv" if output_folder else ""
         if rec.coordinates != "parameters":
-            saved += " (in the sampler coordinates of reparam.json)"
+            saved += " (in the sampler coordinates of sampling_map.json)"
         table.add_row(Text("RECOMMENDED", style="bold green"), Text(
             f"{rec.message} For ESS {result.target_ess}: about {_fmt(worth, 3)} evaluations "
             f"(~{_hours(worth, result.seconds_per_evaluation)}).{saved}", style="bold"))
@@ -237,8 +237,8 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     reparam = result.reparam
     if reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
         chosen = ", ".join(f"{t.kind}({t.name})" for t in reparam.transforms if t.kind != "identity")
-        table.add_row("new coordinates", f"sample z = Q^T W^-1 (T(theta) - m) with T: {chosen}; the map is in reparam.json "
-                      "(walktune.load_reparam); see the transformed-rotated row below")
+        table.add_row("new coordinates", f"sample z = Q^T W^-1 (T(theta) - m) with T: {chosen}; the map is in sampling_map.json "
+                      "(walktune.load_sampling_map); see the transformed-rotated row below")
     else:
         table.add_row("rotated basis", "z = W^-1 (theta - mean), W = Cholesky factor of the posterior covariance (advice.json: rotation)")
     if reparam is not None and reparam.prior_variance_ratio is not None:

@@ -195,7 +195,7 @@ def prior_dominated_findings(posterior_variance, prior_variance, names, informed
                 "info",
                 [],
                 f"only {informed} of {dim} directions are informed by the data; the other {dim - informed} "
-                "combinations stay close to the prior (reparam.json holds them; the reduced-basis sampler uses them).",
+                "combinations stay close to the prior (sampling_map.json holds them; the reduced-basis sampler uses them).",
                 {"informed_dimension": informed, "dimension": dim},
             )
         )

@@ -155,7 +155,7 @@ class Recommendation:
     evaluations_to_resolve : int or None
         Evaluations per run that would resolve the closest contender (None: none, or equal within 5%).
     coordinates : str
-        ``parameters``, or ``reparam.json`` when the proposal runs in the new coordinates.
+        ``parameters``, or ``sampling_map.json`` when the proposal runs in the new coordinates.
     message : str
         One sentence saying what to use, what it is worth, and how sure that is.
     """
@@ -194,7 +194,7 @@ def recommend(rows: list) -> Recommendation:
     baseline = rows[0]
     contender = max(close, key=lambda row: row.ess_per_1000) if close else None
     to_resolve = _evaluations_to_resolve(chosen, contender) if contender is not None else None
-    coordinates = "reparam.json" if chosen.proposal in ("transformed-rotated", "reduced-basis") else "parameters"
+    coordinates = "sampling_map.json" if chosen.proposal in ("transformed-rotated", "reduced-basis") else "parameters"
     message = _message(chosen, close, baseline, contender, to_resolve)
     return Recommendation(
         proposal=chosen.proposal, keep_current=chosen.proposal == "current", resolved=not close,

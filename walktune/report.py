@@ -128,10 +128,10 @@ def load_run(folder) -> Run:
     chosen = (advice.get("recommended") or {}).get("proposal")
     main = chosen if chosen in labels else "tuned-covariance"
     reparam = None
-    if (folder / "reparam.json").exists():
-        from .reparam import load_reparam
+    if (folder / "sampling_map.json").exists():
+        from .reparam import load_sampling_map
 
-        reparam = load_reparam(folder, names=names)
+        reparam = load_sampling_map(folder, names=names)
     return Run(folder, advice, names, labels, main, baseline, reparam=reparam)
 
 
@@ -401,8 +401,8 @@ def _plain_advice(advice: dict) -> list:
     recommended = advice.get("recommended")
     if rows and recommended:
         chosen = next((row for row in rows if row["proposal"] == recommended["proposal"]), rows[-1])
-        where = ("recommended_proposal.csv (in the sampler coordinates of reparam.json)"
-                 if recommended.get("coordinates") == "reparam.json" else "recommended_proposal.csv")
+        where = ("recommended_proposal.csv (in the sampler coordinates of sampling_map.json)"
+                 if recommended.get("coordinates") == "sampling_map.json" else "recommended_proposal.csv")
         if chosen is rows[0]:
             worth = "no other option was measured faster than it beyond the measurement's error"
         else:

@@ -302,7 +302,7 @@ class NewCoordinates:
 
     Attributes
     ----------
-    reparam : walktune.reparam.Reparam or None
+    reparam : walktune.reparam.SamplingMap or None
     findings : list of Finding
         Curved ridges, or why no map could be built.
     prior_covariance : ndarray of shape (d, d) or None
@@ -476,7 +476,7 @@ class Proof:
         Steps per chain of every run.
     proposals : dict of str to ndarray of shape (d, d)
         Each run's proposal covariance, in the coordinates it ran in (the new
-        coordinates' runs in those of ``reparam.json``).
+        coordinates' runs in those of ``sampling_map.json``).
     """
 
     rows: list

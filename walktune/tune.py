@@ -222,7 +222,7 @@ class TuneResult:
             "reparameterisation": None if self.reparam is None else {
                 "transforms": {t.name: t.kind for t in self.reparam.transforms},
                 "informed_dimension": self.reparam.informed,
-                "file": "reparam.json",
+                "file": "sampling_map.json",
             },
             "findings": [f.to_dict() for f in self.findings],
             "caution": CAUTION,
