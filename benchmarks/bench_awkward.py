@@ -64,7 +64,7 @@ MIN_REPORTED_ESS = 100
 
 def run_settings(dim: int, quick: bool) -> tuple[int, int]:
     """Chains and steps per chain of each efficiency run (equal budgets for all three proposals)."""
-    # Few long chains: a chain needs about 50 IACTs for its ESS to be reliable, and slow proposals have long IACTs.
+    # Few long chains: a run needs diagnostics.IACTS_FOR_PRECISE_ESS IACTs over its chains for a precise ESS, and slow proposals have long IACTs.
     return (8, max(5000, 500 * dim)) if quick else (8, max(40000, 4000 * dim))
 
 
@@ -248,7 +248,7 @@ def evaluate_target(name: str, quick: bool = False, seed: int = 1, steps: int | 
 
 
 def _ratio_cell(row, key) -> str:
-    """``ratio +/- se``, starred when either run was too short for a reliable ESS (under 50 IACTs per chain)."""
+    """``ratio +/- se``, starred when either run was too short for a reliable ESS (under diagnostics.IACTS_FOR_PRECISE_ESS IACTs over its chains)."""
     if key not in row["runs"]:
         return "-"
     value = row[f"{key}_vs_oracle"]

@@ -84,11 +84,11 @@ def test_walktune_meets_the_criteria_on_awkward_target(name):
     efficient (min bulk ESS per evaluation) as per-parameter steps set from
     the exact marginal sds x 2.38 / sqrt(d) (Roberts, Gelman and Gilks 1997).
 
-    The recommended run must be long enough (50 IACTs per chain) for its ESS
-    to be reliable. Where the oracle's run is not (per-parameter steps on
-    strongly correlated parameters), its ESS is a rough estimate, so the ratio
-    must clear 0.8 by more than 3 relative standard errors of the ratio
-    (Sokal's 1997 approximation, see bench_awkward.efficiency).
+    The recommended run must be long enough (diagnostics.IACTS_FOR_PRECISE_ESS
+    IACTs over its chains) for its ESS to be precise. Where the oracle's run is not (tumour_logistic: per-parameter
+    steps on strongly correlated coefficients), its ESS is imprecise,
+    so the ratio must clear 0.8 by more than 3 relative standard errors of
+    the ratio (Sokal's 1997 approximation, see bench_awkward.efficiency).
     """
     # 8 chains x 10,000 steps: a quarter of the benchmark's runs (at least 50 IACTs per chain of the recommended run).
     row = B.evaluate_target(name, seed=1, steps=10_000, with_exact=False)

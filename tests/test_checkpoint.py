@@ -77,7 +77,7 @@ def _same_outputs(folder: Path, reference: Path) -> None:
         assert sorted(x.files) == sorted(y.files)
         for key in x.files:
             np.testing.assert_array_equal(x[key], y[key])
-    for name in ("reparam.json", "proposal_covariance.npy", "step_sizes.csv"):
+    for name in ("sampling_map.json", "proposal_covariance.npy", "step_sizes.csv"):
         assert (folder / name).read_bytes() == (reference / name).read_bytes(), name
     assert not (folder / FILE_NAME).exists() and not (folder / "partial-advice.json").exists()
 

@@ -255,3 +255,30 @@ def test_cli_error_through_a_real_process(tmp_path):
     assert out.returncode == 2
     assert out.stderr.strip().startswith("error:") and "Traceback" not in out.stderr
     assert len(out.stderr.strip().splitlines()) == 1
+
+
+@pytest.mark.parametrize("target, run_name", [("folder", None), ("npz", None), ("npz", "step-sizes"), ("folder", "pilot")])
+def test_inspect_reads_a_tune_folder(finished_run, tmp_path, target, run_name):
+    # Reference: the saved draws themselves (numpy's mean over chains and steps) and the
+    # names and recommendation advice.json records.
+    advice = json.loads((finished_run / "advice.json").read_text())
+    expected_run = run_name or advice["recommended"]["proposal"]
+    path = finished_run if target == "folder" else finished_run / "draws.npz"
+    out = tmp_path / "inspected"
+    result = run("inspect", path, *(["--run", run_name] if run_name else []), "--out", out, "--report")
+    assert result.exit_code == 0, result.output
+    inspected = json.loads((out / "advice.json").read_text())
+    assert inspected["parameter_names"] == advice["parameter_names"]
+    assert inspected["inspection"]["run"] == expected_run
+    with np.load(finished_run / "draws.npz") as archive:
+        draws = archive[expected_run.replace("-", "_")]
+    np.testing.assert_allclose(inspected["posterior_mean"], draws.reshape(-1, draws.shape[2]).mean(axis=0), rtol=1e-10)
+    assert (out / "report.html").exists()
+
+
+def test_inspect_run_errors(finished_run, tmp_path):
+    assert_one_line_error(run("inspect", finished_run, "--run", "nothing"), "no run 'nothing'", "tuned-covariance")
+    np.save(tmp_path / "plain.npy", np.zeros((10, 2)))
+    assert_one_line_error(run("inspect", tmp_path / "plain.npy", "--run", "pilot"), "--run")
+    (tmp_path / "empty").mkdir()
+    assert_one_line_error(run("inspect", tmp_path / "empty"), "without draws.npz")

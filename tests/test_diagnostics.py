@@ -45,7 +45,7 @@ def test_mcse_of_ar1_mean(ar1_factory):
     phi = 0.9
     x = ar1_factory(phi, chains=4, n=200_000, seed=5)[..., None]
     expected = np.sqrt(1 / (1 - phi**2) * (1 + phi) / (1 - phi) / x.size)
-    assert D.mcse_mean(x)[0] == pytest.approx(expected, rel=0.05)
+    assert D.mean_mcse(x)[0] == pytest.approx(expected, rel=0.05)
 
 
 def test_iid_draws_have_ess_near_n_and_rhat_near_one():
@@ -87,10 +87,40 @@ def test_folded_rhat_catches_different_spread():
 
 
 def test_short_chain_is_flagged_not_trusted(ar1_factory):
-    # Common practice: trust an IACT estimate only with >= ~50 tau per chain (Sokal 1997).
-    x = ar1_factory(0.99, chains=2, n=1000, seed=9)[..., None]  # tau = 199
+    # 2 x 1000 draws of a chain with tau = 199 (AR(1) closed form): 10 IACTs in all, far below the threshold.
+    x = ar1_factory(0.99, chains=2, n=1000, seed=9)[..., None]
     assert D.iact(x).too_short[0]
     assert D.ess(x).too_short[0]
+
+
+def test_threshold_follows_sokals_variance_formula():
+    # Sokal (1997): var(tau_hat) = 2 (2M + 1) / S tau^2 for a window M and S draws; with
+    # M = WINDOW_PER_IACT tau the relative sd reaches IACT_RELATIVE_ERROR at S = IACTS_FOR_PRECISE_ESS tau
+    # (up to the +1 of the window, negligible for tau >> 1).
+    tau, s = 1000.0, D.IACTS_FOR_PRECISE_ESS * 1000.0
+    assert np.sqrt(2 * (2 * D.WINDOW_PER_IACT * tau + 1) / s) == pytest.approx(D.IACT_RELATIVE_ERROR, rel=1e-3)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("phi, chains", [(0.5, 1), (0.9, 4), (0.9, 8)])
+def test_iact_relative_error_at_the_threshold(ar1_factory, phi, chains):
+    # AR(1) chains, closed-form IACT tau = (1 + phi) / (1 - phi), with IACTS_FOR_PRECISE_ESS * tau
+    # draws in all: the measured relative sd of the IACT estimate lies between Sokal's formula with
+    # the window Geyer's estimator sums on AR(1) chains (about 2 tau, by simulation) and with
+    # the safety margin WINDOW_PER_IACT = 2.5 tau, i.e. about 0.18 to IACT_RELATIVE_ERROR = 0.2.
+    tau = (1 + phi) / (1 - phi)
+    n = int(round(D.IACTS_FOR_PRECISE_ESS * tau / chains))
+    replicates = 400
+    relative = np.array([
+        float(D.iact(ar1_factory(phi, chains=chains, n=n, seed=1000 * chains + r)[..., None])[0]) / tau - 1
+        for r in range(replicates)
+    ])
+    measured = np.sqrt(np.mean(relative**2))
+    # Monte Carlo error of an rms over R replicates: sd(e^2) / (2 rms sqrt(R)).
+    tolerance = 3 * np.std(relative**2) / (2 * measured * np.sqrt(replicates))
+    low = np.sqrt(2 * (2 * 2.0 * tau + 1) / (chains * n))
+    assert low - tolerance <= measured <= D.IACT_RELATIVE_ERROR + tolerance, (measured, low, tolerance)
+    assert abs(np.mean(relative)) < 0.05 + 3 * np.std(relative) / np.sqrt(replicates)  # no large bias either
 
 
 def test_constant_chain_gives_nan_and_flag():
@@ -137,17 +167,17 @@ def test_average_ranks_match_scipy_rankdata():
     np.testing.assert_allclose(D._average_ranks(column), stats.rankdata(column, method="average"))
 
 
-def test_summary_agrees_with_the_single_functions():
-    # summary() computes block by block; every field must equal the function of the same name.
+def test_measure_chains_agrees_with_the_single_functions():
+    # measure_chains() computes block by block; every field must equal the function of the same name.
     rng = np.random.default_rng(12)
     x = rng.standard_normal((3, 800, 11)).cumsum(axis=1) * 0.1 + rng.standard_normal((3, 800, 11))
-    s = D.summary(x, block=4)
+    s = D.measure_chains(x, block=4)
     np.testing.assert_allclose(s.ess, D.ess(x, split=True))
     np.testing.assert_allclose(s.iact, D.iact(x, split=True))
     np.testing.assert_allclose(s.bulk_ess, D.bulk_ess(x))
     np.testing.assert_allclose(s.tail_ess, D.tail_ess(x))
     np.testing.assert_allclose(s.rhat, D.rhat(x))
-    np.testing.assert_allclose(s.mcse, D.mcse_mean(x))
+    np.testing.assert_allclose(s.mcse, D.mean_mcse(x))
     np.testing.assert_array_equal(s.ess_too_short, D.ess(x, split=True).too_short)
     np.testing.assert_allclose(s.mcse, s.sd / np.sqrt(s.ess))  # the numbers shown agree with each other
     np.testing.assert_allclose(s.iact, x.shape[0] * x.shape[1] / s.ess)
@@ -192,8 +222,8 @@ def test_split_ess_and_mcse_match_an_independent_implementation(ar1_factory, cas
     draws = x[..., None]
     assert D.ess(draws, split=True)[0] == pytest.approx(split, rel=1e-10)
     assert D.ess(draws)[0] == pytest.approx(unsplit, rel=1e-10)
-    assert D.mcse_mean(draws)[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
-    s = D.summary(draws)
+    assert D.mean_mcse(draws)[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
+    s = D.measure_chains(draws)
     assert s.mcse[0] == pytest.approx(x.std(ddof=1) / np.sqrt(split), rel=1e-10)
     assert s.ess[0] == pytest.approx(split, rel=1e-10)
 
@@ -237,6 +267,25 @@ def test_mcse_covers_the_true_mean_of_ar1_chains(ar1_factory):
     covered = 0
     for seed in range(runs):
         x = ar1_factory(0.9, chains=4, n=2000, seed=1000 + seed)[..., None]
-        covered += abs(x.mean()) <= 1.96 * D.mcse_mean(x)[0]
+        covered += abs(x.mean()) <= 1.96 * D.mean_mcse(x)[0]
     binomial_se = np.sqrt(0.95 * 0.05 / runs)
     assert abs(covered / runs - 0.95) < 3 * binomial_se
+
+
+def test_thinning_keeps_the_ess_share_it_advises(ar1_factory):
+    # Every k-th draw of AR(1) with phi is AR(1) with phi^k (closed form), so the ESS kept is
+    # tau / (k tau_k); checked here against the ESS measured on simulated chains.
+    from walktune.advice import THINNING_ESS_LOSS, ess_kept_by_thinning, warmup_and_thinning
+
+    phi = 0.9
+    tau = (1 + phi) / (1 - phi)
+    k = warmup_and_thinning(tau)[1]
+    kept = float(ess_kept_by_thinning(tau, k))
+    assert kept >= 1 - THINNING_ESS_LOSS > float(ess_kept_by_thinning(tau, k + 1))
+    tau_k = (1 + phi**k) / (1 - phi**k)
+    assert kept == pytest.approx(tau / (k * tau_k), rel=1e-12)
+    x = ar1_factory(phi, chains=8, n=200_000, seed=21)[..., None]
+    measured = float(D.ess(x[:, ::k])[0] / D.ess(x)[0])
+    # Relative sd of each ESS from Sokal's formula with a window of 2.5 IACTs; 3 sds of the ratio.
+    se = np.hypot(np.sqrt(2 * (5 * tau + 1) / x.size), np.sqrt(2 * (5 * tau_k + 1) / (x.size / k)))
+    assert measured == pytest.approx(kept, abs=3 * se * kept)

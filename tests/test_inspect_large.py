@@ -48,7 +48,7 @@ def test_blockwise_inspection_matches_whole_array_diagnostics(tmp_path, monkeypa
     monkeypatch.setattr(inspection, "SLAB_BYTES", 1)
     result = inspect(read_chains(tmp_path / "d.npy", layout=layout), warmup=100, thin=3, params=[5, 0, 2, 3])
     chosen = x.astype(np.float32).astype(float)[:, 100::3][:, :, [5, 0, 2, 3]]
-    whole = D.summary(chosen)
+    whole = D.measure_chains(chosen)
     for field in ("mean", "sd", "mcse", "ess", "iact", "bulk_ess", "tail_ess", "rhat", "chain_sd"):
         np.testing.assert_allclose(getattr(result.summary, field), getattr(whole, field), rtol=1e-12, err_msg=field)
     assert np.array_equal(result.summary.bulk_too_short, whole.bulk_too_short)

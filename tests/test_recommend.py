@@ -14,7 +14,7 @@ import pytest
 import scipy.stats as st
 
 from walktune import recommend as R
-from walktune.diagnostics import MIN_DRAWS_PER_IACT, summary
+from walktune.diagnostics import IACTS_FOR_PRECISE_ESS, measure_chains
 
 
 def ar1_chains(tau: float, chains: int, steps: int, rng) -> np.ndarray:
@@ -33,7 +33,7 @@ def _measure(tau, chains, steps, replicates, seed):
     rng = np.random.default_rng(seed)
     ratio, stuck = [], []
     for _ in range(replicates):
-        s = summary(ar1_chains(tau, chains, steps, rng))
+        s = measure_chains(ar1_chains(tau, chains, steps, rng))
         ratio.append(float(s.bulk_ess[0]) / (chains * steps / tau))
         stuck.append(R.not_mixed(float(s.iact[0]), steps, float(s.rhat[0])))
     return np.array(ratio), np.array(stuck)
@@ -44,18 +44,18 @@ def test_chains_that_have_not_mixed_overestimate_ess_so_a_speedup_over_them_is_a
     # tau = 10 x the chain length: each half-chain holds a twentieth of one autocorrelation time.
     ratio, stuck = _measure(tau=4000.0, chains=4, steps=400, replicates=100, seed=1)
     # Recognised as not mixed in most replicates (93% in a 300-replicate check simulation with seed 7);
-    # allowed 3 binomial sds below that. The rest are called rough, which is true but less informative.
+    # allowed 3 binomial sds below that. The rest are called imprecise, which is true but less informative.
     assert stuck.mean() >= 0.93 - 3 * np.sqrt(0.93 * 0.07 / 100)
     # Where it is recognised, the ESS estimate is too high in every replicate: the speed-up over it is a lower bound.
     assert np.all(ratio[stuck] > 1.0)
 
 
 @pytest.mark.slow
-def test_short_mixing_chains_are_as_likely_under_as_over_estimated_so_the_speedup_is_rough():
-    # tau = 20 with 400 steps: 20 IACTs per chain, fewer than MIN_DRAWS_PER_IACT, so the ESS is flagged rough.
+def test_short_mixing_chains_are_as_likely_under_as_over_estimated_so_the_speedup_is_imprecise():
+    # tau = 20 with 4 x 400 steps: 80 IACTs in all, fewer than IACTS_FOR_PRECISE_ESS, so the ESS is flagged imprecise.
     replicates = 200
     ratio, stuck = _measure(tau=20.0, chains=4, steps=400, replicates=replicates, seed=2)
-    assert 400 < MIN_DRAWS_PER_IACT * 20
+    assert 4 * 400 < IACTS_FOR_PRECISE_ESS * 20
     assert not stuck.any()  # never mistaken for chains that have not mixed
     share_over = np.mean(ratio > 1.0)
     # A coin: within 3 binomial sds of one half (a lower-bound claim would be wrong about half the time).
@@ -94,8 +94,8 @@ def test_a_row_measured_slower_is_never_recommended():
 def test_within_error_the_tuned_covariance_is_preferred_and_the_difference_is_said_unresolved():
     # IACT 40 over 4 x 400 draws: a relative error near 0.5, so 1.3x apart is not resolved.
     rows = [_row("single-step", 10.0, iact=40, steps=400, reliable=False),
-            _row("tuned-covariance", 12.0, iact=40, steps=400, reliable=False, speedup=1.2, kind="rough"),
-            _row("transformed-rotated", 15.6, iact=40, steps=400, reliable=False, speedup=1.56, kind="rough")]
+            _row("tuned-covariance", 12.0, iact=40, steps=400, reliable=False, speedup=1.2, kind="imprecise"),
+            _row("transformed-rotated", 15.6, iact=40, steps=400, reliable=False, speedup=1.56, kind="imprecise")]
     chosen = R.recommend(rows)
     assert chosen.proposal == "tuned-covariance" and not chosen.resolved
     assert "Not resolved" in chosen.message and chosen.evaluations_to_resolve > 0
@@ -123,7 +123,7 @@ def test_speedup_kinds():
     assert R.speedup_kind(good, stuck)[0] == "lower-bound"
     assert R.speedup_kind(stuck, good)[0] == "upper-bound"
     kind, settle = R.speedup_kind(rough, good)
-    assert kind == "rough" and settle == 4 * MIN_DRAWS_PER_IACT * 40
+    assert kind == "imprecise" and settle == IACTS_FOR_PRECISE_ESS * 40
     assert R.speedup_kind(good, _row("current", 5.0))[0] == "measured"
 
 

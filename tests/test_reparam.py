@@ -26,7 +26,7 @@ from walktune.reparam import (
     fit_map,
     forward,
     inverse,
-    load_reparam,
+    load_sampling_map,
     log_jacobian,
 )
 
@@ -73,8 +73,8 @@ def test_full_map_round_trip_and_jacobian_determinant():
 
 def test_reparam_json_round_trip(tmp_path):
     reparam, rng = random_map()
-    (tmp_path / "reparam.json").write_text(json.dumps(reparam.to_dict()))
-    loaded = load_reparam(tmp_path, names=reparam.parameter_names)
+    (tmp_path / "sampling_map.json").write_text(json.dumps(reparam.to_dict()))
+    loaded = load_sampling_map(tmp_path, names=reparam.parameter_names)
     z = rng.standard_normal((5, 4))
     np.testing.assert_allclose(loaded.from_sampler(z), reparam.from_sampler(z), atol=1e-12)
 
@@ -82,7 +82,7 @@ def test_reparam_json_round_trip(tmp_path):
 @pytest.mark.parametrize(
     "change, fragment",
     [
-        (lambda p: p.update(schema="walktune.reparam/0"), "schema"),
+        (lambda p: p.update(schema="walktune.sampling-map/0"), "schema"),
         (lambda p: p.update(W=np.zeros((4, 4)).tolist()), "not invertible"),
         (lambda p: p.update(Q=(2 * np.eye(4)).tolist()), "orthogonal"),
     ],
@@ -91,16 +91,16 @@ def test_bad_reparam_files(tmp_path, change, fragment):
     reparam, _ = random_map()
     payload = reparam.to_dict()
     change(payload)
-    (tmp_path / "reparam.json").write_text(json.dumps(payload))
+    (tmp_path / "sampling_map.json").write_text(json.dumps(payload))
     with pytest.raises(WalktuneError, match=fragment):
-        load_reparam(tmp_path)
+        load_sampling_map(tmp_path)
 
 
 def test_reparam_names_must_match(tmp_path):
     reparam, _ = random_map()
-    (tmp_path / "reparam.json").write_text(json.dumps(reparam.to_dict()))
+    (tmp_path / "sampling_map.json").write_text(json.dumps(reparam.to_dict()))
     with pytest.raises(WalktuneError, match="not the model's"):
-        load_reparam(tmp_path, names=["a", "b", "c", "d"])
+        load_sampling_map(tmp_path, names=["a", "b", "c", "d"])
 
 
 def test_forced_transform_that_conflicts_with_bounds():
@@ -208,13 +208,13 @@ def test_curved_ridge_demo_gains_three_times():
 
 
 def test_user_sampler_in_three_lines(tmp_path):
-    # The documented recipe: load reparam.json, sample z with any sampler, map back.
+    # The documented recipe: load sampling_map.json, sample z with any sampler, map back.
     def log_density(theta):
         return lognormal_logpdf(theta[0], s=0.5, scale=1.0) - 0.5 * ((theta[1] - 1.0) / 0.2) ** 2
 
     result = walktune.tune(log_density, [1.0, 1.0], names=["a", "b"], bounds={"a": (0, np.inf)}, seed=3, budget=40_000)
     result.save(tmp_path / "out")
-    reparam = walktune.load_reparam(tmp_path / "out", names=["a", "b"])
+    reparam = walktune.load_sampling_map(tmp_path / "out", names=["a", "b"])
     log_z = reparam.log_density_in_sampler_space(log_density)
     chains = walktune.sample(log_z, np.zeros(2), (2.38**2 / 2) * np.eye(2), 20_000, chains=4, seed=5)
     theta = reparam.from_sampler(chains.draws)

@@ -216,11 +216,11 @@ def test_plain_words_quote_the_recommended_rows_speedup():
 
     def row(name, speedup, kind, acceptance):
         return {"proposal": name, "speedup": speedup, "speedup_kind": kind, "acceptance": acceptance,
-                "ess_reliable": kind != "rough", "ess_per_1000": 10 * speedup}
+                "ess_reliable": kind != "imprecise", "ess_per_1000": 10 * speedup}
 
     advice = {
         "comparison": [row("single-step", 1.0, "baseline", 0.3), row("step-sizes", 6.25, "measured", 0.28),
-                       row("tuned-covariance", 1.5, "rough", 0.2)],
+                       row("tuned-covariance", 1.5, "imprecise", 0.2)],
         "recommended": {"proposal": "step-sizes", "keep_current": False, "resolved": True, "coordinates": "parameters",
                         "message": ""},
         "predicted_slowdown": {"step_sizes": {"slowest_parameter": 7e60, "slowest_direction": 7e60, "mean_direction": 7e60}},

@@ -14,7 +14,7 @@ from .checkpoint import Checkpoint, Interrupted
 from .engine import Chains, sample
 from .errors import SamplingError, TargetError, WalktuneError
 from .inspection import InspectionResult, inspect
-from .reparam import Reparam, load_reparam
+from .reparam import SamplingMap, load_sampling_map
 from .tune import TuneResult, tune
 
 __version__ = "0.1.0"
@@ -24,14 +24,14 @@ __all__ = [
     "Checkpoint",
     "Interrupted",
     "InspectionResult",
-    "Reparam",
+    "SamplingMap",
     "SamplingError",
     "TargetError",
     "TuneResult",
     "WalktuneError",
     "diagnostics",
     "inspect",
-    "load_reparam",
+    "load_sampling_map",
     "sample",
     "tune",
     "__version__",

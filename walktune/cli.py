@@ -22,7 +22,14 @@ app = typer.Typer(
     help="Tune random-walk Metropolis proposals from the geometry of your posterior, and prove the gain.",
 )
 
-DEMO_MODEL = Path(__file__).resolve().parent.parent / "demo_models" / "sensor_calibration.py"
+def _demo_model(name: str = "sensor_calibration.py") -> Path:
+    """A demo model file: shipped inside the package (an install), else in the repository's demo_models/."""
+    here = Path(__file__).resolve().parent
+    installed = here / "demo_models" / name
+    return installed if installed.exists() else here.parent / "demo_models" / name
+
+
+DEMO_MODEL = _demo_model()
 
 
 def _console(stderr: bool = False) -> Console:
@@ -469,7 +476,12 @@ def tune_command(
 
 @app.command("inspect")
 def inspect_command(
-    files: List[Path] = typer.Argument(..., help="Draws: .npy, .npz, .csv or .tsv; several files are several chains."),
+    files: List[Path] = typer.Argument(
+        ..., help="Draws: .npy, .npz, .csv or .tsv (several files are several chains), or a folder written by tune."
+    ),
+    run: Optional[str] = typer.Option(
+        None, "--run", help="Run of a tune folder to read (default: the recommended one, else tuned-covariance)."
+    ),
     chain_column: Optional[str] = typer.Option(None, "--chain-column", help="CSV column that names each row's chain."),
     layout: Optional[str] = typer.Option(
         None, "--layout",
@@ -493,11 +505,16 @@ def inspect_command(
     from .chainfiles import read_chains
     from .console import render_inspection
     from .inspection import inspect
-
     from .outputs import FolderLock, check_free
+    from .tunefolder import is_tune_output, read_tune_output
 
     with _user_errors("read or write"):
-        data = read_chains(files, chain_column=chain_column, layout=layout)
+        if is_tune_output(files):
+            data, run = read_tune_output(files[0], run)
+        elif run is not None:
+            raise WalktuneError("--run picks a run of a folder written by walktune tune; give that folder or its draws.npz.")
+        else:
+            data = read_chains(files, chain_column=chain_column, layout=layout)
         chosen = _split_list(params, "params")
         current = _read_proposal(proposal) if proposal is not None else None
         if out is not None and out.exists() and not out.is_dir():
@@ -510,12 +527,12 @@ def inspect_command(
                 check_free(out, overwrite=overwrite)
             result = inspect(
                 data, warmup=warmup, thin=thin, params=chosen, proposal=current,
-                target_ess=target_ess, target_mcse=target_mcse, chain_column=chain_column,
+                target_ess=target_ess, target_mcse=target_mcse, chain_column=chain_column, run=run,
             )
             if out is not None:
                 options = {"files": [str(Path(f).resolve()) for f in files], "chain_column": chain_column,
                            "layout": data.layout, "warmup": warmup, "thin": thin, "params": chosen, "target_ess": target_ess,
-                           "target_mcse": target_mcse, "proposal": str(proposal) if proposal else None}
+                           "target_mcse": target_mcse, "proposal": str(proposal) if proposal else None, "run": run}
                 result.save(out, produced_by=_provenance("walktune inspect", options))
                 if report:
                     from .report import write_report
@@ -552,7 +569,7 @@ def demo_command(
     """Run the whole job on a bundled demo model (a sensor calibration with correlated parameters)."""
     with _user_errors("write outputs"):
         if not DEMO_MODEL.exists():
-            raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune from its repository.")
+            raise WalktuneError(f"the demo model {DEMO_MODEL} is missing; reinstall walktune.")
         _run_tune(f"{DEMO_MODEL}:log_posterior", None, None, [], None, None, seed, out, None, 400, False, quiet,
                   report=True, overwrite=overwrite, command="walktune demo")
 

@@ -8,14 +8,17 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 import numpy as np
-from rich.console import Console
+from rich.console import Console, Group
 from rich.panel import Panel
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 from rich.table import Table
 from rich.text import Text
 
 from . import theory
+from .advice import THINNING_ESS_LOSS
 from .constants import CAUTION
+from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS
+from .plaintext import duration, mean_with_mcse
 from .recommend import format_factor
 
 if TYPE_CHECKING:  # for annotations only: showing an inspection needs no tuning code
@@ -64,6 +67,76 @@ class StageProgress:
         self.progress.update(self.tasks[stage], completed=min(done, total), total=total)
 
 
+def _needs(columns: list, rows: list) -> int:
+    """Width of a boxed table whose cells (and headers) are kept whole on one line."""
+    def length(cell) -> int:
+        return (cell if isinstance(cell, Text) else Text(str(cell))).cell_len
+
+    widest = [max([length(header)] + [length(row[i]) for row in rows]) for i, (header, _) in enumerate(columns)]
+    return sum(widest) + 3 * len(columns) + 1  # one space of padding each side, a border between columns
+
+
+def _column_groups(columns: list, rows: list, width: int) -> list | None:
+    """Consecutive groups of columns after the first that fit ``width`` beside it; None when one column cannot."""
+    groups, current = [], []
+    for index in range(1, len(columns)):
+        trial = current + [index]
+        if _needs([columns[i] for i in [0, *trial]], [[row[i] for i in [0, *trial]] for row in rows]) <= width:
+            current = trial
+        elif current:
+            groups.append(current)
+            current = [index]
+            if _needs([columns[0], columns[index]], [[row[0], row[index]] for row in rows]) > width:
+                return None
+        else:
+            return None
+    return groups + [current] if current else groups
+
+
+def _plain_table(title, columns: list, rows: list, caption) -> Table:
+    table = Table(title=title, title_justify="left", caption=caption, caption_justify="left")
+    for header, justify in columns:
+        table.add_column(header, justify=justify, no_wrap=True)
+    for row in rows:
+        table.add_row(*row)
+    return table
+
+
+def fitted_table(title: str, columns: list, rows: list, width: int | None, caption: str | None = None):
+    """A table of ``columns`` (header, justify) and ``rows``, laid out to fit ``width`` columns.
+
+    Every cell is kept whole (no wrapping inside a value): side by side when the
+    terminal is wide enough; else the columns in stacked tables, each repeating
+    the first column, in their order of importance; else one block per row, each
+    value under its header. A narrow or piped terminal (80 columns) thus still
+    shows every value in full. Returns a rich Table, or a Group of them.
+    """
+    if width is None or _needs(columns, rows) <= width:
+        return _plain_table(title, columns, rows, caption)
+    groups = _column_groups(columns, rows, width)
+    if groups is not None and len(groups) <= 3:
+        parts = []
+        for number, group in enumerate(groups):
+            keep = [0, *group]
+            parts.append(_plain_table(title if number == 0 else None, [columns[i] for i in keep],
+                                      [[row[i] for i in keep] for row in rows], None))
+        return Group(*parts, *([Text(caption)] if caption else []))
+    vertical = Table(title=title, title_justify="left", caption=caption, caption_justify="left", show_header=False,
+                     show_lines=True, expand=True)
+    vertical.add_column("what", style="bold", no_wrap=True)
+    vertical.add_column("value", ratio=1)
+    for row in rows:
+        label = row[0] if isinstance(row[0], Text) else Text(str(row[0]), style="bold")
+        lines = Text()
+        for (header, _), cell in zip(columns[1:], row[1:]):
+            lines.append(f"{header}: ", style="dim")
+            lines.append(cell if isinstance(cell, Text) else Text(str(cell)))
+            lines.append("\n")
+        lines.rstrip()
+        vertical.add_row(label, lines)
+    return vertical
+
+
 def _fmt(x: float, digits: int = 3) -> str:
     if x is None or not np.isfinite(x):
         return "n/a"
@@ -71,17 +144,10 @@ def _fmt(x: float, digits: int = 3) -> str:
 
 
 def _hours(evaluations: float, seconds_per_evaluation: float) -> str:
-    seconds = evaluations * seconds_per_evaluation
-    if not np.isfinite(seconds):
-        return "n/a"
-    if seconds < 120:
-        return f"{seconds:.1f} s"
-    if seconds < 7200:
-        return f"{seconds / 60:.1f} min"
-    return f"{seconds / 3600:.1f} h"
+    return duration(evaluations * seconds_per_evaluation)
 
 
-def posterior_table(result: TuneResult) -> Table:
+def posterior_table(result: TuneResult, width: int | None = None) -> Table:
     """Mean, MCSE, sd and R-hat, all from the draws of one run: the recommended one."""
     run = result.posterior_run
     rows = {row.proposal: row for row in result.comparison}
@@ -89,33 +155,30 @@ def posterior_table(result: TuneResult) -> Table:
     title = f"Posterior (mean, MCSE, sd and R-hat from the {run} fixed-proposal run{shape})"
     if result.posterior_rhat is not None and not result.converged:
         title += f"\nNOT CONVERGED: R-hat up to {np.nanmax(result.posterior_rhat):.3g} (below 1.01 wanted); do not trust these numbers"
-    table = Table(title=title, title_justify="left")
-    for column, justify in [
-        ("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
-        ("step size", "right"), ("R^2 by others", "right"),
-    ]:
-        table.add_column(column, justify=justify)
+    columns = [("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
+               ("step", "right"), ("R^2 others", "right")]
     sd = result.posterior_sd if result.posterior_sd is not None else result.structure.sd
+    table_rows = []
     for i, name in enumerate(result.parameter_names):
         rhat = result.posterior_rhat[i] if result.posterior_rhat is not None else float("nan")
         flag = "" if rhat <= 1.01 else " !"
-        table.add_row(
+        table_rows.append([
             name, _fmt(result.posterior_mean[i], 5), _fmt(result.posterior_mean_mcse[i], 2), _fmt(sd[i]),
             Text(f"{rhat:.3f}{flag}", style="bold red" if flag else ""),
             _fmt(result.step_sizes[i]), f"{result.structure.determined_by_others[i]:.3f}",
-        )
-    table.caption = ("step size: tuned per-parameter proposal sd; R^2 by others: from the pilot's covariance. "
-                     "! R-hat above 1.01: the chains disagree.")
-    return table
+        ])
+    caption = ("step: tuned per-parameter proposal sd; R^2 others: how well the other parameters predict it (pilot's "
+               "covariance). ! R-hat above 1.01: the chains disagree.")
+    return fitted_table(title, columns, table_rows, width, caption)
 
 
 def geometry_table(result: TuneResult, max_rows: int = 5) -> Table:
     return geometry_table_from(result.structure, result.parameter_names, max_rows)
 
 
-def geometry_table_from(s, names, max_rows: int = 5) -> Table:
-    table = Table(title="Geometry (from the pilot's covariance estimate)", title_justify="left", show_header=False)
-    table.add_column("what", style="bold")
+def geometry_table_from(s, names, max_rows: int = 5, source: str = "the pilot's covariance estimate") -> Table:
+    table = Table(title=f"Geometry (from {source})", title_justify="left", show_header=False)
+    table.add_column("what", style="bold", no_wrap=True)
     table.add_column("value")
     table.add_row("effective dimension", f"{s.effective_dimension:.2f} of {len(names)} (participation ratio)")
     table.add_row("spectrum", f"correlation eigenvalues span {s.decades:.1f} decades")
@@ -140,7 +203,7 @@ def _predicted(slowdown: dict) -> str:
 
 def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     table = Table(title="Advice", title_justify="left", show_header=False)
-    table.add_column("what", style="bold")
+    table.add_column("what", style="bold", no_wrap=True)
     table.add_column("advice")
     rec = result.recommended
     rows = {row.proposal: row for row in result.comparison}
@@ -148,7 +211,7 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
         worth = result.evaluations_needed().get(rec.proposal, float("nan"))
         saved = f" Saved as {output_folder}/recommended_proposal.npy and .csv" if output_folder else ""
         if rec.coordinates != "parameters":
-            saved += " (in the sampler coordinates of reparam.json)"
+            saved += " (in the sampler coordinates of sampling_map.json)"
         table.add_row(Text("RECOMMENDED", style="bold green"), Text(
             f"{rec.message} For ESS {result.target_ess}: about {_fmt(worth, 3)} evaluations "
             f"(~{_hours(worth, result.seconds_per_evaluation)}).{saved}", style="bold"))
@@ -174,8 +237,8 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     reparam = result.reparam
     if reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
         chosen = ", ".join(f"{t.kind}({t.name})" for t in reparam.transforms if t.kind != "identity")
-        table.add_row("new coordinates", f"sample z = Q^T W^-1 (T(theta) - m) with T: {chosen}; the map is in reparam.json "
-                      "(walktune.load_reparam); see the transformed-rotated row below")
+        table.add_row("new coordinates", f"sample z = Q^T W^-1 (T(theta) - m) with T: {chosen}; the map is in sampling_map.json "
+                      "(walktune.load_sampling_map); see the transformed-rotated row below")
     else:
         table.add_row("rotated basis", "z = W^-1 (theta - mean), W = Cholesky factor of the posterior covariance (advice.json: rotation)")
     if reparam is not None and reparam.prior_variance_ratio is not None:
@@ -185,7 +248,8 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     table.add_row(
         "thinning",
         "keep every draw; thinning adds no information"
-        + (f" (to save storage, every {result.thinning}th draw loses little)" if result.thinning > 1 else ""),
+        + (f" (to save storage, keeping one draw in {result.thinning} keeps at least "
+           f"{1 - THINNING_ESS_LOSS:.0%} of the ESS)" if result.thinning > 1 else ""),
     )
     needed = result.evaluations_needed()
     for row in result.comparison:
@@ -197,39 +261,49 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
     return table
 
 
-def comparison_table(result: TuneResult) -> Table:
-    table = Table(title="Measured: fixed-proposal runs on equal budgets from the pilot's end states", title_justify="left")
-    for column, justify in [
-        ("proposal", "left"), ("accept", "right"), ("min ESS /1k eval", "right"),
-        ("median ESS /1k eval", "right"), ("evals", "right"), ("speed-up", "right"), ("max R-hat", "right"),
-    ]:
-        table.add_column(column, justify=justify)
+def comparison_table(result: TuneResult, width: int | None = None) -> Table:
+    """The proof runs side by side; the notes below explain the marks."""
+    rows = result.comparison
+    budgets = sorted({row.evaluations for row in rows})
+    budget = f"{budgets[0]} evaluations each" if len(budgets) == 1 else "evaluations in the evals column"
+    title = f"Measured: fixed-proposal runs on equal budgets ({budget}) from the pilot's end states"
+    columns = [("proposal", "left"), ("accept", "right"), ("min ESS", "right"), ("med ESS", "right"),
+               ("speed-up", "right"), ("R-hat max", "right")]
+    if len(budgets) > 1:
+        columns.insert(4, ("evals", "right"))
     chosen = result.recommended.proposal if result.recommended is not None else None
-    for row in result.comparison:
-        mark = (" <- recommended" if row.proposal == chosen else "") + ("" if row.ess_reliable else " *")
+    table_rows, notes = [], []
+    for row in rows:
+        mark = ("> " if row.proposal == chosen else "") + row.proposal + ("" if row.ess_reliable else " *")
         if not row.mixed:
-            mark += " (not mixed)"
-        table.add_row(
-            row.proposal + mark, f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
-            str(row.evaluations), speedup_cell(row), _fmt(row.max_rhat, 4),
-        )
-    table.caption = ("* ESS rests on fewer than 50 autocorrelation times per chain. >= : a lower bound (the baseline's "
-                     "chains had not mixed at all, so its ESS is too high); <= : an upper bound; ~ : rough, as likely "
-                     "too high as too low.")
-    return table
+            mark += " !"
+        cells = [mark, f"{row.acceptance:.2f}", _fmt(row.ess_per_1000), _fmt(row.median_ess_per_1000),
+                 speedup_cell(row, short=True), _fmt(row.max_rhat, 4)]
+        if len(budgets) > 1:
+            cells.insert(4, str(row.evaluations))
+        table_rows.append(cells)
+        if getattr(row, "speedup_kind", "measured") == "imprecise":
+            notes.append(f"{row.proposal}: {speedup_cell(row)}")
+    caption = (f"> recommended. * imprecise ESS: fewer than {IACTS_FOR_PRECISE_ESS} autocorrelation times over the "
+               f"chains (error above {IACT_RELATIVE_ERROR:.0%}). ! not mixed. min/med ESS: smallest and median over parameters, per 1000 evaluations. >= : a lower bound (the baseline's chains had "
+               "not mixed at all, so its ESS is too high); <= : an upper bound; ~ : imprecise, as likely too high as too low."
+               + "".join(f"\n{note}" for note in notes))
+    return fitted_table(title, columns, table_rows, width, caption)
 
 
-def speedup_cell(row) -> str:
-    """A comparison row's speed-up as measured, a bound, or rough with the evaluations that would settle it."""
+def speedup_cell(row, short: bool = False) -> str:
+    """A comparison row's speed-up as measured, a bound, or imprecise with the evaluations that would settle it."""
     value = format_factor(row.speedup)
     kind = getattr(row, "speedup_kind", "measured")
     if kind == "lower-bound":
         return ">= " + value
     if kind == "upper-bound":
         return "<= " + value
-    if kind == "rough":
+    if kind == "imprecise":
+        if short:
+            return "~" + value
         settle = row.evaluations_to_settle
-        return f"~{value} (rough; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
+        return f"~{value} (imprecise; " + (f"~{_fmt(settle, 2)} evals in all, over both runs, would settle it)" if settle else "a run has not mixed)")
     return value
 
 
@@ -237,8 +311,8 @@ def findings_table(result) -> Table | Text:
     if not result.findings:
         return Text("No findings: nothing unusual was seen (which does not prove there is nothing).")
     table = Table(title="Findings", title_justify="left")
-    table.add_column("severity")
-    table.add_column("kind")
+    table.add_column("severity", no_wrap=True)
+    table.add_column("kind", no_wrap=True)
     table.add_column("what it means", ratio=1)
     for finding in result.findings:
         style = SEVERITY_STYLE[finding.severity]
@@ -251,7 +325,7 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
     header = (
         f"{label}: {d} parameters, {result.total_evaluations} evaluations "
         f"({result.pilot_evaluations} for the mode and pilot), "
-        f"{result.seconds_per_evaluation * 1e3:.3g} ms per evaluation"
+        f"{duration(result.seconds_per_evaluation)} per evaluation"
     )
     if result.worker_busy is not None:
         header += f"; workers busy {result.worker_busy:.0%} of the evaluation time"
@@ -259,8 +333,8 @@ def render(console: Console, result: TuneResult, label: str, output_folder: str 
         header += " [PARTIAL: interrupted]"
     console.print(Panel(header, title="walktune", expand=False))
     console.print(advice_table(result, output_folder))
-    console.print(comparison_table(result))
-    console.print(posterior_table(result))
+    console.print(comparison_table(result, console.width))
+    console.print(posterior_table(result, console.width))
     console.print(geometry_table(result))
     console.print(findings_table(result))
     _list_outputs(console, output_folder)
@@ -315,28 +389,36 @@ def _list_outputs(console: Console, output_folder: str | None) -> None:
     console.print(f"Outputs in [bold]{output_folder}[/bold]: {', '.join(files)}")
 
 
-VERDICT_STYLE = {"ok": "green", "rough": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
+VERDICT_STYLE = {"ok": "green", "imprecise-ess": "cyan", "too-few-draws": "yellow", "not-converged": "bold red", "stuck-chain": "bold red"}
 
 
-def inspection_table(result) -> Table:
+def inspection_table(result, width: int | None = None) -> Table:
+    """Per parameter, what to do first (verdict, draws still needed), then the numbers behind it.
+
+    Columns in order of weight for the decision: the verdict; the draws still
+    needed for the ESS wanted at the observed efficiency; the mean with its
+    MCSE; bulk ESS and R-hat, on which the verdict rests; the IACT; tail ESS and sd.
+    """
     s = result.summary
-    table = Table(
-        title=f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps",
-        title_justify="left",
-    )
-    for column in ("parameter", "mean", "sd", "MCSE", "bulk ESS", "tail ESS", "R-hat", "IACT", "more draws", "verdict"):
-        table.add_column(column, justify="left" if column in ("parameter", "verdict") else "right")
+    title = (f"Chains: {s.n_chains} x {s.n_draws} draws; state changes in {result.move_rate:.1%} of steps; "
+             f"ESS wanted {result.target_ess:g}")
+    columns = [("parameter", "left"), ("verdict", "left"), ("draws needed", "right"), ("mean +/- MCSE", "right"),
+               ("ESS", "right"), ("R-hat", "right"), ("IACT", "right"), ("tail ESS", "right"), ("sd", "right")]
+    rows, notes = [], []
     for i, name in enumerate(result.parameter_names):
-        rough = "~" if s.bulk_too_short[i] else ""
+        imprecise = "~" if s.bulk_too_short[i] else ""
         verdict = result.verdicts[i]
-        table.add_row(
-            name, _fmt(s.mean[i], 5), _fmt(s.sd[i]), _fmt(s.mcse[i], 2), rough + _fmt(s.bulk_ess[i], 4),
-            _fmt(s.tail_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(result.more_draws_observed[i], 3),
-            Text(verdict.verdict if verdict.verdict == "ok" else f"{verdict.verdict}: {verdict.reason}",
-                 style=VERDICT_STYLE.get(verdict.verdict, "")),
-        )
-    table.caption = "~ rough: fewer than 50 IACTs per chain. 'more draws' at the observed efficiency for the ESS wanted."
-    return table
+        more = result.more_draws_observed[i]
+        rows.append([
+            name, Text(verdict.verdict, style=VERDICT_STYLE.get(verdict.verdict, "")),
+            "none" if more == 0 else "+" + _fmt(more, 3), mean_with_mcse(s.mean[i], s.mcse[i]),
+            imprecise + _fmt(s.bulk_ess[i], 4), f"{s.rhat[i]:.3f}", _fmt(s.iact[i]), _fmt(s.tail_ess[i], 4), _fmt(s.sd[i]),
+        ])
+        if verdict.verdict != "ok":
+            notes.append(f"{name}: {verdict.reason}")
+    caption = ("draws needed: more draws in all chains for the ESS wanted, at the observed efficiency. ESS: bulk ESS; "
+               f"~ imprecise: fewer than {IACTS_FOR_PRECISE_ESS} IACTs over the chains (error above {IACT_RELATIVE_ERROR:.0%})." + "".join(f"\n{note}" for note in notes))
+    return fitted_table(title, columns, rows, width, caption)
 
 
 def inspection_advice_table(result) -> Table:
@@ -364,10 +446,11 @@ def inspection_advice_table(result) -> Table:
 
 
 def render_inspection(console: Console, result, output_folder: str | None) -> None:
-    console.print(Panel(f"inspected: {', '.join(result.sources) or 'array'}", title="walktune", expand=False))
-    console.print(inspection_table(result))
+    run = f", run {result.run}" if getattr(result, "run", None) else ""
+    console.print(Panel(f"inspected: {', '.join(result.sources) or 'array'}{run}", title="walktune", expand=False))
+    console.print(inspection_table(result, console.width))
     console.print(inspection_advice_table(result))
-    console.print(geometry_table_from(result.structure, result.parameter_names))
+    console.print(geometry_table_from(result.structure, result.parameter_names, source="the covariance of these draws"))
     console.print(findings_table(result))
     _list_outputs(console, output_folder)
     console.print(Panel(Text(CAUTION), title="caution", border_style="yellow", expand=False))

@@ -12,8 +12,8 @@ the ESS of split chains (each chain cut in two halves), as Vehtari et al.
 
 Every function takes draws shaped (chains, draws, params), (draws, params) or
 (draws,) and returns one value per parameter. Estimates that rest on too few
-draws (fewer than :data:`MIN_DRAWS_PER_IACT` autocorrelation times per chain)
-come back as a :class:`Estimate` whose ``too_short`` mask flags them.
+draws (fewer than :data:`IACTS_FOR_PRECISE_ESS` autocorrelation times over all
+chains) come back as a :class:`Estimate` whose ``too_short`` mask flags them.
 
 References
 ----------
@@ -34,9 +34,19 @@ from scipy import fft, special
 
 from .errors import WalktuneError
 
-#: A chain shorter than this many autocorrelation times gives an estimate that
-#: cannot be trusted (common practice: Sokal 1997 suggests at least about 50).
-MIN_DRAWS_PER_IACT = 50
+#: Window of the IACT estimate below, in autocorrelation times: Geyer's initial
+#: monotone sequence on AR(1) chains sums about two (by simulation,
+#: tests/test_diagnostics.py); 2.5 to be safe.
+WINDOW_PER_IACT = 2.5
+#: The relative error (one standard deviation) accepted in an IACT, hence in an ESS.
+IACT_RELATIVE_ERROR = 0.2
+#: Draws over all chains, in IACTs, for that error. The variance of a windowed
+#: IACT estimate is 2 (2M + 1) / S tau^2 for S draws and a window M (Sokal
+#: 1997); with M = WINDOW_PER_IACT tau the relative error is below
+#: IACT_RELATIVE_ERROR once S >= 4 WINDOW_PER_IACT tau / IACT_RELATIVE_ERROR^2
+#: (250 tau). Measured on AR(1) chains with closed-form IACT (1 + phi) / (1 - phi),
+#: 1 to 8 chains: 0.18 to 0.20 at 250 IACTs (docs/method.md).
+IACTS_FOR_PRECISE_ESS = round(4 * WINDOW_PER_IACT / IACT_RELATIVE_ERROR**2)
 
 __all__ = [
     "Estimate",
@@ -48,13 +58,15 @@ __all__ = [
     "tail_ess",
     "rhat",
     "split_rhat",
-    "mcse_mean",
+    "mean_mcse",
     "esjd",
     "acceptance_rate",
-    "summary",
-    "summary_of_blocks",
-    "Summary",
-    "MIN_DRAWS_PER_IACT",
+    "measure_chains",
+    "measure_chain_blocks",
+    "ChainMeasures",
+    "IACTS_FOR_PRECISE_ESS",
+    "IACT_RELATIVE_ERROR",
+    "WINDOW_PER_IACT",
 ]
 
 
@@ -62,8 +74,9 @@ class Estimate(np.ndarray):
     """One value per parameter, with a flag where the chains are too short.
 
     Behaves as a float array. ``too_short[i]`` is true when the value for
-    parameter ``i`` rests on fewer than ``MIN_DRAWS_PER_IACT`` autocorrelation
-    times per chain (or the chains are constant), so it is a rough guess only.
+    parameter ``i`` rests on fewer than ``IACTS_FOR_PRECISE_ESS`` autocorrelation
+    times over all chains (or the chains are constant), so its relative error is
+    above ``IACT_RELATIVE_ERROR``.
     """
 
     def __new__(cls, values, too_short):
@@ -178,7 +191,7 @@ def _ess_of(chains: np.ndarray) -> Estimate:
     rho, constant = _combined_rho(chains)
     tau = _tau_from_rho(rho, m * n)
     ess_values = np.where(constant, np.nan, m * n / tau)
-    too_short = constant | (n < MIN_DRAWS_PER_IACT * tau)
+    too_short = constant | (m * n < IACTS_FOR_PRECISE_ESS * tau)
     return Estimate(ess_values, too_short)
 
 
@@ -211,7 +224,7 @@ def ess(draws, split: bool = False) -> Estimate:
     split : bool, default False
         Split every chain in two halves first, as Vehtari et al. (2021) do for
         every ESS: a chain that drifts then disagrees with itself, which lowers
-        the ESS. This is the ESS behind :func:`mcse_mean`. Unsplit, the value
+        the ESS. This is the ESS behind :func:`mean_mcse`. Unsplit, the value
         describes a stationary chain's autocorrelation (what the pilot needs).
 
     Returns
@@ -311,7 +324,7 @@ def rhat(draws) -> np.ndarray:
     return np.fmax(bulk, folded)
 
 
-def mcse_mean(draws) -> Estimate:
+def mean_mcse(draws) -> Estimate:
     """Monte Carlo standard error of the posterior mean: ``sd / sqrt(ESS)``, shape (params,).
 
     ``sd`` is the standard deviation of all draws pooled; ``ESS`` is the ESS
@@ -343,14 +356,14 @@ def acceptance_rate(draws) -> float:
 
 
 @dataclass(frozen=True)
-class Summary:
+class ChainMeasures:
     """All per-parameter diagnostics of a set of chains, computed in one pass.
 
     Every array has shape (params,), except ``chain_sd`` (chains, params).
     ``ess``, ``iact`` and ``mcse`` come from split chains (``ess(draws,
     split=True)``), so ``mcse = sd / sqrt(ess)`` and ``iact = S / ess`` agree
     with each other. ``*_too_short`` flag estimates resting on fewer than
-    :data:`MIN_DRAWS_PER_IACT` autocorrelation times per (half-)chain.
+    :data:`IACTS_FOR_PRECISE_ESS` autocorrelation times over all chains.
     """
 
     mean: np.ndarray
@@ -369,7 +382,7 @@ class Summary:
     n_draws: int
 
 
-def _summary_block(chains: np.ndarray) -> dict:
+def _measure_block(chains: np.ndarray) -> dict:
     split = _split(chains)
     raw = _ess_of(split)  # the ESS of the mean, behind the MCSE and the IACT (split chains)
     ranked = _rank_normalise(split)
@@ -381,7 +394,7 @@ def _summary_block(chains: np.ndarray) -> dict:
     folded_rhat = _psrf(_rank_normalise(np.abs(split - median[None, None, :])))
     quantiles = np.quantile(pooled, [0.05, 0.95], axis=0)
     tails = [_ess_of((split <= q[None, None, :]).astype(float)) for q in quantiles]
-    everything = chains.reshape(-1, chains.shape[2])  # mean and sd of all draws, as mcse_mean has them
+    everything = chains.reshape(-1, chains.shape[2])  # mean and sd of all draws, as mean_mcse has them
     sd = everything.std(axis=0, ddof=1)
     return dict(
         mean=everything.mean(axis=0),
@@ -399,8 +412,8 @@ def _summary_block(chains: np.ndarray) -> dict:
     )
 
 
-def summary_of_blocks(blocks, n_chains: int, n_draws: int) -> Summary:
-    """:func:`summary` from parameter blocks read one at a time.
+def measure_chain_blocks(blocks, n_chains: int, n_draws: int) -> ChainMeasures:
+    """:func:`measure_chains` from parameter blocks read one at a time.
 
     Parameters
     ----------
@@ -412,8 +425,8 @@ def summary_of_blocks(blocks, n_chains: int, n_draws: int) -> Summary:
 
     Returns
     -------
-    Summary
-        Per parameter, the same values as ``summary`` of the whole array.
+    ChainMeasures
+        Per parameter, the same values as ``measure_chains`` of the whole array.
     """
     if n_draws < 4:
         raise WalktuneError(f"each chain needs at least 4 draws for diagnostics; got {n_draws}.")
@@ -421,12 +434,12 @@ def summary_of_blocks(blocks, n_chains: int, n_draws: int) -> Summary:
     for chunk in blocks:
         if not np.all(np.isfinite(chunk)):
             raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
-        parts.append(_summary_block(chunk))
+        parts.append(_measure_block(chunk))
     fields = {key: np.concatenate([part[key] for part in parts], axis=-1) for key in parts[0]}
-    return Summary(n_chains=n_chains, n_draws=n_draws, **fields)
+    return ChainMeasures(n_chains=n_chains, n_draws=n_draws, **fields)
 
 
-def summary(draws, block: int = 8) -> Summary:
+def measure_chains(draws, block: int = 8) -> ChainMeasures:
     """Mean, sd, MCSE, ESS, IACT, bulk and tail ESS and R-hat for every parameter.
 
     Computes parameters ``block`` at a time, so a large (possibly memory-mapped)
@@ -440,4 +453,4 @@ def summary(draws, block: int = 8) -> Summary:
         source = as_chains(draws)
     m, n, p = source.shape
     blocks = (np.array(source[:, :, start : start + block], dtype=float) for start in range(0, p, block))
-    return summary_of_blocks(blocks, m, n)
+    return measure_chain_blocks(blocks, m, n)

@@ -9,7 +9,7 @@ Output folder of a tuning run:
   recommended option (advice.json ``recommended``), whichever it is: the tuned
   covariance, per-parameter steps as a diagonal covariance, one step size, your
   current proposal, or, for the runs in new coordinates, the covariance in the
-  sampler coordinates of ``reparam.json`` (headed ``z[i]``);
+  sampler coordinates of ``sampling_map.json`` (headed ``z[i]``);
 * ``draws.npz``: the proof runs' draws, one array per proposal shaped (chains, steps, d),
   the pilot's stages one after another (``pilot``), plus ``parameter_names``.
 """
@@ -59,7 +59,7 @@ def result_files(result, produced_by: dict | None = None) -> dict:
         files["recommended_proposal.npy"] = npy_bytes(result.recommended_proposal)
         files["recommended_proposal.csv"] = csv_bytes(result.recommended_proposal, header)
     if result.reparam is not None:
-        files["reparam.json"] = json_bytes(result.reparam.to_dict())
+        files["sampling_map.json"] = json_bytes(result.reparam.to_dict())
     return files
 
 
@@ -148,7 +148,7 @@ def export_advice(source, destination, fmt: str, recommended: bool = False) -> P
     recommended : bool, default=False
         Export the recommended option's proposal (advice.json ``recommended``)
         instead of the tuned covariance; the json and python forms then also name
-        it and the coordinates it runs in (``reparam.json`` for the new coordinates,
+        it and the coordinates it runs in (``sampling_map.json`` for the new coordinates,
         whose columns are ``z[i]``). Step sizes are given only for a diagonal proposal.
     """
     if fmt not in EXPORT_FORMATS:

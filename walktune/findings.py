@@ -19,10 +19,12 @@ source is named):
   than 1.5 times off (either way) the acceptance expected on a Gaussian with the
   pilot's covariance (a rule of thumb): the posterior is not Gaussian in shape,
   and the measured figure is the one to trust.
-* ``short-chains``: the recommended run's ESS rests on fewer than 50 autocorrelation times per chain.
+* ``imprecise-ess``: the recommended run's ESS rests on fewer than
+  ``diagnostics.IACTS_FOR_PRECISE_ESS`` autocorrelation times over its chains, so
+  its relative error is above ``diagnostics.IACT_RELATIVE_ERROR``.
 * ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
 
-``not-converged`` and ``short-chains`` are about the recommended run, the one
+``not-converged`` and ``imprecise-ess`` are about the recommended run, the one
 the posterior table comes from; ``pilot_converged`` in advice.json is false
 whenever ``not-converged`` or ``pilot-unsettled`` is raised.
 """
@@ -32,6 +34,8 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
+
+from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS
 
 SEVERITIES = ("info", "warn", "critical")
 
@@ -191,7 +195,7 @@ def prior_dominated_findings(posterior_variance, prior_variance, names, informed
                 "info",
                 [],
                 f"only {informed} of {dim} directions are informed by the data; the other {dim - informed} "
-                "combinations stay close to the prior (reparam.json holds them; the reduced-basis sampler uses them).",
+                "combinations stay close to the prior (sampling_map.json holds them; the reduced-basis sampler uses them).",
                 {"informed_dimension": informed, "dimension": dim},
             )
         )
@@ -199,15 +203,17 @@ def prior_dominated_findings(posterior_variance, prior_variance, names, informed
 
 
 def short_chain_findings(row, steps: int) -> list:
-    """``short-chains`` when the recommended run's ESS rests on too few autocorrelation times."""
+    """``imprecise-ess`` when the recommended run's ESS rests on too few autocorrelation times."""
     if row.ess_reliable:
         return []
     settle = f" about {row.settle_evaluations:,} evaluations for that run would settle it." if row.settle_evaluations else ""
     return [
         Finding(
-            "short-chains", "warn", [],
-            f"the {row.proposal} run was too short for a trustworthy ESS (fewer than 50 autocorrelation times per "
-            f"chain); its ESS and the speed-ups resting on it are rough. Raise the budget:{settle or ' its IACT is unknown.'}",
+            "imprecise-ess", "warn", [],
+            f"the {row.proposal} run was too short for a precise ESS (fewer than {IACTS_FOR_PRECISE_ESS} "
+            f"autocorrelation times over its chains, so the ESS may be off by more than "
+            f"{IACT_RELATIVE_ERROR:.0%}); the speed-ups resting on it are imprecise. Raise the budget:"
+            f"{settle or ' its IACT is unknown.'}",
             {"proposal": row.proposal, "iact_max": row.iact_max, "steps": steps,
              "evaluations_to_settle": row.settle_evaluations},
         )

@@ -33,7 +33,7 @@ from ._validation import as_covariance, as_float_array, check_positive_number
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
 from .chainfiles import ChainData, check_layout, memory_map_of, orient, release_pages
-from .diagnostics import Summary, summary_of_blocks
+from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS, ChainMeasures, measure_chain_blocks
 from .errors import WalktuneError
 from .findings import Finding, conditioning_findings, convergence_findings, correlation_findings
 from .constants import ADVICE_SCHEMA as SCHEMA, CAUTION, DEFAULT_TARGET_ESS
@@ -57,7 +57,7 @@ DOUBTFUL_DRAWS = 10
 @dataclass
 class ParameterVerdict:
     name: str
-    verdict: str  # "ok", "not-converged", "too-few-draws", "stuck-chain", "rough"
+    verdict: str  # "ok", "not-converged", "too-few-draws", "stuck-chain", "imprecise-ess"
     reason: str
 
 
@@ -68,7 +68,7 @@ class InspectionResult:
     Attributes
     ----------
     parameter_names : list of str
-    summary : walktune.diagnostics.Summary
+    summary : walktune.diagnostics.ChainMeasures
     move_rate : float
         Share of steps at which the state changed, over all chains.
     chain_move_rate : ndarray of shape (chains,)
@@ -84,7 +84,7 @@ class InspectionResult:
     """
 
     parameter_names: list
-    summary: Summary
+    summary: ChainMeasures
     move_rate: float
     chain_move_rate: np.ndarray
     parameter_move_rate: np.ndarray
@@ -102,6 +102,18 @@ class InspectionResult:
     thin: int = 1
     chain_column: str | None = None
     layout: str | None = None
+    run: str | None = None
+
+    def __repr__(self) -> str:
+        from .plaintext import inspection_repr
+
+        return inspection_repr(self)
+
+    def advice_text(self) -> str:
+        """The advice as plain text (for notebooks and logs): verdicts, draws needed, proposal, findings."""
+        from .plaintext import inspection_advice
+
+        return inspection_advice(self)
 
     def to_dict(self) -> dict:
         """advice.json payload, marked ``"source": "inspection"``."""
@@ -143,6 +155,7 @@ class InspectionResult:
                 "warmup_dropped": self.warmup,
                 "chain_column": self.chain_column,
                 "layout": self.layout,
+                "run": self.run,
                 "thin": self.thin,
                 "acceptance_from_draws": self.move_rate,
                 "chain_acceptance_from_draws": self.chain_move_rate.tolist(),
@@ -315,7 +328,7 @@ def _moments_and_moves(draws: _Selection):
     return mean_shifted + shift, 0.5 * (cov + cov.T), moved / (n - 1), changed / (m * (n - 1))
 
 
-def _verdicts(names, s: Summary, chain_moves, needed_ess) -> list:
+def _verdicts(names, s: ChainMeasures, chain_moves, needed_ess) -> list:
     stuck_chains = np.flatnonzero(chain_moves < STUCK_MOVE_RATE)
     pooled_sd = np.where(s.sd > 0, s.sd, 1.0)
     flat_chains = s.chain_sd < 1e-3 * pooled_sd[None, :]  # (chains, params)
@@ -331,13 +344,14 @@ def _verdicts(names, s: Summary, chain_moves, needed_ess) -> list:
                 ParameterVerdict(name, "too-few-draws", f"bulk ESS {s.bulk_ess[i]:.0f} < {needed_ess[i]:.0f} needed")
             )
         elif s.bulk_too_short[i] or s.tail_too_short[i]:
-            out.append(ParameterVerdict(name, "rough", "fewer than 50 IACTs per chain: ESS is rough"))
+            out.append(ParameterVerdict(name, "imprecise-ess", f"fewer than {IACTS_FOR_PRECISE_ESS} IACTs in all: "
+                                        f"the ESS may be off by more than {IACT_RELATIVE_ERROR:.0%}"))
         else:
             out.append(ParameterVerdict(name, "ok", "no problem seen (which does not prove convergence)"))
     return out
 
 
-def _inspection_findings(structure, s: Summary, names: list, chain_moves: np.ndarray, rate: float) -> list:
+def _inspection_findings(structure, s: ChainMeasures, names: list, chain_moves: np.ndarray, rate: float) -> list:
     """Structure, convergence, stuck chains, acceptance far from optimal, and too-short chains."""
     m, d = chain_moves.shape[0], len(names)
     findings: list = []
@@ -366,8 +380,9 @@ def _inspection_findings(structure, s: Summary, names: list, chain_moves: np.nda
     if np.any(s.bulk_too_short):
         findings.append(
             Finding(
-                "short-chains", "warn", [names[i] for i in np.flatnonzero(s.bulk_too_short)],
-                "these parameters have fewer than 50 autocorrelation times per chain: their ESS is rough.",
+                "imprecise-ess", "warn", [names[i] for i in np.flatnonzero(s.bulk_too_short)],
+                f"these parameters have fewer than {IACTS_FOR_PRECISE_ESS} autocorrelation times over all chains: "
+                f"their ESS may be off by more than {IACT_RELATIVE_ERROR:.0%}.",
                 {},
             )
         )
@@ -462,6 +477,7 @@ def inspect(
     sources=None,
     chain_column: str | None = None,
     layout: str | None = None,
+    run: str | None = None,
 ) -> InspectionResult:
     """Diagnose existing draws and advise a proposal.
 
@@ -493,6 +509,8 @@ def inspect(
         (chains, draws, params) and 2-D as (draws, params), and a shape that makes
         that reading doubtful (more chains or parameters than draws, or several
         chains of fewer than :data:`DOUBTFUL_DRAWS` draws) is refused with a WalktuneError.
+    run : str, optional
+        The run of a ``walktune tune`` folder the draws are (recorded likewise).
     """
     check_positive_number(target_ess, "target_ess")
     if target_mcse is not None:
@@ -514,7 +532,7 @@ def inspect(
         constant = [names[i] for i in np.flatnonzero(sd == 0)]
         listed = ", ".join(constant[:10]) + (f" and {len(constant) - 10} more" if len(constant) > 10 else "")
         raise WalktuneError(f"parameter(s) {listed} never change in any chain; drop them (--params).")
-    s = summary_of_blocks(chosen.slabs(), m, n)
+    s = measure_chain_blocks(chosen.slabs(), m, n)
     structure = analyse(covariance)
     advice = advise(covariance, current=current)
 
@@ -551,4 +569,5 @@ def inspect(
         thin=thin,
         chain_column=chain_column,
         layout=layout,
+        run=run,
     )

@@ -29,7 +29,7 @@ REPORT_FILES = ("report.html",) + tuple(f"{name}.png" for name in FIGURE_NAMES)
 #: Files of a finished run (tune or inspect) and of its report.
 RESULT_FILES = ("advice.json", "proposal_covariance.npy", "proposal_covariance.csv", "step_sizes.csv", "draws.npz",
                 "recommended_proposal.npy", "recommended_proposal.csv",
-                "reparam.json") + REPORT_FILES
+                "sampling_map.json") + REPORT_FILES
 #: Files of an interrupted or failed tuning run.
 INTERRUPTED_FILES = ("checkpoint.npz", "partial-advice.json")
 RUN_FILES = RESULT_FILES + INTERRUPTED_FILES

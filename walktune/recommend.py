@@ -19,7 +19,7 @@ near the number of split chains while the truth ``m n / tau`` is far below it
 (checked by simulation on AR(1) chains with known IACT ``(1 + phi)/(1 - phi)``
 in tests/test_recommend.py). Its efficiency is then an upper bound, and a
 speed-up over it a lower bound. Everywhere else a short run's ESS is as
-likely under- as over-estimated, and a speed-up resting on one is rough.
+likely under- as over-estimated, and a speed-up resting on one is imprecise.
 
 References
 ----------
@@ -34,10 +34,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from .diagnostics import MIN_DRAWS_PER_IACT
-
-#: Window of the IACT estimate, in autocorrelation times (about 2 on AR(1) chains, by simulation; 2.5 to be safe).
-WINDOW_PER_IACT = 2.5
+from .diagnostics import IACTS_FOR_PRECISE_ESS, WINDOW_PER_IACT
 #: Normal quantile for a resolved difference (two-sided, about 95%).
 Z_RESOLVED = 2.0
 #: R-hat far above 1: together with half-chains no longer than one estimated IACT, chains that have not mixed at all.
@@ -69,7 +66,7 @@ def ess_relative_error(iact_max: float, chains: int, steps: int) -> float:
 def not_mixed(iact_max: float, steps: int, max_rhat: float) -> bool:
     """Whether chains of ``steps`` draws have not mixed at all: estimated IACT at least the half-chain length, R-hat far above 1.
 
-    The IACT is estimated on split chains (:func:`walktune.diagnostics.summary`),
+    The IACT is estimated on split chains (:func:`walktune.diagnostics.measure_chains`),
     so it cannot much exceed ``steps / 2``: chains that hardly move reach that cap.
 
     A chain that never moved (no IACT, no R-hat) has not mixed either.
@@ -80,10 +77,10 @@ def not_mixed(iact_max: float, steps: int, max_rhat: float) -> bool:
 
 
 def evaluations_to_settle(iact_max: float, chains: int, steps: int, ess_reliable: bool) -> int:
-    """Evaluations a run needs in all for a reliable ESS (``MIN_DRAWS_PER_IACT`` IACTs per chain); 0 when it has them."""
+    """Evaluations a run needs in all for a precise ESS (``IACTS_FOR_PRECISE_ESS`` IACTs over its chains); 0 when it has them."""
     if ess_reliable or not np.isfinite(iact_max):
         return 0
-    return int(np.ceil(chains * MIN_DRAWS_PER_IACT * iact_max))
+    return int(np.ceil(IACTS_FOR_PRECISE_ESS * iact_max))
 
 
 def speedup_kind(row, baseline) -> tuple[str, int | None]:
@@ -91,7 +88,7 @@ def speedup_kind(row, baseline) -> tuple[str, int | None]:
 
     ``lower-bound`` where the baseline has not mixed at all and this run has a
     reliable ESS; ``upper-bound`` the other way round; ``measured`` where both
-    ESS estimates are reliable; ``rough`` otherwise, with the evaluations both
+    ESS estimates are reliable; ``imprecise`` otherwise, with the evaluations both
     runs need in all for reliable ESS (None when a side has not mixed and no
     IACT is known).
     """
@@ -104,8 +101,8 @@ def speedup_kind(row, baseline) -> tuple[str, int | None]:
     if row.ess_reliable and baseline.ess_reliable and row.mixed and baseline.mixed:
         return "measured", 0
     if not (row.mixed and baseline.mixed):
-        return "rough", None
-    return "rough", row.settle_evaluations + baseline.settle_evaluations
+        return "imprecise", None
+    return "imprecise", row.settle_evaluations + baseline.settle_evaluations
 
 
 def _efficiency(row) -> float:
@@ -158,7 +155,7 @@ class Recommendation:
     evaluations_to_resolve : int or None
         Evaluations per run that would resolve the closest contender (None: none, or equal within 5%).
     coordinates : str
-        ``parameters``, or ``reparam.json`` when the proposal runs in the new coordinates.
+        ``parameters``, or ``sampling_map.json`` when the proposal runs in the new coordinates.
     message : str
         One sentence saying what to use, what it is worth, and how sure that is.
     """
@@ -197,7 +194,7 @@ def recommend(rows: list) -> Recommendation:
     baseline = rows[0]
     contender = max(close, key=lambda row: row.ess_per_1000) if close else None
     to_resolve = _evaluations_to_resolve(chosen, contender) if contender is not None else None
-    coordinates = "reparam.json" if chosen.proposal in ("transformed-rotated", "reduced-basis") else "parameters"
+    coordinates = "sampling_map.json" if chosen.proposal in ("transformed-rotated", "reduced-basis") else "parameters"
     message = _message(chosen, close, baseline, contender, to_resolve)
     return Recommendation(
         proposal=chosen.proposal, keep_current=chosen.proposal == "current", resolved=not close,
@@ -207,8 +204,8 @@ def recommend(rows: list) -> Recommendation:
 
 
 def speedup_text(speedup: float, kind: str) -> str:
-    """``at least 3.2x``, ``at most 0.5x``, ``roughly 1.3x`` or ``2.1x``."""
-    prefix = {"lower-bound": "at least ", "upper-bound": "at most ", "rough": "roughly "}.get(kind, "")
+    """``at least 3.2x``, ``at most 0.5x``, ``roughly 1.3x`` (imprecise) or ``2.1x``."""
+    prefix = {"lower-bound": "at least ", "upper-bound": "at most ", "imprecise": "roughly "}.get(kind, "")
     return prefix + format_factor(speedup)
 
 

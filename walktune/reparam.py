@@ -55,7 +55,7 @@ from scipy import special
 from .errors import WalktuneError
 from .informed import PRIOR_DOMINATED, informed_split, informed_threshold  # noqa: F401 (re-exported)
 
-SCHEMA = "walktune.reparam/1"
+SCHEMA = "walktune.sampling-map/1"
 KINDS = ("identity", "log", "neglog", "logit")
 
 
@@ -210,7 +210,7 @@ def choose_transforms(draws: np.ndarray, names: list, bounds: np.ndarray, force=
 
 
 @dataclass
-class Reparam:
+class SamplingMap:
     """The map between a user's parameters theta and sampler coordinates z.
 
     Attributes
@@ -319,7 +319,7 @@ class Reparam:
 
         return log_density_z
 
-    def refit(self, mean_z: np.ndarray, cov_z: np.ndarray, prior_covariance=None, n_independent=None) -> "Reparam":
+    def refit(self, mean_z: np.ndarray, cov_z: np.ndarray, prior_covariance=None, n_independent=None) -> "SamplingMap":
         """The same transforms with the u-space mean and covariance re-estimated from z draws.
 
         With z draws of mean ``mean_z`` and covariance ``cov_z``, u has mean
@@ -357,8 +357,8 @@ def _float(x) -> float:
     return float(x)
 
 
-def load_reparam(path, names=None) -> Reparam:
-    """Read a reparam.json (or the folder holding one); check version, W and names.
+def load_sampling_map(path, names=None) -> SamplingMap:
+    """Read a sampling_map.json (or the folder holding one); check version, W and names.
 
     Parameters
     ----------
@@ -368,9 +368,9 @@ def load_reparam(path, names=None) -> Reparam:
     """
     path = Path(path)
     if path.is_dir():
-        path = path / "reparam.json"
+        path = path / "sampling_map.json"
     if not path.exists():
-        raise WalktuneError(f"no reparam.json at {path}; run `walktune tune` on a model with bounds or a prior first.")
+        raise WalktuneError(f"no sampling_map.json at {path}; run `walktune tune` on a model with bounds or a prior first.")
     try:
         payload = json.loads(path.read_text())
     except (json.JSONDecodeError, UnicodeDecodeError):
@@ -402,7 +402,7 @@ def load_reparam(path, names=None) -> Reparam:
     if not np.allclose(rotation.T @ rotation, np.eye(d), atol=1e-8):
         raise WalktuneError(f"{path}: Q is not orthogonal.")
     ratio = payload.get("posterior_over_prior_variance")
-    return Reparam(file_names, transforms, mean, chol, rotation, informed,
+    return SamplingMap(file_names, transforms, mean, chol, rotation, informed,
                    None if ratio is None else np.asarray(ratio, dtype=float), list(payload.get("notes", [])))
 
 
@@ -416,7 +416,7 @@ def build_reparam(
     forbid=None,
     covariance=None,
     n_independent=None,
-) -> Reparam:
+) -> SamplingMap:
     """Fit the map from pilot draws (n, d): transforms, mean, Cholesky factor, and the informed split.
 
     ``prior_covariance`` (d, d) is the prior covariance of theta; with it the
@@ -442,7 +442,7 @@ def build_reparam(
     return fit_map(list(names), choices, u.mean(axis=0), cov_u, prior_covariance, n_independent)
 
 
-def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None) -> Reparam:
+def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None) -> SamplingMap:
     """The map for given transforms, u-space mean and covariance, and (optionally) the prior covariance of theta."""
     kinds = [c.kind for c in choices]
     low = np.array([c.low for c in choices])
@@ -461,7 +461,7 @@ def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior
         notes.append(f"likelihood-informed subspace: {informed} of {d} directions "
                      f"(posterior/prior variance < {split.threshold:.2f}); "
                      f"prior covariance mapped at theta = {np.array2string(theta_mean, precision=4)}")
-    return Reparam(list(names), list(choices), mean, chol, rotation, informed, ratio, notes)
+    return SamplingMap(list(names), list(choices), mean, chol, rotation, informed, ratio, notes)
 
 
 # --------------------------------------------------------------------------- curved ridges
@@ -503,7 +503,7 @@ def curvature_measure(draws: np.ndarray, limit: int = 3000, seed: int = 0) -> np
     return out
 
 
-def curved_ridge_findings(draws: np.ndarray, reparam: Reparam, names: list, threshold: float = 0.3) -> list:
+def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, threshold: float = 0.3) -> list:
     """``curved-ridge`` where a quadratic regression predicts a parameter much better than a linear one.
 
     Reports the curvature measure and the strongest correlation of the
@@ -539,7 +539,7 @@ def curved_ridge_findings(draws: np.ndarray, reparam: Reparam, names: list, thre
             [names[k] for k in partners],
             f"the posterior bends: a quadratic predicts {', '.join(names[i] for i in involved)} from the others much "
             f"better than a straight line ({details}). Chosen transforms ({chosen}) "
-            + ("straighten it: sample in the coordinates of reparam.json." if straightened else
+            + ("straighten it: sample in the coordinates of sampling_map.json." if straightened else
                "do not fully straighten it; a tuned Gaussian proposal will stay slow along the bend."),
             {"curvature_before": {names[i]: float(before[i]) for i in involved},
              "curvature_after": {names[i]: float(after[i]) for i in involved},

@@ -96,8 +96,13 @@ def load_run(folder) -> Run:
                 f"the draws this inspection read are missing ({', '.join(missing) or 'none recorded'}); "
                 "re-run `walktune inspect ... --out` with them in place."
             )
-        recorded = advice.get("inspection", {})
-        data = read_chains(files, chain_column=recorded.get("chain_column"), layout=recorded.get("layout"))
+        if advice.get("inspection", {}).get("run") is not None:
+            from .tunefolder import read_tune_output
+
+            data, _ = read_tune_output(files[0], advice["inspection"]["run"])
+        else:
+            recorded = advice.get("inspection", {})
+            data = read_chains(files, chain_column=recorded.get("chain_column"), layout=recorded.get("layout"))
         index = [data.names.index(n) for n in names] if set(names) <= set(data.names) else list(range(len(names)))
         info = advice.get("inspection", {})
         draws = data.draws[:, info.get("warmup_dropped", 0) :: info.get("thin", 1)]
@@ -124,10 +129,10 @@ def load_run(folder) -> Run:
     chosen = (advice.get("recommended") or {}).get("proposal")
     main = chosen if chosen in labels else "tuned-covariance"
     reparam = None
-    if (folder / "reparam.json").exists():
-        from .reparam import load_reparam
+    if (folder / "sampling_map.json").exists():
+        from .reparam import load_sampling_map
 
-        reparam = load_reparam(folder, names=names)
+        reparam = load_sampling_map(folder, names=names)
     return Run(folder, advice, names, labels, main, baseline, reparam=reparam)
 
 
@@ -323,14 +328,14 @@ def figure_ess(run: Run):
                 ax.annotate("", xy=(k, values[k] * (2.5 if kind == "lower-bound" else 0.4)), xytext=(k, values[k]),
                             arrowprops={"arrowstyle": "->", "color": "black"})
                 text = (">= " if kind == "lower-bound" else "<= ") + text
-            elif kind == "rough":
+            elif kind == "imprecise":
                 text = "~" + text
             ax.text(k, values[k], text, ha="center", va="bottom", fontsize=8)
         ax.set_xticks(range(len(rows)), labels)
         ax.set_ylim(min(values) / 3, max(values) * 6)
         ax.set_ylabel("min ESS per 1000 evaluations (log scale)")
         ax.set_title("Measured efficiency of every proof run (bars: min over parameters; diamonds: median)")
-        _note(ax, "speed-ups over the first run; arrow: a bound (truth beyond it); hatched, ~: rough (chain too short)", top=True)
+        _note(ax, "speed-ups over the first run; arrow: a bound (truth beyond it); hatched, ~: imprecise ESS (run too short)", top=True)
     else:
         info = run.advice.get("inspection", {}).get("parameters", [])
         ess = [p["bulk_ess"] or 0.0 for p in info]
@@ -397,8 +402,8 @@ def _plain_advice(advice: dict) -> list:
     recommended = advice.get("recommended")
     if rows and recommended:
         chosen = next((row for row in rows if row["proposal"] == recommended["proposal"]), rows[-1])
-        where = ("recommended_proposal.csv (in the sampler coordinates of reparam.json)"
-                 if recommended.get("coordinates") == "reparam.json" else "recommended_proposal.csv")
+        where = ("recommended_proposal.csv (in the sampler coordinates of sampling_map.json)"
+                 if recommended.get("coordinates") == "sampling_map.json" else "recommended_proposal.csv")
         if chosen is rows[0]:
             worth = "no other option was measured faster than it beyond the measurement's error"
         else:
@@ -502,7 +507,7 @@ def render_html(run: Run, pngs: dict) -> str:
         for r in rows:
             kind = r.get("speedup_kind") or ("lower-bound" if r.get("speedup_is_lower_bound") else "measured")
             speed = esc(speedup_text(r["speedup"], kind)) if r.get("speedup") is not None else "n/a"
-            if kind == "rough" and r.get("evaluations_to_settle"):
+            if kind == "imprecise" and r.get("evaluations_to_settle"):
                 speed += f" (about {r['evaluations_to_settle']:,} evaluations in all, over both runs, would settle it)"
             if r["proposal"] == (a.get("recommended") or {}).get("proposal"):
                 speed += " &larr; recommended"

@@ -28,7 +28,7 @@ import numpy as np
 
 from . import recommend, theory
 from .advice import Advice
-from .diagnostics import Summary, summary
+from .diagnostics import ChainMeasures, measure_chains
 from .engine import Chains, sample
 from .errors import WalktuneError
 from .findings import Finding
@@ -302,7 +302,7 @@ class NewCoordinates:
 
     Attributes
     ----------
-    reparam : walktune.reparam.Reparam or None
+    reparam : walktune.reparam.SamplingMap or None
     findings : list of Finding
         Curved ridges, or why no map could be built.
     prior_covariance : ndarray of shape (d, d) or None
@@ -388,7 +388,7 @@ class ComparisonRow:
     ``speedup`` its ratio to the baseline's, and ``speedup_kind`` what that
     figure is: ``baseline``, ``measured``, ``lower-bound`` (the baseline's
     chains have not mixed at all, so its ESS is too high), ``upper-bound``
-    (this run's have not), or ``rough`` (a short run's ESS, as likely under-
+    (this run's have not), or ``imprecise`` (a short run's ESS, as likely under-
     as over-estimated; ``evaluations_to_settle`` in all would make both
     reliable). See :mod:`walktune.recommend`. ``predicted_slowdown`` is the
     predicted ratio of the tuned run's smallest ESS to this run's
@@ -418,7 +418,7 @@ class ComparisonRow:
 
 
 def _row_from_run(name, description, chains, stats, predicted, baseline=None):
-    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.Summary)."""
+    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.ChainMeasures)."""
     ess = stats.bulk_ess
     evaluations = chains.evaluations
     ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
@@ -471,12 +471,12 @@ class Proof:
         The baseline first.
     runs : dict of str to Chains
         Draws in the user's parameters, by proposal name.
-    stats : dict of str to walktune.diagnostics.Summary
+    stats : dict of str to walktune.diagnostics.ChainMeasures
     steps : int
         Steps per chain of every run.
     proposals : dict of str to ndarray of shape (d, d)
         Each run's proposal covariance, in the coordinates it ran in (the new
-        coordinates' runs in those of ``reparam.json``).
+        coordinates' runs in those of ``sampling_map.json``).
     """
 
     rows: list
@@ -490,7 +490,7 @@ class Proof:
         return self.runs["tuned-covariance"]
 
     @property
-    def tuned_stats(self) -> Summary:
+    def tuned_stats(self) -> ChainMeasures:
         return self.stats["tuned-covariance"]
 
     @property
@@ -543,7 +543,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
             start_log_density=pilot.state_log_density,
             progress=lambda done, total, name=name: tracker(name, done, total),
         )
-        runs[name], stats[name], proposals[name] = run, summary(run.draws), run_plan.covariance
+        runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
         rows.append(_row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
                                   rows[0] if rows else None))
     if coords.plan:
@@ -555,7 +555,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
                          progress=lambda done, total, name=name: tracker(name, done, total))
             # Measured in the user's own parameters.
             run = replace(run, draws=coords.reparam.from_sampler(run.draws))
-            runs[name], stats[name], proposals[name] = run, summary(run.draws), run_plan.covariance
+            runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
             rows.append(_row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
     return Proof(rows, runs, stats, steps, proposals)
 
@@ -603,7 +603,7 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     multimodal = multimodal_finding(regions, names)
     tau_median = within_chain_iact(proof_draws, np.median)
     # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
-    proof_ess = summary(proof_draws).bulk_ess
+    proof_ess = measure_chains(proof_draws).bulk_ess
     funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds,
                                                      ess=proof_ess)
     probe_cost = curvature_probe_cost(dim)

@@ -157,6 +157,17 @@ class TuneResult:
         """``W`` with ``W W^T = posterior_covariance`` (lower Cholesky): ``z = W^{-1} (theta - mean)``."""
         return np.linalg.cholesky(self.posterior_covariance)
 
+    def __repr__(self) -> str:
+        from .plaintext import tune_repr
+
+        return tune_repr(self)
+
+    def advice_text(self) -> str:
+        """The advice as plain text (for notebooks and logs): recommendation, cost, steps, findings."""
+        from .plaintext import tune_advice
+
+        return tune_advice(self)
+
     def evaluations_needed(self) -> dict:
         """Evaluations each proposal needs for ``target_ess`` (from its measured min ESS)."""
         out = {}
@@ -211,7 +222,7 @@ class TuneResult:
             "reparameterisation": None if self.reparam is None else {
                 "transforms": {t.name: t.kind for t in self.reparam.transforms},
                 "informed_dimension": self.reparam.informed,
-                "file": "reparam.json",
+                "file": "sampling_map.json",
             },
             "findings": [f.to_dict() for f in self.findings],
             "caution": CAUTION,

@@ -35,7 +35,7 @@ import numpy as np
 from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot, shrunk_covariance
 from .posterior import SamplerSpaceEvaluator
-from .reparam import Reparam, TransformChoice, candidates
+from .reparam import SamplingMap, TransformChoice, candidates
 
 #: The mode within this many sds of a bound is near it.
 NEAR_SDS = 3.0
@@ -83,7 +83,7 @@ def near_bound(evaluate, mode: np.ndarray, mode_value: float, sd: np.ndarray, bo
     return near
 
 
-def pilot_map(names: list, bounds: np.ndarray, near: np.ndarray) -> Reparam:
+def pilot_map(names: list, bounds: np.ndarray, near: np.ndarray) -> SamplingMap:
     """The map ``z = u = T(theta)``: the bounds' transform for parameters near a bound, the identity elsewhere."""
     choices = []
     for i, name in enumerate(names):
@@ -91,7 +91,7 @@ def pilot_map(names: list, bounds: np.ndarray, near: np.ndarray) -> Reparam:
         kind = candidates(low, high)[-1] if near[i] else "identity"
         choices.append(TransformChoice(name, kind, low, high, {}))
     dim = len(names)
-    return Reparam(list(names), choices, np.zeros(dim), np.eye(dim), np.eye(dim), dim,
+    return SamplingMap(list(names), choices, np.zeros(dim), np.eye(dim), np.eye(dim), dim,
                    notes=["pilot coordinates: bounded parameters near a bound on an unbounded scale"])
 
 
@@ -101,7 +101,7 @@ class UnconstrainedStart:
 
     Attributes
     ----------
-    reparam : Reparam
+    reparam : SamplingMap
         ``u = T(theta)``.
     near : ndarray of bool, shape (d,)
         Parameters sampled on a transformed scale.
@@ -113,7 +113,7 @@ class UnconstrainedStart:
         Starting states in ``u`` and ``log p_u`` there.
     """
 
-    reparam: Reparam
+    reparam: SamplingMap
     near: np.ndarray
     fit: ModeFit
     covariance: np.ndarray
@@ -121,7 +121,7 @@ class UnconstrainedStart:
     values: np.ndarray
 
 
-def unconstrained_mode(evaluate_u, reparam: Reparam, fit: ModeFit, start: np.ndarray, covariance: np.ndarray,
+def unconstrained_mode(evaluate_u, reparam: SamplingMap, fit: ModeFit, start: np.ndarray, covariance: np.ndarray,
                        near: np.ndarray, budget: int) -> tuple[ModeFit, np.ndarray]:
     """The mode of ``log p_u`` and a first covariance there.
 
@@ -153,7 +153,7 @@ def unconstrained_mode(evaluate_u, reparam: Reparam, fit: ModeFit, start: np.nda
     return fit_u, guess
 
 
-def to_parameters(reparam: Reparam, states_u: np.ndarray, values_u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def to_parameters(reparam: SamplingMap, states_u: np.ndarray, values_u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """States (chains, d) in ``theta`` and ``log p(theta)`` there, from states and ``log p_u`` in ``u``."""
     theta, jacobian = reparam.from_sampler_with_jacobian(states_u)
     return theta, values_u - jacobian
