@@ -16,10 +16,10 @@ demo: $(STAMP)
 	$(VENV)/bin/walktune demo
 
 test: $(STAMP)
-	$(PY) -m pytest -q
+	$(PY) -m pytest -q -n 2
 
 test-fast: $(STAMP)
-	$(PY) -m pytest -q -m "not slow"
+	$(PY) -m pytest -q -n 2 -m "not slow"
 
 bench: $(STAMP)
 	$(PY) benchmarks/bench_core.py
