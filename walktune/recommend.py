@@ -30,7 +30,7 @@ In Functional Integration, Springer, 131-192.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 
 import numpy as np
 
@@ -224,3 +224,88 @@ def _message(chosen, close, baseline, contender, to_resolve) -> str:
               else "; they are equally fast within 5%")
     return (text + f". Not resolved: {', '.join(row.proposal for row in close)} measured within the error of it "
             f"({contender.proposal} at {format_factor(ratio)} of its efficiency){settle}.")
+
+
+# --------------------------------------------------------------------------- measured rows
+
+
+@dataclass(frozen=True)
+class ComparisonRow:
+    """One fixed-proposal run of the proof.
+
+    ``ess_per_1000`` is the smallest bulk ESS over parameters per 1000
+    evaluations, with relative standard error ``ess_relative_error``;
+    ``speedup`` its ratio to the baseline's, and ``speedup_kind`` what that
+    figure is: ``baseline``, ``measured``, ``lower-bound`` (the baseline's
+    chains have not mixed at all, so its ESS is too high), ``upper-bound``
+    (this run's have not), or ``imprecise`` (a short run's ESS, as likely under-
+    as over-estimated; ``evaluations_to_settle`` in all would make both
+    reliable). See the module docstring. ``predicted_slowdown`` is the
+    predicted ratio of the tuned run's smallest ESS to this run's
+    (``theory.Slowdown.slowest_parameter``).
+    """
+
+    proposal: str
+    description: str
+    acceptance: float
+    ess_per_1000: float
+    median_ess_per_1000: float
+    evaluations: int
+    speedup: float
+    speedup_is_lower_bound: bool
+    ess_reliable: bool
+    predicted_slowdown: float
+    max_rhat: float
+    iact_max: float
+    mixed: bool = True
+    ess_relative_error: float = float("nan")
+    settle_evaluations: int = 0
+    speedup_kind: str = "baseline"
+    evaluations_to_settle: int | None = 0
+
+    def to_dict(self) -> dict:
+        return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in self.__dict__.items()}
+
+
+def row_from_run(name, description, chains, stats, predicted, baseline=None):
+    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.ChainMeasures)."""
+    ess = stats.bulk_ess
+    evaluations = chains.evaluations
+    ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
+    if not np.isfinite(ess_min):
+        # A chain that never moved: its ESS is at most the number of distinct states.
+        ess_min = float(np.sum(chains.accepted) + chains.n_chains)
+    per_1000 = 1000 * ess_min / evaluations
+    median = 1000 * float(np.nanmedian(np.where(np.isfinite(ess), ess, ess_min))) / evaluations
+    reliable = not np.any(stats.bulk_too_short)
+    finite_rhat, finite_iact = stats.rhat[np.isfinite(stats.rhat)], stats.iact[np.isfinite(stats.iact)]
+    max_rhat = float(np.max(finite_rhat)) if finite_rhat.size == stats.rhat.size else float("nan")
+    iact_max = float(np.max(finite_iact)) if finite_iact.size == stats.iact.size else float("nan")
+    steps = stats.n_draws
+    row = ComparisonRow(
+        proposal=name,
+        description=description,
+        acceptance=chains.acceptance_rate,
+        ess_per_1000=per_1000,
+        median_ess_per_1000=median,
+        evaluations=evaluations,
+        ess_reliable=reliable,
+        predicted_slowdown=predicted,
+        max_rhat=max_rhat,
+        iact_max=iact_max,
+        speedup=1.0,
+        speedup_is_lower_bound=False,
+        mixed=not not_mixed(iact_max, steps, max_rhat),
+        ess_relative_error=ess_relative_error(iact_max, stats.n_chains, steps),
+        settle_evaluations=evaluations_to_settle(iact_max, stats.n_chains, steps, reliable),
+    )
+    if baseline is None:
+        return row
+    kind, settle = speedup_kind(row, baseline)
+    return replace(
+        row,
+        speedup=per_1000 / baseline.ess_per_1000 if baseline.ess_per_1000 > 0 else float("inf"),
+        speedup_kind=kind,
+        speedup_is_lower_bound=kind == "lower-bound",
+        evaluations_to_settle=settle,
+    )

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from . import recommend, theory
+from . import theory
 from .advice import Advice
 from .diagnostics import ChainMeasures, measure_chains
 from .engine import Chains, sample
@@ -47,6 +47,7 @@ from .geometry import (
 from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator
+from .recommend import ComparisonRow, row_from_run
 from .reparam import build_reparam, curved_ridge_findings
 from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
@@ -380,88 +381,6 @@ def new_coordinates(posterior: Posterior, pilot: PilotResult, start: StartingPoi
 
 
 @dataclass(frozen=True)
-class ComparisonRow:
-    """One fixed-proposal run of the proof.
-
-    ``ess_per_1000`` is the smallest bulk ESS over parameters per 1000
-    evaluations, with relative standard error ``ess_relative_error``;
-    ``speedup`` its ratio to the baseline's, and ``speedup_kind`` what that
-    figure is: ``baseline``, ``measured``, ``lower-bound`` (the baseline's
-    chains have not mixed at all, so its ESS is too high), ``upper-bound``
-    (this run's have not), or ``imprecise`` (a short run's ESS, as likely under-
-    as over-estimated; ``evaluations_to_settle`` in all would make both
-    reliable). See :mod:`walktune.recommend`. ``predicted_slowdown`` is the
-    predicted ratio of the tuned run's smallest ESS to this run's
-    (``theory.Slowdown.slowest_parameter``).
-    """
-
-    proposal: str
-    description: str
-    acceptance: float
-    ess_per_1000: float
-    median_ess_per_1000: float
-    evaluations: int
-    speedup: float
-    speedup_is_lower_bound: bool
-    ess_reliable: bool
-    predicted_slowdown: float
-    max_rhat: float
-    iact_max: float
-    mixed: bool = True
-    ess_relative_error: float = float("nan")
-    settle_evaluations: int = 0
-    speedup_kind: str = "baseline"
-    evaluations_to_settle: int | None = 0
-
-    def to_dict(self) -> dict:
-        return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in self.__dict__.items()}
-
-
-def _row_from_run(name, description, chains, stats, predicted, baseline=None):
-    """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.ChainMeasures)."""
-    ess = stats.bulk_ess
-    evaluations = chains.evaluations
-    ess_min = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
-    if not np.isfinite(ess_min):
-        # A chain that never moved: its ESS is at most the number of distinct states.
-        ess_min = float(np.sum(chains.accepted) + chains.n_chains)
-    per_1000 = 1000 * ess_min / evaluations
-    median = 1000 * float(np.nanmedian(np.where(np.isfinite(ess), ess, ess_min))) / evaluations
-    reliable = not np.any(stats.bulk_too_short)
-    finite_rhat, finite_iact = stats.rhat[np.isfinite(stats.rhat)], stats.iact[np.isfinite(stats.iact)]
-    max_rhat = float(np.max(finite_rhat)) if finite_rhat.size == stats.rhat.size else float("nan")
-    iact_max = float(np.max(finite_iact)) if finite_iact.size == stats.iact.size else float("nan")
-    steps = stats.n_draws
-    row = ComparisonRow(
-        proposal=name,
-        description=description,
-        acceptance=chains.acceptance_rate,
-        ess_per_1000=per_1000,
-        median_ess_per_1000=median,
-        evaluations=evaluations,
-        ess_reliable=reliable,
-        predicted_slowdown=predicted,
-        max_rhat=max_rhat,
-        iact_max=iact_max,
-        speedup=1.0,
-        speedup_is_lower_bound=False,
-        mixed=not recommend.not_mixed(iact_max, steps, max_rhat),
-        ess_relative_error=recommend.ess_relative_error(iact_max, stats.n_chains, steps),
-        settle_evaluations=recommend.evaluations_to_settle(iact_max, stats.n_chains, steps, reliable),
-    )
-    if baseline is None:
-        return row
-    kind, settle = recommend.speedup_kind(row, baseline)
-    return replace(
-        row,
-        speedup=per_1000 / baseline.ess_per_1000 if baseline.ess_per_1000 > 0 else float("inf"),
-        speedup_kind=kind,
-        speedup_is_lower_bound=kind == "lower-bound",
-        evaluations_to_settle=settle,
-    )
-
-
-@dataclass(frozen=True)
 class Proof:
     """The fixed-proposal runs, their diagnostics (computed once) and their comparison rows.
 
@@ -544,7 +463,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
             progress=lambda done, total, name=name: tracker(name, done, total),
         )
         runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
-        rows.append(_row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
+        rows.append(row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
                                   rows[0] if rows else None))
     if coords.plan:
         z_evaluator = SamplerSpaceEvaluator(counted, coords.reparam)
@@ -556,7 +475,7 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
             # Measured in the user's own parameters.
             run = replace(run, draws=coords.reparam.from_sampler(run.draws))
             runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
-            rows.append(_row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
+            rows.append(row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
     return Proof(rows, runs, stats, steps, proposals)
 
 

@@ -51,10 +51,9 @@ from .posterior import (
     prepare_posterior,
     worker_busy_share,
 )
-from .recommend import Recommendation, recommend
+from .recommend import ComparisonRow, Recommendation, recommend
 from .stages import (
     Budget,
-    ComparisonRow,
     check_geometry,
     find_start,
     minimum_budget,
