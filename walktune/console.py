@@ -168,7 +168,9 @@ def posterior_table(result: TuneResult, width: int | None = None) -> Table:
             _fmt(result.step_sizes[i]), f"{result.structure.determined_by_others[i]:.3f}",
         ])
     caption = ("step: tuned per-parameter proposal sd; R^2 others: how well the other parameters predict it (pilot's "
-               "covariance). ! R-hat above 1.01: the chains disagree.")
+               "covariance).")
+    if any(len(row[4].plain) and row[4].plain.endswith("!") for row in table_rows):
+        caption += " ! R-hat above 1.01: the chains disagree."
     return fitted_table(title, columns, table_rows, width, caption)
 
 

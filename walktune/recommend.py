@@ -215,8 +215,8 @@ def _message(chosen, close, baseline, contender, to_resolve) -> str:
     elif chosen is baseline:
         text = f"Use {chosen.proposal}: no option was measured faster beyond the measurement's error"
     else:
-        text = (f"Use {chosen.proposal}: measured at {speedup_text(chosen.speedup, chosen.speedup_kind)} "
-                f"the ESS per evaluation of {baseline.proposal}")
+        text = (f"Use {chosen.proposal}: its ESS per evaluation was measured at "
+                f"{speedup_text(chosen.speedup, chosen.speedup_kind)} that of {baseline.proposal}")
     if contender is None:
         return text + "."
     ratio = contender.ess_per_1000 / chosen.ess_per_1000
