@@ -241,8 +241,8 @@ def figure_pairs(run: Run):
             ax.set_xlabel(label(run.names[i]))
             ax.set_ylabel(label(run.names[j]))
             rho = np.corrcoef(values[:, i], values[:, j])[0, 1]
-            pilot_note = "" if prefix else f" (pilot estimate {pilot_rho:+.3f})"
-            ax.set_title(f"{prefix}correlation {rho:+.3f} in these draws{pilot_note}")
+            pilot_note = "" if prefix else f"\npilot's estimate {pilot_rho:+.3f}"
+            ax.set_title(f"{prefix}correlation {rho:+.3f} in these draws{pilot_note}", fontsize=9)
             if step > 1:
                 _note(ax, f"1 in {step} draws drawn")
     title = f"Strongest pairs (by the pilot's covariance), principal axes +/- 2 sd; {_which_draws(run, run.main)}"
