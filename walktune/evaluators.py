@@ -39,10 +39,31 @@ class BatchResult:
     busy_seconds: float = 0.0
 
 
+def _refuse_non_numeric(value) -> None:
+    """Raise TypeError, naming what came back, when a log-density returned text or another non-number.
+
+    ``np.asarray(value, dtype=float)`` alone would turn the string "1.5" into 1.5.
+    """
+    if isinstance(value, (str, bytes)):
+        raise TypeError(f"the log-density returned a {type(value).__name__} ({value!r:.40}) instead of a number")
+    array = np.asarray(value)
+    kind = array.dtype.kind
+    if kind in "USV" or (kind == "O" and any(isinstance(v, (str, bytes)) for v in array.reshape(-1))):
+        raise TypeError(
+            f"the log-density returned text ({type(value).__name__} {str(value)!r:.40}) instead of numbers"
+        )
+    if kind not in "iufO":
+        raise TypeError(f"the log-density returned a {type(value).__name__} of dtype {array.dtype} instead of a number")
+
+
 def _to_scalar(value) -> float:
     if value is None:
         raise TypeError("the log-density returned None instead of a number (is a return statement missing?)")
-    array = np.asarray(value, dtype=float)
+    _refuse_non_numeric(value)
+    try:
+        array = np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise TypeError(f"the log-density returned a {type(value).__name__} instead of a number") from None
     if array.size != 1:
         raise TypeError(f"the log-density must return one number per point; it returned shape {array.shape}")
     return float(array.reshape(()))
@@ -85,6 +106,7 @@ class InProcessEvaluator:
                 raw = self.log_density(points)
                 if raw is None:
                     raise TypeError("the log-density returned None instead of an array of numbers")
+                _refuse_non_numeric(raw)
                 values = np.asarray(raw, dtype=float).reshape(-1)
                 if values.shape[0] != points.shape[0]:
                     raise TypeError(

@@ -49,18 +49,67 @@ class ModeFit:
     message: str
 
 
-class _Objective:
-    """Negative log-density that maps non-finite values to a large penalty."""
+#: A mode search has run away when the log-density rises this far above its
+#: value at the start while an unbounded parameter is ``RUNAWAY_FAR`` of its
+#: scales from the start (a start in the far tail of a tight posterior may lie
+#: 1e6 nats below the mode, but not thousands of scales away from it)...
+RUNAWAY_RISE = 1e6
+RUNAWAY_FAR = 1e3
+#: ... or when an unbounded parameter moves this many of its scales from the start.
+RUNAWAY_DISTANCE = 1e8
 
-    def __init__(self, evaluate, penalty: float):
+
+class _RanAway(Exception):
+    """Raised inside the optimizer's objective to stop a search that runs away (not a ValueError, which is caught)."""
+
+    def __init__(self, point: np.ndarray):
+        super().__init__("ran away")
+        self.point = point
+
+
+class _Objective:
+    """Negative log-density that maps non-finite values to a large penalty and stops a runaway search."""
+
+    def __init__(self, evaluate, penalty: float, start: np.ndarray, start_value: float, scales: np.ndarray,
+                 bounds: np.ndarray):
         self.evaluate = evaluate
         self.penalty = penalty
         self.calls = 0
+        self.start, self.start_value, self.scales = start, start_value, scales
+        self.unbounded = ~np.all(np.isfinite(bounds), axis=1)
 
     def __call__(self, x: np.ndarray) -> float:
         self.calls += 1
         value = self.evaluate(x)
+        self._check(x, value)
         return -value if np.isfinite(value) else self.penalty
+
+    def _check(self, x: np.ndarray, value: float) -> None:
+        distance = np.max(np.where(self.unbounded, np.abs(x - self.start) / self.scales, 0.0), initial=0.0)
+        risen = np.isfinite(value) and value > self.start_value + RUNAWAY_RISE
+        if (risen and distance > RUNAWAY_FAR) or distance > RUNAWAY_DISTANCE:
+            raise _RanAway(np.array(x, dtype=float))
+
+
+def ran_away(point: np.ndarray, start: np.ndarray, scales: np.ndarray, names) -> str:
+    """A one-line message naming the parameters a runaway mode search moved furthest (in their scales).
+
+    Parameters
+    ----------
+    point, start, scales : ndarray of shape (d,)
+        Where the search was stopped, where it began, and the rough scale per parameter.
+    names : list of str or None
+    """
+    distance = np.abs(point - start) / scales
+    names = names if names is not None else [f"theta[{i}]" for i in range(start.shape[0])]
+    # The parameters that moved at least a thousandth as far as the furthest: the direction of the runaway.
+    which = [names[i] for i in np.flatnonzero(distance >= 1e-3 * distance.max())] if distance.max() > 0 else list(names)
+    return (
+        f"the mode search ran away: the log-density keeps increasing as {', '.join(which)} "
+        f"{'move' if len(which) > 1 else 'moves'} away without bound (stopped at {', '.join(f'{names[i]}={point[i]:.3g}' for i in range(len(names)) if names[i] in which)}), "
+        f"so the posterior is not proper; add a prior for {', '.join(which)} (PRIOR or LOG_PRIOR in the model file, "
+        "prior= in Python) or bounds (--bound NAME=LOW:HIGH)."
+    )
 
 
 def _steps(point: np.ndarray, scales: np.ndarray) -> np.ndarray:
@@ -126,7 +175,8 @@ def laplace_covariance(hessian: np.ndarray | None) -> np.ndarray | None:
     return 0.5 * (cov + cov.T)
 
 
-def find_mode(evaluate, start: np.ndarray, bounds: np.ndarray, scales: np.ndarray, max_evaluations: int) -> ModeFit:
+def find_mode(evaluate, start: np.ndarray, bounds: np.ndarray, scales: np.ndarray, max_evaluations: int,
+              names=None) -> ModeFit:
     """Maximise ``evaluate`` from ``start`` and estimate the Hessian there.
 
     Parameters
@@ -140,10 +190,28 @@ def find_mode(evaluate, start: np.ndarray, bounds: np.ndarray, scales: np.ndarra
         A rough scale per parameter, for step sizes.
     max_evaluations : int
         Evaluations the optimizers may spend (the Hessian comes on top).
+    names : list of str, optional
+        Parameter names, for the error when the search runs away.
+
+    Raises
+    ------
+    walktune.errors.TargetError
+        When the search runs away (``RUNAWAY_RISE``, ``RUNAWAY_DISTANCE``): the log-density has no maximum.
     """
     start_value = evaluate(start)
     penalty = abs(start_value) * 10 + 1e10
-    objective = _Objective(evaluate, penalty)
+    objective = _Objective(evaluate, penalty, start, start_value, scales, bounds)
+    try:
+        best_x, best_f, method, notes = _optimize(objective, start, start_value, bounds, scales, max_evaluations)
+    except _RanAway as stop:
+        from .errors import TargetError
+
+        raise TargetError(ran_away(stop.point, start, scales, names)) from None
+    return _polish(evaluate, best_x, best_f, method, notes, bounds, scales)
+
+
+def _optimize(objective, start, start_value, bounds, scales, max_evaluations):
+    """L-BFGS-B, then Nelder-Mead and Powell when it fails; returns (x, -log-density, method, notes)."""
     finite_bounds = [(None if np.isinf(lo) else lo, None if np.isinf(hi) else hi) for lo, hi in bounds]
     best_x, best_f, method, notes = start.copy(), -start_value, "start", []
     # The optimizers work on theta / scales so that every parameter is of order one.
@@ -181,8 +249,13 @@ def find_mode(evaluate, start: np.ndarray, bounds: np.ndarray, scales: np.ndarra
         # Newton polish below; fallbacks are for ones that failed outright.
         if improved:
             break
+    return best_x, best_f, method, notes
+
+
+def _polish(evaluate, best_x, best_f, method, notes, bounds, scales) -> ModeFit:
+    """The Hessian at the optimizer's point, then up to two Newton steps kept only if they improve."""
     hessian, gradient = (None, None)
-    if start.shape[0] <= 200:
+    if best_x.shape[0] <= 200:
         hessian, gradient = finite_difference_hessian(evaluate, best_x, scales, bounds, with_gradient=True)
     cov = laplace_covariance(hessian)
     # Newton polish: where the Hessian is negative definite, one Newton step

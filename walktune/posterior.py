@@ -352,3 +352,67 @@ def check_start(posterior: Posterior) -> None:
         raise TargetError(
             f"the log-density at the start point is not finite (value {first.values[0]}); choose a start inside the support."
         )
+
+
+#: Moves of each parameter alone, in its rough scale, when probing whether the log-density depends on it.
+PROBE_MOVES = (-4.0, -1.0, 1.0, 4.0)
+
+
+def unused_parameters(posterior: Posterior, scales: np.ndarray) -> list:
+    """Parameters the log-density does not depend on, found by moving each alone from the start.
+
+    Each parameter not bounded on both sides is moved by ``PROBE_MOVES`` times
+    its scale (moves that leave its bounds are dropped), all in one batch
+    through ``posterior.counted``. A parameter is unused when at least two
+    moves stayed inside and every value equals the start's exactly: no
+    change at all, so nothing makes the posterior proper along it. A flat
+    density on a finite interval is proper, so parameters bounded on both
+    sides are not probed.
+
+    Parameters
+    ----------
+    posterior : Posterior
+    scales : ndarray of shape (d,)
+        A rough scale per parameter.
+
+    Returns
+    -------
+    list of str
+        The names of the unused parameters (empty when every probed parameter matters).
+    """
+    start, bounds = posterior.start, posterior.bounds
+    probed = [i for i in range(posterior.dim) if not np.all(np.isfinite(bounds[i]))]
+    points, owners = [], []
+    for i in probed:
+        for move in PROBE_MOVES:
+            value = start[i] + move * scales[i]
+            if bounds[i, 0] < value < bounds[i, 1] and value != start[i]:
+                point = start.copy()
+                point[i] = value
+                points.append(point)
+                owners.append(i)
+    if not points:
+        return []
+    result = posterior.counted(np.array([start] + points))
+    values, owners = result.values, np.array(owners)
+    flat = []
+    for i in probed:
+        mine = values[1:][owners == i]
+        if mine.size >= 2 and not result.errors and np.isfinite(values[0]) and np.all(mine == values[0]):
+            flat.append(posterior.names[i])
+    return flat
+
+
+def check_parameters_used(posterior: Posterior, scales: np.ndarray) -> None:
+    """Stop with a one-line error when the log-density does not depend on some parameters (an improper posterior)."""
+    flat = unused_parameters(posterior, scales)
+    if not flat:
+        return
+    which = ", ".join(flat)
+    everything = len(flat) == posterior.dim
+    raise TargetError(
+        f"the log-density does not change when {which} {'move' if len(flat) > 1 else 'moves'} alone"
+        + (" (it is flat)" if everything else "")
+        + f", so the posterior is not proper along {'them' if len(flat) > 1 else 'it'}; add a prior for "
+        f"{which} (PRIOR or LOG_PRIOR in the model file, prior= in Python) or a lower and an upper bound (--bound NAME=LOW:HIGH)."
+    )

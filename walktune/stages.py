@@ -46,7 +46,7 @@ from .geometry import (
 )
 from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
-from .posterior import Posterior, SamplerSpaceEvaluator
+from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
 from .recommend import ComparisonRow, row_from_run
 from .reparam import build_reparam, curved_ridge_findings
 from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
@@ -210,8 +210,9 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     tracker("mode", 0, 1)
     scales = np.where(np.isfinite(bounds).all(axis=1), (bounds[:, 1] - bounds[:, 0]) / 10, 1.0)
     scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
+    check_parameters_used(posterior, scales)
     mode_budget = max(20 * (dim + 1), budget.pilot // 3 - 2 * dim * dim)
-    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget)
+    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names)
     tracker("mode", 1, 1)
     initial = _initial_covariance(fit, bounds, start)
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
