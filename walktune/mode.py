@@ -104,9 +104,10 @@ def ran_away(point: np.ndarray, start: np.ndarray, scales: np.ndarray, names) ->
     names = names if names is not None else [f"theta[{i}]" for i in range(start.shape[0])]
     # The parameters that moved at least a thousandth as far as the furthest: the direction of the runaway.
     which = [names[i] for i in np.flatnonzero(distance >= 1e-3 * distance.max())] if distance.max() > 0 else list(names)
+    where = ", ".join(f"{names[i]}={point[i]:.3g}" for i in range(len(names)) if names[i] in which)
     return (
         f"the mode search ran away: the log-density keeps increasing as {', '.join(which)} "
-        f"{'move' if len(which) > 1 else 'moves'} away without bound (stopped at {', '.join(f'{names[i]}={point[i]:.3g}' for i in range(len(names)) if names[i] in which)}), "
+        f"{'move' if len(which) > 1 else 'moves'} away without bound (stopped at {where}), "
         f"so the posterior is not proper; add a prior for {', '.join(which)} (PRIOR or LOG_PRIOR in the model file, "
         "prior= in Python) or bounds (--bound NAME=LOW:HIGH)."
     )
