@@ -55,7 +55,8 @@ class ModeFit:
 #: 1e6 nats below the mode, but not thousands of scales away from it)...
 RUNAWAY_RISE = 1e6
 RUNAWAY_FAR = 1e3
-#: ... or when an unbounded parameter moves this many of its scales from the start.
+#: ... or when an unbounded parameter moves this many of its scales from the start;
+#: either way only when the log-density rises further still as those parameters move as far again.
 RUNAWAY_DISTANCE = 1e8
 
 
@@ -85,10 +86,22 @@ class _Objective:
         return -value if np.isfinite(value) else self.penalty
 
     def _check(self, x: np.ndarray, value: float) -> None:
-        distance = np.max(np.where(self.unbounded, np.abs(x - self.start) / self.scales, 0.0), initial=0.0)
-        risen = np.isfinite(value) and value > self.start_value + RUNAWAY_RISE
+        if not np.isfinite(value):
+            return
+        moved = np.where(self.unbounded, np.abs(x - self.start) / self.scales, 0.0)
+        distance = np.max(moved, initial=0.0)
+        risen = value > self.start_value + RUNAWAY_RISE
         if (risen and distance > RUNAWAY_FAR) or distance > RUNAWAY_DISTANCE:
-            raise _RanAway(np.array(x, dtype=float))
+            # Confirmed only if the log-density still rises when the far parameters move as far again:
+            # an optimizer's wild trial step from a poor start can be far out and above the start's
+            # value for the sake of the other parameters, without the density growing out there.
+            far = moved >= 1e-3 * distance
+            further = np.array(x, dtype=float)
+            further[far] += x[far] - self.start[far]
+            self.calls += 1
+            beyond = self.evaluate(further)
+            if np.isfinite(beyond) and beyond > value:
+                raise _RanAway(np.array(x, dtype=float))
 
 
 def ran_away(point: np.ndarray, start: np.ndarray, scales: np.ndarray, names) -> str:
