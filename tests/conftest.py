@@ -25,6 +25,21 @@ def close_figures():
     plt.close("all")
 
 
+def assert_one_line_error(result, *fragments, code=2):
+    """A CLI result (typer's CliRunner) that failed with one line ``error: ...`` holding ``fragments``, no traceback.
+
+    ``code`` is the exit code wanted; None accepts any non-zero one.
+    """
+    assert (result.exit_code != 0) if code is None else (result.exit_code == code), result.output
+    text = result.output.strip()
+    assert "Traceback" not in text
+    lines = [line for line in text.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("error:"), text
+    for fragment in fragments:
+        assert fragment in text, text
+    return text
+
+
 def load_demo(name: str):
     """Import demo_models/<name>.py as a module (the demos are files, not a package)."""
     import importlib.util

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import assert_one_line_error as one_line_error
 from typer.testing import CliRunner
 
 from walktune import __version__
@@ -22,13 +23,7 @@ def run(*args):
 
 
 def assert_one_line_error(result, *fragments):
-    assert result.exit_code != 0
-    text = result.output.strip()
-    assert "Traceback" not in text
-    lines = [line for line in text.splitlines() if line.strip()]
-    assert len(lines) == 1 and lines[0].startswith("error:"), text
-    for fragment in fragments:
-        assert fragment in text, text
+    one_line_error(result, *fragments, code=None)
 
 
 def test_version_and_help():

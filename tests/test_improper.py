@@ -10,6 +10,7 @@ posterior is proper and must still be tuned.
 
 import numpy as np
 import pytest
+from conftest import assert_one_line_error as one_line_error
 from typer.testing import CliRunner
 
 import walktune
@@ -68,15 +69,6 @@ def models(tmp_path, monkeypatch):
     return tmp_path
 
 
-def one_line_error(result, *fragments):
-    assert result.exit_code == 2, result.output
-    text = result.output.strip()
-    assert "Traceback" not in text
-    lines = [line for line in text.splitlines() if line.strip()]
-    assert len(lines) == 1 and lines[0].startswith("error:"), text
-    for fragment in fragments:
-        assert fragment in text, text
-    return text
 
 
 @pytest.mark.parametrize(

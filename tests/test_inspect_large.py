@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from scipy.signal import lfilter
+from conftest import assert_one_line_error as one_line_error
 from typer.testing import CliRunner
 
 from walktune import diagnostics as D
@@ -157,10 +158,6 @@ def test_two_dimensional_layouts():
         inspect(x, layout="draws, chain, params")
 
 
-def one_line_error(result, fragment):
-    assert result.exit_code == 2, result.output
-    lines = [line for line in result.output.strip().splitlines() if line.strip()]
-    assert len(lines) == 1 and lines[0].startswith("error:") and fragment in lines[0], result.output
 
 
 def test_cli_layout_option(tmp_path):
