@@ -31,7 +31,8 @@ import numpy as np
 
 from walktune.checkpoint import Checkpoint
 from walktune.engine import sample
-from walktune.evaluators import DaskEvaluator, InProcessEvaluator, ProcessPoolEvaluator, ThreadPoolEvaluator
+from walktune.dask_evaluator import DaskEvaluator
+from walktune.evaluators import InProcessEvaluator, ProcessPoolEvaluator, ThreadPoolEvaluator
 from walktune.pilot import run_pilot
 
 DIM = 3

@@ -16,7 +16,8 @@ from typer.testing import CliRunner
 
 import walktune
 from walktune.cli import app
-from walktune.evaluators import TIMEOUT_PREFIX, DaskEvaluator, ProcessPoolEvaluator, ThreadPoolEvaluator
+from walktune.dask_evaluator import DaskEvaluator
+from walktune.evaluators import TIMEOUT_PREFIX, ProcessPoolEvaluator, ThreadPoolEvaluator
 
 MODEL = Path(__file__).resolve().parent.parent / "demo_models" / "sensor_calibration.py"
 runner = CliRunner()
@@ -216,7 +217,7 @@ def test_dask_local_cluster_gives_the_serial_result_bit_for_bit_even_when_a_work
 
 @pytest.mark.slow
 def test_dask_time_limit_restarts_the_hung_worker(tmp_path, monkeypatch):
-    from walktune.evaluators import DaskEvaluator
+    from walktune.dask_evaluator import DaskEvaluator
     from walktune.target import load_target
 
     (tmp_path / "model.py").write_text(DASK_MODEL)
