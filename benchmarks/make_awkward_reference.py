@@ -1,6 +1,11 @@
 """Long reference runs for the awkward targets without a closed form; writes benchmarks/awkward_reference.npz.
 
-    python benchmarks/make_awkward_reference.py
+    python benchmarks/make_awkward_reference.py [--targets a,b,...]
+
+With ``--targets``, only those targets are run again and their entries
+replaced; every other target's arrays are copied from the existing file
+unchanged (the zip container is written anew, so the file's bytes differ,
+but each array is the one that was there).
 
 For each target of ``awkward_targets.REFERENCE_SPECS``: a plain random-walk
 Metropolis sampler (benchmarks/plain_rwm.py, not walktune's engine) in log
@@ -21,6 +26,7 @@ LogisticRegression (C = prior variance, no separate intercept).
 
 from __future__ import annotations
 
+import argparse
 import sys
 import time
 from pathlib import Path
@@ -97,9 +103,22 @@ def _check_logistic_mode(mode):
     return float(np.max(np.abs(sk.coef_[0] - mode) / np.maximum(np.abs(mode), 1e-3)))
 
 
-def main():
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--targets", default="", help="comma-separated targets to run again (default: all)")
+    args = parser.parse_args(argv)
+    chosen = [n.strip() for n in args.targets.split(",") if n.strip()] or list(A.REFERENCE_SPECS)
+    unknown = sorted(set(chosen) - set(A.REFERENCE_SPECS))
+    if unknown:
+        parser.error(f"unknown targets {', '.join(unknown)}; known: {', '.join(A.REFERENCE_SPECS)}")
     out = {}
+    if args.targets and A.REFERENCE_FILE.exists():
+        with np.load(A.REFERENCE_FILE) as old:
+            out = {key: old[key] for key in old.files if key.split("/")[0] not in chosen}
+    # The seed of each target is fixed by its place in REFERENCE_SPECS, whichever targets are run.
     for seed, name in enumerate(A.REFERENCE_SPECS, start=100):
+        if name not in chosen:
+            continue
         t0 = time.perf_counter()
         ref = reference_run(name, seed)
         if ref["max_rhat"] >= 1.01:
@@ -113,7 +132,9 @@ def main():
         if name == "tumour_logistic":
             line += f"\n  scikit-learn L2 fit vs optimum: max relative difference {_check_logistic_mode(ref['mode_z']):.2e}"
         print(line, flush=True)
-    np.savez_compressed(A.REFERENCE_FILE, **out)
+    partial = A.REFERENCE_FILE.with_name(A.REFERENCE_FILE.stem + ".partial.npz")
+    np.savez_compressed(partial, **out)
+    partial.replace(A.REFERENCE_FILE)  # atomic: the old file or the new one, never half of one
     print(f"wrote {A.REFERENCE_FILE}")
 
 
