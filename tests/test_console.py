@@ -85,7 +85,7 @@ def test_narrow_layouts_keep_every_value(name):
         assert_whole(text, [wide], width)
 
 
-@pytest.mark.parametrize("seconds, text", [(0.00042, "0.42 ms"), (0.0111, "11 ms"), (5.36, "5.36 s"),
+@pytest.mark.parametrize("seconds, text", [(0.00042, "0.42 ms"), (0.0111, "11 ms"), (0.213, "213 ms"), (0.9996, "1 s"), (5.36, "5.36 s"),
                                            (300.0, "5 min"), (36_000.0, "10 h")])
 def test_durations_get_a_unit_that_fits(seconds, text):
     # Unit conversions: 1 s = 1000 ms, 1 min = 60 s, 1 h = 3600 s.

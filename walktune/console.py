@@ -154,7 +154,7 @@ def posterior_table(result: TuneResult, width: int | None = None) -> Table:
     shape = f", {rows[run].evaluations} evaluations" if run in rows else ""
     title = f"Posterior (mean, MCSE, sd and R-hat from the {run} fixed-proposal run{shape})"
     if result.posterior_rhat is not None and not result.converged:
-        title += f"\nNOT CONVERGED: R-hat up to {np.nanmax(result.posterior_rhat):.3g} (below 1.01 wanted); do not trust these numbers"
+        title += f"\nNOT CONVERGED: R-hat up to {np.nanmax(result.posterior_rhat):.3f} (below 1.01 wanted); do not trust these numbers"
     columns = [("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
                ("step", "right"), ("R^2 others", "right")]
     sd = result.posterior_sd if result.posterior_sd is not None else result.structure.sd

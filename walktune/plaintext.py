@@ -17,8 +17,9 @@ def duration(seconds: float) -> str:
     """A time in the unit that fits it: ms, s, min or h (two or three significant digits)."""
     if seconds is None or not np.isfinite(seconds):
         return "n/a"
-    if seconds < 1:
-        return f"{seconds * 1e3:.2g} ms"
+    if seconds < 0.9995:
+        ms = seconds * 1e3
+        return f"{ms:.0f} ms" if ms >= 99.5 else f"{ms:.2g} ms"
     if seconds < 120:
         return f"{seconds:.3g} s"
     if seconds < 7200:
