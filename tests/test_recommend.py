@@ -239,3 +239,17 @@ def test_a_current_proposal_at_the_optimum_is_kept():
     assert result.recommended.proposal == "current" and result.recommended.keep_current
     assert result.recommended.message.startswith("Keep your current proposal")
     np.testing.assert_allclose(result.recommended_proposal, optimal)
+
+
+def test_poor_acceptance_is_one_finding_that_explains_the_recommended_run():
+    # Thresholds 0.1 / 0.7 are common practice; 0.234 is Roberts, Gelman and Gilks (1997).
+    from walktune.findings import acceptance_findings
+
+    rows = [SimpleNamespace(proposal=name, acceptance=rate)
+            for name, rate in (("single-step", 0.065), ("step-sizes", 0.059), ("tuned-covariance", 0.3))]
+    found = acceptance_findings(rows, recommended="step-sizes")
+    assert len(found) == 1 and found[0].kind == "poor-acceptance"
+    assert found[0].evidence["proposals"] == {"single-step": 0.065, "step-sizes": 0.059}
+    assert "step-sizes is still recommended" in found[0].message and "scaled by 0.5" in found[0].message
+    # A recommended run with a good rate is not explained away in a finding about the others.
+    assert "still recommended" not in acceptance_findings(rows, recommended="tuned-covariance")[0].message

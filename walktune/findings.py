@@ -148,21 +148,32 @@ def identification_findings(sd, bounds, names) -> list:
     return out
 
 
-def acceptance_findings(rows) -> list:
+def acceptance_findings(rows, recommended: str | None = None) -> list:
+    """One ``poor-acceptance`` finding per side (too rare, too frequent) naming every run on that side.
+
+    When the recommended run is among them, the finding says why it is still
+    recommended (it was measured best) and what may do better, so that the
+    advice and the finding do not read as a contradiction.
+    """
     out = []
-    for row in rows:
-        if row.acceptance < 0.1 or row.acceptance > 0.7:
-            direction = "too large" if row.acceptance < 0.1 else "too small"
-            out.append(
-                Finding(
-                    "poor-acceptance",
-                    "warn",
-                    [],
-                    f"the {row.proposal} proposal accepts {row.acceptance:.1%} of moves: its steps are "
-                    f"{direction}. The best acceptance is about 0.23 (0.44 for one parameter).",
-                    {"proposal": row.proposal, "acceptance": row.acceptance},
-                )
-            )
+    for low, direction in ((True, "too large"), (False, "too small")):
+        poor = [row for row in rows if (row.acceptance < 0.1 if low else row.acceptance > 0.7)]
+        if not poor:
+            continue
+        rates = ", ".join(f"{row.proposal} {row.acceptance:.1%}" for row in poor)
+        subject = "these proposals accept" if len(poor) > 1 else f"the {poor[0].proposal} proposal accepts"
+        message = (f"{subject} {'few' if low else 'most'} moves ({rates}): "
+                   f"{'their' if len(poor) > 1 else 'its'} steps are {direction}. "
+                   "The best acceptance is about 0.23 (0.44 for one parameter).")
+        if recommended in {row.proposal for row in poor}:
+            message += (f" {recommended} is still recommended because it was measured the most efficient of the "
+                        f"options tried; {'smaller' if low else 'larger'} steps (its covariance scaled by "
+                        f"{'0.5' if low else '2'}) may do better.")
+            if low and len(poor) == len(rows):
+                message += (" Every option accepting this rarely suggests the posterior's scale changes from one "
+                            "region to another (see any varying-scale finding).")
+        out.append(Finding("poor-acceptance", "warn", [], message,
+                           {"proposals": {row.proposal: row.acceptance for row in poor}}))
     return out
 
 
@@ -302,7 +313,7 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
         informed = reparam.informed if reparam is not None and reparam.prior_variance_ratio is not None else None
         findings += prior_dominated_findings(np.diag(pilot.covariance), np.diag(coords.prior_covariance), names,
                                              informed, posterior.dim)
-    findings += acceptance_findings(proof.rows)
+    findings += acceptance_findings(proof.rows, recommended)
     findings += acceptance_mismatch_findings(expected_acceptance, proof.tuned_row)
     findings += checks.multimodal + checks.funnel + checks.boundary + checks.heavy_tails
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
