@@ -6,10 +6,10 @@ STAMP := $(VENV)/.installed-stamp
 
 .PHONY: demo test test-fast bench clean
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml constraints.txt
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
-	$(PY) -m pip install --quiet -e '.[dev,cluster]'
+	$(PY) -m pip install --quiet -e '.[dev,cluster]' -c constraints.txt
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -10,12 +10,21 @@ them:
 
 and says so in its commit message. Timing fields (seconds per evaluation,
 worker busy share) are not deterministic and are left out.
+
+Same inputs give the same floats only on the same arithmetic: the cases run in
+a child process with the CPU kernels pinned (:data:`PINNED_ENV`: numpy's and
+OpenBLAS's AVX-512 kernels off, one BLAS thread), with the numpy, scipy and
+scikit-learn of ``constraints.txt`` (recorded in ``platform.json``). Without
+the pin, the same commit gave different chains on two x86-64 machines: a
+rounding difference of 1e-16 flipped one accept/reject decision.
 """
 
 from __future__ import annotations
 
 import importlib.util
 import json
+import os
+import subprocess
 import sys
 from pathlib import Path
 
@@ -91,10 +100,50 @@ def advice_payload(name: str) -> dict:
     return json.loads(json.dumps(payload, allow_nan=True))
 
 
+#: numpy's dispatch targets above x86-64-v3, turned off where this processor has them.
+AVX512_TARGETS = ("X86_V4", "AVX512_ICL", "AVX512_SPR", "AVX512_SKX", "AVX512_CLX", "AVX512_CNL", "AVX512F")
+
+
+def pinned_env() -> dict:
+    """The environment of the child process: OpenBLAS's Haswell kernels on one thread, no AVX-512 in numpy."""
+    from numpy._core._multiarray_umath import __cpu_dispatch__, __cpu_features__
+
+    off = [t for t in AVX512_TARGETS if t in __cpu_dispatch__ and __cpu_features__.get(t)]
+    env = dict(os.environ, OPENBLAS_CORETYPE="Haswell", OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
+    if off:
+        env["NPY_DISABLE_CPU_FEATURES"] = " ".join(off)
+    else:
+        env.pop("NPY_DISABLE_CPU_FEATURES", None)
+    return env
+
+
+def platform() -> dict:
+    """Versions the recorded floats depend on."""
+    import scipy
+    import sklearn
+
+    return {"numpy": np.__version__, "scipy": scipy.__version__, "scikit-learn": sklearn.__version__}
+
+
+def pinned_payloads(names) -> dict:
+    """name -> advice payload, computed in a child process under :func:`pinned_env`."""
+    root = str(HERE.parent.parent)
+    env = pinned_env()
+    env["PYTHONPATH"] = root + os.pathsep + env.get("PYTHONPATH", "")
+    out = subprocess.run([sys.executable, __file__, "--print", *names], env=env, check=True, capture_output=True,
+                         text=True, cwd=root)
+    return json.loads(out.stdout)
+
+
 def main(names) -> None:
-    for name in names or cases():
-        (HERE / f"{name}.json").write_text(json.dumps(advice_payload(name), indent=1, allow_nan=True) + "\n")
+    if names[:1] == ["--print"]:
+        print(json.dumps({name: advice_payload(name) for name in names[1:]}, allow_nan=True))
+        return
+    names = names or sorted(cases())
+    for name, payload in pinned_payloads(names).items():
+        (HERE / f"{name}.json").write_text(json.dumps(payload, indent=1, allow_nan=True) + "\n")
         print(f"wrote {name}.json")
+    (HERE / "platform.json").write_text(json.dumps(platform(), indent=1) + "\n")
 
 
 if __name__ == "__main__":
