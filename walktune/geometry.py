@@ -344,6 +344,7 @@ def multimodal_finding(regions: list, names: list) -> Finding | None:
                 "threshold": MINOR_MODE_MASS}
     check = _mass_check_text(regions)
     major = [r for r in regions if not r.minor]
+    moved = bool(np.all(np.isfinite([r.free_share for r in regions])))
     if len(major) < 2:
         return _minor_region_finding(regions, parts, names, evidence)
     return Finding(
@@ -351,10 +352,14 @@ def multimodal_finding(regions: list, names: list) -> Finding | None:
         "critical",
         list(names),
         f"the posterior has {len(major)} separated regions of non-negligible mass: " + "; ".join(parts) + ". "
-        + (check + " " if check else "") + "A random walk will not move between them at a useful rate, so do not "
-        "trust pooled estimates (the posterior table is marked NOT CONVERGED). Use tempering (e.g. "
-        "parallel tempering), or run each region separately with its own proposal (regions in advice.json) and "
-        "combine them with weights from the masses above, checked by other means (e.g. bridge sampling).",
+        + (check + " " if check else "") + (
+            "The posterior table pools chains that moved between the regions: its R-hat says whether they moved often "
+            "enough. " if moved else
+            "A random walk will not move between them at a useful rate, so no estimate may pool them: the posterior "
+            "table comes from one region's chains and is marked NOT CONVERGED. ")
+        + "Use tempering (e.g. parallel tempering), or run each region separately with its own proposal (regions in "
+        "advice.json) and combine them with weights from the masses above, checked by other means (e.g. bridge "
+        "sampling).",
         evidence,
     )
 
