@@ -189,7 +189,8 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     The points are drawn around the start with, per parameter, the largest of
     5 Laplace sds, the distance from the start to the mode, and half the
     mode's magnitude (a tight posterior far from zero may have a mirror image),
-    clipped inside the bounds. A climb's end point counts as another mode only
+    clipped inside the bounds; and from the mode's mirror image ``-mode`` (clipped
+    likewise) when it is more than 5 Laplace sds away. A climb's end point counts as another mode only
     when the log-density dips between it and every mode already known
     (:func:`walktune.geometry.separated`). Returns ``(mode, log-density)`` pairs.
     """
@@ -199,8 +200,13 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     known = [(fit.mode, fit.log_density)]
     low = np.where(np.isfinite(bounds[:, 0]), bounds[:, 0] + 1e-3 * sd, -np.inf)
     high = np.where(np.isfinite(bounds[:, 1]), bounds[:, 1] - 1e-3 * sd, np.inf)
-    for _ in range(count):
-        point = np.clip(start + spread * rng.standard_normal(dim), low, high)
+    points = [np.clip(start + spread * rng.standard_normal(dim), low, high) for _ in range(count)]
+    # And the mode's mirror image through zero, when it lies beyond 5 Laplace sds: a parameter whose sign the
+    # data cannot see (it enters as a square) has a mirror mode that random spread points seldom reach.
+    mirror = np.clip(-fit.mode, low, high)
+    if np.any(np.abs(mirror - fit.mode) > 5.0 * sd):
+        points.append(mirror)
+    for point in points:
         if not np.isfinite(counted.scalar(point)):
             continue
         end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
