@@ -258,7 +258,7 @@ def _regions_from_modes(modes: list, draws: np.ndarray, scale: np.ndarray, chain
 
 
 def _weigh_regions(counter, regions: list, scale: np.ndarray) -> str | None:
-    """Laplace masses of the regions (walktune.modes), from a finite-difference Hessian at each mode (2 d^2 + 1 evaluations)."""
+    """Laplace masses of the regions (walktune.modes), from a finite-difference Hessian at each mode (2 d^2 + 1 each)."""
     d = scale.shape[0]
     hessians = []
     for region in regions:
@@ -286,7 +286,7 @@ def _free_chain_shares(regions: list, labels: np.ndarray) -> None:
 
 
 def assign_draws(regions: list, draws: np.ndarray) -> np.ndarray:
-    """Region of every draw (chains, n, d): the region whose mode and covariance make it most likely; shape (chains, n)."""
+    """Region of every draw (chains, n, d), shape (chains, n): the one whose mode and covariance make it most likely."""
     m, n, d = draws.shape
     if len(regions) < 2:
         return np.zeros((m, n), dtype=int)

@@ -218,7 +218,7 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
 
 
 def _weigh_start_modes(counted, fit: ModeFit, others: list, cov: np.ndarray, bounds: np.ndarray) -> tuple:
-    """Laplace masses of the mode and the other modes (walktune.modes); the fit of the heaviest, the seeds and the minor ones.
+    """Laplace masses of the mode and the other modes (walktune.modes): the fit to start from, seeds and minor modes.
 
     A Hessian (2 d^2 + 1 evaluations) is taken at each other mode, only when
     there are any. When another mode outweighs the optimizer's by more than
@@ -236,7 +236,7 @@ def _weigh_start_modes(counted, fit: ModeFit, others: list, cov: np.ndarray, bou
     is_fit = lambda m: np.array_equal(m.mode, fit.mode)  # noqa: E731
     if any(is_fit(m) for m in minor) and laplace_covariance(main.hessian) is not None:
         fit = ModeFit(main.mode, main.log_density, main.hessian, laplace_covariance(main.hessian), "climb",
-                      f"{fit.message}; that mode holds a negligible share of the mass, and a climb from a spread point "
+                      f"{fit.message}; that mode holds a negligible share of the mass, and a climb from another point "
                       "found this one, which the chains start around")
     # The optimizer's mode (or the one that replaced it) first: the unconstrained start maps the others.
     seeds = [m for m in seeds if is_fit(m)] + [m for m in seeds if not is_fit(m)]

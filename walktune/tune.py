@@ -143,7 +143,7 @@ class TuneResult:
 
     @property
     def converged(self) -> bool:
-        """The chains the posterior table comes from agree (R-hat <= 1.01 for every parameter) and it is not one region of several."""
+        """The table's chains agree (R-hat <= 1.01 for every parameter), and the table is not one region of several."""
         return self.posterior_rhat is not None and bool(np.all(self.posterior_rhat <= 1.01)) and self.whole_posterior
 
     @property
