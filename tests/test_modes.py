@@ -165,3 +165,41 @@ def test_start_at_the_minor_mode_moves_to_the_main_one():
     assert "minor-mode" in {f.kind for f in result.findings}
     assert all(np.all(run.draws[:, :, 0] > 0) for run in result.runs.values())
     assert abs(result.posterior_mean[0] - target.mean[0]) <= 4 * result.posterior_mean_mcse[0]
+
+
+FAR_MODES = np.array([[-10.0, 0.0, 0.0], [10.0, 0.0, 0.0]])
+
+
+def far_mixture(theta):
+    # 0.3 N(-10 e1, I) + 0.7 N(10 e1, I): 20 sds apart, no random walk crosses (the dip is 50 nats).
+    return np.logaddexp(np.log(0.3) - 0.5 * np.sum((theta - FAR_MODES[0]) ** 2),
+                        np.log(0.7) - 0.5 * np.sum((theta - FAR_MODES[1]) ** 2))
+
+
+@pytest.mark.slow
+def test_chains_stuck_in_regions_of_comparable_mass_are_not_pooled():
+    """The table comes from the chains of the heavier region only, names the others, and is marked not converged
+    in TuneResult, advice.json and the console alike; within that region the posterior is N(10 e1, I) (closed
+    form, up to exp(-50)), so the table's means are within 4 MCSE of it and its sds within 4 standard errors of 1
+    (sd(x^2) / 2 = 1/sqrt(2) per effective draw, delta method)."""
+    from rich.console import Console
+
+    from walktune.console import posterior_table
+
+    result = walktune.tune(far_mixture, np.array([0.5, 0.0, 0.0]), seed=1)
+    scope = result.posterior_scope
+    assert scope.region is not None and scope.excluded and not scope.whole
+    assert set(scope.chains) | set(scope.excluded) == {0, 1, 2, 3}
+    assert result.regions[scope.region].mode[0] > 0 and scope.region_mass == pytest.approx(0.7, abs=0.01)
+    assert np.all(np.abs(result.posterior_mean - FAR_MODES[1]) <= 4 * result.posterior_mean_mcse)
+    ess = (result.posterior_sd / result.posterior_mean_mcse) ** 2
+    assert np.all(np.abs(result.posterior_sd - 1.0) <= 4 * np.sqrt(0.5 / ess))
+    assert not result.converged
+    table = result.to_dict()["posterior_table"]
+    assert table["excluded_chains"] == scope.excluded and table["whole_posterior"] is False
+    assert table["converged"] is False and table["mean"] == result.posterior_mean.tolist()
+    console = Console(width=200, record=True)
+    console.print(posterior_table(result, 200))
+    text = console.export_text()
+    assert "NOT the whole posterior" in text and "NOT CONVERGED" in text
+    assert [f.severity for f in result.findings if f.kind == "multimodal"] == ["critical"]
