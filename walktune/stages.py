@@ -130,6 +130,8 @@ class StartingPoints:
         the mass is near a bound.
     minor_modes : list of walktune.modes.ModeMass
         Separate modes of negligible Laplace mass: reported, and no chain starts there.
+    main_mode : walktune.modes.ModeMass or None
+        The heaviest mode, when other modes were found (None otherwise).
     """
 
     fit: ModeFit
@@ -190,8 +192,8 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     5 Laplace sds, the distance from the start to the mode, and half the
     mode's magnitude (a tight posterior far from zero may have a mirror image),
     clipped inside the bounds; and from the mode's mirror image ``-mode`` (clipped
-    likewise) when it is more than 5 Laplace sds away. A climb's end point counts as another mode only
-    when the log-density dips between it and every mode already known
+    likewise) when it is more than 5 Laplace sds away. A climb's end point counts
+    as another mode only when the log-density dips between it and every mode already known
     (:func:`walktune.geometry.separated`). Returns ``(mode, log-density)`` pairs.
     """
     dim = start.shape[0]
@@ -244,9 +246,11 @@ def _weigh_start_modes(counted, fit: ModeFit, others: list, cov: np.ndarray, bou
 
 
 def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, tracker) -> StartingPoints:
-    """Mode search (a third of the pilot's budget, less the Hessian's), then 4 climbs for other modes and the starts.
+    """Mode search (a third of the pilot's budget, less the Hessian's), climbs for other modes, and the starts.
 
-    Chains start only in modes of non-negligible Laplace mass (:mod:`walktune.modes`).
+    Four climbs from spread points and one from the mode's mirror image look for
+    other modes; chains start only in modes of non-negligible Laplace mass
+    (:mod:`walktune.modes`).
     """
     bounds, start, dim = posterior.bounds, posterior.start, posterior.dim
     counted = posterior.counted
