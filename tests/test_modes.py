@@ -49,6 +49,19 @@ def test_unknown_curvature_gives_unknown_masses_and_no_minor_mode():
     assert all(np.isnan(w.mass) for w in weighed) and not any(w.minor for w in weighed)
 
 
+def test_a_mode_without_laplace_mass_far_below_is_minor():
+    # No Laplace mass, and more than log(1000) + d log(100) (16.1 nats at d = 2) below the highest mode: minor,
+    # left out of the normalisation, so the others' shares stay known.
+    hessians = [-np.eye(2), -4.0 * np.eye(2), np.diag([1.0, -1.0])]
+    weighed = weigh_modes([np.zeros(2), np.ones(2), 5 * np.ones(2)], [0.0, 0.0, -16.2], hessians)
+    assert [w.minor for w in weighed] == [False, False, True] and np.isnan(weighed[2].mass)
+    # Equal heights: masses in the ratio of the volumes, det(Sigma)^(1/2): 1 against 1/4 (closed form).
+    np.testing.assert_allclose([weighed[0].mass, weighed[1].mass], [0.8, 0.2], rtol=1e-12)
+    # Within the gap the mode may yet hold a share: every mass unknown, nothing minor.
+    weighed = weigh_modes([np.zeros(2), 5 * np.ones(2)], [0.0, -16.0], [-np.eye(2), np.diag([1.0, -1.0])])
+    assert not any(w.minor for w in weighed) and all(np.isnan(w.mass) for w in weighed)
+
+
 def test_table_scope_rules():
     stuck = np.array([[0] * 100, [1] * 100, [0] * 100, [1] * 100])
     # Chains stuck in two regions of comparable mass: the heavier region's chains, not the whole posterior.

@@ -39,7 +39,7 @@ from sklearn.mixture import GaussianMixture
 from .diagnostics import iact
 from .findings import Finding
 from .mode import finite_difference_hessian
-from .modes import MINOR_MODE_MASS, chain_visits, is_minor, moved_between, relative_masses, laplace_log_mass
+from .modes import MINOR_MODE_MASS, chain_visits, is_minor, moved_between, weigh
 from .funnels import (  # noqa: F401  (the funnel detectors live in walktune.funnels)
     MIN_DRAWS_FOR_SPREAD,
     curvature_probe_cost,
@@ -76,6 +76,7 @@ class Region:
     mass: float = float("nan")
     free_share: float = float("nan")
     entries: int = 0
+    negligible: bool = False
 
     @property
     def sd(self) -> np.ndarray:
@@ -83,8 +84,8 @@ class Region:
 
     @property
     def minor(self) -> bool:
-        """Its Laplace mass is known and below walktune.modes.MINOR_MODE_MASS."""
-        return is_minor(self.mass)
+        """Its Laplace mass is below walktune.modes.MINOR_MODE_MASS, or unknown and its log-density far too low."""
+        return is_minor(self.mass) or self.negligible
 
     def to_dict(self) -> dict:
         return {"mode": self.mode.tolist(), "mean": self.mean.tolist(), "sd": self.sd.tolist(), "share": self.share,
@@ -265,9 +266,9 @@ def _weigh_regions(counter, regions: list, scale: np.ndarray) -> str | None:
         if counter.left() < 2 * d * d + 1:
             return "the evaluation budget ran out before the mass of every region was estimated"
         hessians.append(finite_difference_hessian(counter, region.mode, scale))
-    masses = relative_masses([laplace_log_mass(r.log_density, h) for r, h in zip(regions, hessians)])
-    for region, mass in zip(regions, masses):
-        region.mass = float(mass)
+    _, masses, minor = weigh([r.log_density for r in regions], hessians)
+    for region, mass, negligible in zip(regions, masses, minor):
+        region.mass, region.negligible = float(mass), bool(negligible and not np.isfinite(mass))
     return None
 
 

@@ -33,6 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .findings import Finding
+from .mode import ModeFit, finite_difference_hessian, laplace_covariance
 
 #: A mode (or region) holding less than this share of the mass found is minor. Leaving out a
 #: mode of relative mass w moves a posterior mean by at most w times the distance between the
@@ -67,6 +68,18 @@ def laplace_log_mass(log_density: float, hessian: np.ndarray | None) -> float:
     return float(log_density + 0.5 * d * np.log(2 * np.pi) - np.sum(np.log(np.diag(chol))))
 
 
+def unknown_mass_gap(dim: int) -> float:
+    """Log-density gap below the highest mode past which a mode of unknown Laplace mass is minor anyway.
+
+    A mode ``G`` nats below the highest holds at least :data:`MINOR_MODE_MASS` of
+    the mass only if its volume is ``exp(G) * MINOR_MODE_MASS`` times larger; at
+    ``G = log(1 / MINOR_MODE_MASS) + d log(100)`` it would have to be more than 100
+    times wider than the highest mode in every direction (a choice, for modes on
+    a bound or at a saddle of the climb, whose curvature gives no Laplace mass).
+    """
+    return float(np.log(1.0 / MINOR_MODE_MASS) + dim * np.log(100.0))
+
+
 def relative_masses(log_masses) -> np.ndarray:
     """Masses normalised to sum to one; all NaN when any is unknown (a share of an unknown total is unknown)."""
     log_masses = np.asarray(log_masses, dtype=float)
@@ -76,6 +89,29 @@ def relative_masses(log_masses) -> np.ndarray:
     return weights / weights.sum()
 
 
+def weigh(log_densities, hessians) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Laplace log-masses, relative masses and which modes are minor, for modes with these log-densities and Hessians.
+
+    A mode without a Laplace mass (its Hessian not negative definite) more than
+    :func:`unknown_mass_gap` below the highest mode is minor and left out of the
+    normalisation (its mass stays NaN); the others share the mass, all NaN when
+    any of them has none.
+
+    Returns
+    -------
+    log_masses, masses : ndarray of shape (modes,)
+    minor : ndarray of bool, shape (modes,)
+    """
+    log_densities = np.asarray(log_densities, dtype=float)
+    log_masses = np.array([laplace_log_mass(lp, h) for lp, h in zip(log_densities, hessians)])
+    dim = next((h.shape[0] for h in hessians if h is not None), 1)
+    far = ~np.isfinite(log_masses) & (log_densities < log_densities.max() - unknown_mass_gap(dim))
+    masses = np.full(log_masses.shape, np.nan)
+    masses[~far] = relative_masses(log_masses[~far])
+    minor = far | np.array([is_minor(w) for w in masses], dtype=bool)
+    return log_masses, masses, minor
+
+
 def is_minor(mass: float) -> bool:
     """Whether a relative mass is known and below :data:`MINOR_MODE_MASS`."""
     return bool(np.isfinite(mass) and mass < MINOR_MODE_MASS)
@@ -83,21 +119,18 @@ def is_minor(mass: float) -> bool:
 
 @dataclass(frozen=True)
 class ModeMass:
-    """A mode, its log-density, its Laplace log-mass and its share of the mass found (NaN when unknown)."""
+    """A mode, its log-density, Laplace log-mass and share of the mass found (NaN when unknown); whether it is minor."""
 
     mode: np.ndarray
     log_density: float
     log_mass: float
     mass: float
     hessian: np.ndarray | None = field(default=None, repr=False)
-
-    @property
-    def minor(self) -> bool:
-        return is_minor(self.mass)
+    minor: bool = False
 
 
 def weigh_modes(modes: list, log_densities: list, hessians: list) -> list:
-    """:class:`ModeMass` of every mode, heaviest first (the given order where the masses are unknown).
+    """:class:`ModeMass` of every mode, heaviest first (the given order where the masses are unknown; minor ones last).
 
     Parameters
     ----------
@@ -105,13 +138,38 @@ def weigh_modes(modes: list, log_densities: list, hessians: list) -> list:
     log_densities : list of float
     hessians : list of ndarray of shape (d, d) or None
     """
-    log_masses = [laplace_log_mass(lp, h) for lp, h in zip(log_densities, hessians)]
-    masses = relative_masses(log_masses)
-    weighed = [ModeMass(np.asarray(m, dtype=float), float(lp), lm, float(w), h)
-               for m, lp, lm, w, h in zip(modes, log_densities, log_masses, masses, hessians)]
-    if np.all(np.isfinite(masses)):
-        weighed.sort(key=lambda mm: -mm.mass)
+    log_masses, masses, minor = weigh(log_densities, hessians)
+    weighed = [ModeMass(np.asarray(m, dtype=float), float(lp), float(lm), float(w), h, bool(mi))
+               for m, lp, lm, w, h, mi in zip(modes, log_densities, log_masses, masses, hessians, minor)]
+    known = np.all(np.isfinite(masses[~minor]))
+    weighed.sort(key=lambda mm: (mm.minor, -mm.mass if known and not mm.minor else 0.0))
     return weighed
+
+
+def weigh_start_modes(log_density, fit: ModeFit, others: list, cov: np.ndarray, bounds: np.ndarray) -> tuple:
+    """Laplace masses of the optimizer's mode and the other modes: the fit to start from, seeds and minor modes.
+
+    A Hessian (2 d^2 + 1 evaluations) is taken at each other mode, only when
+    there are any. When another mode outweighs the optimizer's by more than
+    1 / MINOR_MODE_MASS, it becomes the mode the pilot starts from.
+    Returns ``(fit, main, seeds, minor)``: the fit to start from, its
+    :class:`~walktune.modes.ModeMass`, the modes to start chains in (heaviest
+    first) and the minor ones.
+    """
+    if not others:
+        return fit, None, [fit.mode], []
+    scales = np.maximum(np.sqrt(np.diag(cov)), 1e-12)
+    hessians = [fit.hessian] + [finite_difference_hessian(log_density, mode, scales, bounds) for mode, _ in others]
+    weighed = weigh_modes([fit.mode] + [m for m, _ in others], [fit.log_density] + [lp for _, lp in others], hessians)
+    main, seeds, minor = weighed[0], [m for m in weighed if not m.minor], [m for m in weighed if m.minor]
+    is_fit = lambda m: np.array_equal(m.mode, fit.mode)  # noqa: E731
+    if any(is_fit(m) for m in minor) and laplace_covariance(main.hessian) is not None:
+        fit = ModeFit(main.mode, main.log_density, main.hessian, laplace_covariance(main.hessian), "climb",
+                      f"{fit.message}; that mode holds a negligible share of the mass, and a climb from another point "
+                      "found this one, which the chains start around")
+    # The optimizer's mode (or the one that replaced it) first: the unconstrained start maps the others.
+    seeds = [m for m in seeds if is_fit(m)] + [m for m in seeds if not is_fit(m)]
+    return fit, main, [m.mode for m in seeds], minor
 
 
 def _where(point: np.ndarray, names: list) -> str:
@@ -124,7 +182,9 @@ def minor_mode_finding(minor: list, main: ModeMass, names: list) -> Finding | No
     if not minor:
         return None
     parts = [f"near ({_where(m.mode, names)}), {main.log_density - m.log_density:.1f} below the main mode in "
-             f"log-density, Laplace mass {m.mass:.2g} of the total" for m in minor]
+             "log-density, " + (f"Laplace mass {m.mass:.2g} of the total" if np.isfinite(m.mass) else
+                                "no Laplace mass (the curvature there is not a mode's: a bound or a saddle), far too "
+                                "low to hold a share") for m in minor]
     return Finding(
         "minor-mode", "info", list(names),
         f"{'a separate local mode' if len(minor) == 1 else f'{len(minor)} separate local modes'} of negligible mass: "
@@ -132,7 +192,8 @@ def minor_mode_finding(minor: list, main: ModeMass, names: list) -> Finding | No
         "changes no estimate beyond its Monte Carlo error, so no chain was started there and the estimates leave it "
         "out. If that mode matters to you (a tail probability, a sign), estimate its mass by other means.",
         {"minor_modes": [{"mode": m.mode.tolist(), "log_density": m.log_density,
-                          "log_density_gap": main.log_density - m.log_density, "laplace_mass": m.mass}
+                          "log_density_gap": main.log_density - m.log_density,
+                          "laplace_mass": float(m.mass) if np.isfinite(m.mass) else None}
                          for m in minor],
          "main_mode": main.mode.tolist(), "threshold": MINOR_MODE_MASS},
     )

@@ -47,8 +47,8 @@ from .geometry import (
     varying_scale_findings,
     within_chain_iact,
 )
-from .mode import ModeFit, find_mode, finite_difference_hessian, laplace_covariance
-from .modes import ModeMass, TableScope, minor_mode_finding, table_scope, weigh_modes
+from .mode import ModeFit, find_mode
+from .modes import ModeMass, TableScope, minor_mode_finding, table_scope, weigh_start_modes
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
 from .recommend import ComparisonRow, row_from_run
@@ -219,32 +219,6 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     return known[1:]
 
 
-def _weigh_start_modes(counted, fit: ModeFit, others: list, cov: np.ndarray, bounds: np.ndarray) -> tuple:
-    """Laplace masses of the mode and the other modes (walktune.modes): the fit to start from, seeds and minor modes.
-
-    A Hessian (2 d^2 + 1 evaluations) is taken at each other mode, only when
-    there are any. When another mode outweighs the optimizer's by more than
-    1 / MINOR_MODE_MASS, it becomes the mode the pilot starts from.
-    Returns ``(fit, main, seeds, minor)``: the fit to start from, its
-    :class:`~walktune.modes.ModeMass`, the modes to start chains in (heaviest
-    first) and the minor ones.
-    """
-    if not others:
-        return fit, None, [fit.mode], []
-    scales = np.maximum(np.sqrt(np.diag(cov)), 1e-12)
-    hessians = [fit.hessian] + [finite_difference_hessian(counted.scalar, mode, scales, bounds) for mode, _ in others]
-    weighed = weigh_modes([fit.mode] + [m for m, _ in others], [fit.log_density] + [lp for _, lp in others], hessians)
-    main, seeds, minor = weighed[0], [m for m in weighed if not m.minor], [m for m in weighed if m.minor]
-    is_fit = lambda m: np.array_equal(m.mode, fit.mode)  # noqa: E731
-    if any(is_fit(m) for m in minor) and laplace_covariance(main.hessian) is not None:
-        fit = ModeFit(main.mode, main.log_density, main.hessian, laplace_covariance(main.hessian), "climb",
-                      f"{fit.message}; that mode holds a negligible share of the mass, and a climb from another point "
-                      "found this one, which the chains start around")
-    # The optimizer's mode (or the one that replaced it) first: the unconstrained start maps the others.
-    seeds = [m for m in seeds if is_fit(m)] + [m for m in seeds if not is_fit(m)]
-    return fit, main, [m.mode for m in seeds], minor
-
-
 def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, tracker) -> StartingPoints:
     """Mode search (a third of the pilot's budget, less the Hessian's), climbs for other modes, and the starts.
 
@@ -265,7 +239,7 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     optimizer_fit = fit
-    fit, main, centres, minor = _weigh_start_modes(counted, fit, other_modes, initial, bounds)
+    fit, main, centres, minor = weigh_start_modes(counted.scalar, fit, other_modes, initial, bounds)
     if fit is not optimizer_fit:
         initial = _initial_covariance(fit, bounds, start)
         tracker.estimate(initial, 1.0, "the Laplace approximation at the heaviest mode")
@@ -584,7 +558,8 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     multimodal = [f for f in (multimodal_finding(regions, names),
                               minor_mode_finding(start.minor_modes, start.main_mode, names)) if f is not None]
     chosen_draws = proof.runs[chosen].draws
-    table = table_scope(assign_draws(regions, chosen_draws), [r.mass for r in regions])
+    # A region minor by its log-density alone (no Laplace mass) counts as holding none.
+    table = table_scope(assign_draws(regions, chosen_draws), [0.0 if r.negligible else r.mass for r in regions])
     table_draws = chosen_draws[table.chains]
     table_stats = proof.stats[chosen] if table.region is None else measure_chains(table_draws)
     funnel, undecided_scale = _funnel_checks(posterior, proof_draws, proof, pilot, budget)
