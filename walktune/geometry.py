@@ -374,10 +374,10 @@ def _minor_region_finding(regions: list, parts: list, names: list, evidence: dic
         "minor-mode",
         "warn" if stuck else "info",
         list(names),
-        f"separated regions, all but one of negligible mass: " + "; ".join(parts) + f" (below the main mode in "
+        "separated regions, all but one of negligible mass: " + "; ".join(parts) + " (below the main mode in "
         f"log-density: {gaps}). Below {MINOR_MODE_MASS:g} of the mass a region changes no estimate beyond its Monte "
-        "Carlo error" + (f"; chains {', '.join(map(str, stuck))} sat in one and are left out of the posterior table."
-                         if stuck else "."),
+        "Carlo error" + (f"; chains {', '.join(map(str, stuck))} spent time in one, and a chain that stayed there is "
+                         "left out of the posterior table." if stuck else "."),
         evidence,
     )
 
