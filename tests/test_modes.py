@@ -12,7 +12,7 @@ import pytest
 from scipy import stats
 
 import walktune
-from walktune.geometry import assign_draws, find_regions
+from walktune.geometry import assign_draws, find_regions, multimodal_finding
 from walktune.mode import finite_difference_hessian
 from walktune.modes import MINOR_MODE_MASS, TableScope, table_scope, weigh_modes
 
@@ -96,6 +96,8 @@ def test_chain_stuck_in_a_minor_region_is_left_out_of_the_table():
     assert by_place[0].minor and by_place[0].chains == [3]
     scope = table_scope(assign_draws(regions, draws), [r.mass for r in regions])
     assert scope.chains == [0, 1, 2] and scope.excluded == [3] and scope.whole
+    finding = multimodal_finding(regions, ["a", "b", "c"])
+    assert (finding.kind, finding.severity) == ("minor-mode", "warn") and "chains 3" in finding.message
 
 
 def test_masses_checked_against_chains_that_move():
