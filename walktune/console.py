@@ -153,8 +153,13 @@ def posterior_table(result: TuneResult, width: int | None = None) -> Table:
     rows = {row.proposal: row for row in result.comparison}
     shape = f", {rows[run].evaluations} evaluations" if run in rows else ""
     title = f"Posterior (mean, MCSE, sd and R-hat from the {run} fixed-proposal run{shape})"
+    scope = result.posterior_scope.describe() if result.posterior_scope is not None else ""
+    if scope:
+        title += f"\n{scope[0].upper()}{scope[1:]}"
     if result.posterior_rhat is not None and not result.converged:
-        title += f"\nNOT CONVERGED: R-hat up to {np.nanmax(result.posterior_rhat):.3f} (below 1.01 wanted); do not trust these numbers"
+        worst = np.nanmax(result.posterior_rhat)
+        title += ("\nNOT CONVERGED: " + (f"R-hat up to {worst:.3f} (below 1.01 wanted)" if not worst <= 1.01 else
+                                          "one region of a multimodal posterior") + "; do not trust these numbers")
     columns = [("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
                ("step", "right"), ("R^2 others", "right")]
     sd = result.posterior_sd if result.posterior_sd is not None else result.structure.sd

@@ -306,7 +306,8 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     names = posterior.names
     sd = np.sqrt(np.diag(pilot.covariance))
     findings = correlation_findings(structure, names) + conditioning_findings(structure, names)
-    findings += convergence_findings(proof.stats[recommended].rhat, names, recommended)
+    # The chains the posterior table comes from (walktune.modes.table_scope): all of the recommended run's, or one region's.
+    findings += convergence_findings(checks.table_stats.rhat, names, recommended)
     findings += identification_findings(sd, posterior.bounds, names)
     if posterior.prior_terms is not None and coords.prior_covariance is not None:
         reparam = coords.reparam

@@ -38,6 +38,8 @@ from sklearn.mixture import GaussianMixture
 
 from .diagnostics import iact
 from .findings import Finding
+from .mode import finite_difference_hessian
+from .modes import MINOR_MODE_MASS, chain_visits, is_minor, moved_between, weigh
 from .funnels import (  # noqa: F401  (the funnel detectors live in walktune.funnels)
     MIN_DRAWS_FOR_SPREAD,
     curvature_probe_cost,
@@ -56,17 +58,43 @@ SEPARATING_DIP = 3.0
 
 @dataclass
 class Region:
-    """One separated region of the posterior."""
+    """One separated region of the posterior.
+
+    ``mass`` is its Laplace share of the mass of the regions found
+    (:mod:`walktune.modes`; NaN when a Hessian was not negative definite or
+    the budget ran out), ``free_share`` the share of the draws of chains that
+    moved between regions that fell in it (NaN when no chain moved) and
+    ``entries`` how many times those chains entered it.
+    """
 
     mode: np.ndarray
     mean: np.ndarray
     covariance: np.ndarray
     share: float
     chains: list = field(default_factory=list)
+    log_density: float = float("nan")
+    mass: float = float("nan")
+    free_share: float = float("nan")
+    entries: int = 0
+    negligible: bool = False
 
     @property
     def sd(self) -> np.ndarray:
         return np.sqrt(np.diag(self.covariance))
+
+    @property
+    def minor(self) -> bool:
+        """Its Laplace mass is below walktune.modes.MINOR_MODE_MASS, or unknown and its log-density far too low."""
+        return is_minor(self.mass) or self.negligible
+
+    def to_dict(self) -> dict:
+        return {"mode": self.mode.tolist(), "mean": self.mean.tolist(), "sd": self.sd.tolist(), "share": self.share,
+                "chains": self.chains, "log_density": _number(self.log_density), "laplace_mass": _number(self.mass),
+                "share_of_free_chains": _number(self.free_share)}
+
+
+def _number(x: float):
+    return float(x) if np.isfinite(x) else None
 
 
 def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
@@ -188,8 +216,24 @@ def find_regions(
         else:
             modes.append([point, value])
     if len(modes) < 2:
-        return [Region(flat.mean(axis=0), flat.mean(axis=0), np.atleast_2d(np.cov(flat.T)), 1.0, sorted(set(chain_ids)))], note
-    # Assign draws to regions: nearest mode, then by Mahalanobis distance under each region's covariance.
+        region = Region(flat.mean(axis=0), flat.mean(axis=0), np.atleast_2d(np.cov(flat.T)), 1.0,
+                        sorted(set(chain_ids)), mass=1.0)
+        return [region], note
+    regions, labels = _regions_from_modes(modes, draws, scale, chain_ids)
+    note = _weigh_regions(counter, regions, scale) or note
+    _free_chain_shares(regions, labels)
+    return regions, note
+
+
+def _region_log_likelihoods(points, covs, draws: np.ndarray) -> np.ndarray:
+    """Gaussian log-density of each draw (N, d) under each region's mode and covariance: shape (N, regions)."""
+    return np.stack([stats.multivariate_normal(p, c, allow_singular=True).logpdf(draws) for p, c in zip(points, covs)],
+                    axis=1).reshape(draws.shape[0], len(points))
+
+
+def _regions_from_modes(modes: list, draws: np.ndarray, scale: np.ndarray, chain_ids: list) -> tuple[list, np.ndarray]:
+    """Assign draws (chains, n, d) to the modes (nearest, then Gaussian likelihood); regions and labels (chains, n)."""
+    m, n, d = draws.shape
     all_draws = draws.reshape(-1, d)
     points = np.array([mode[0] for mode in modes])
     labels = np.argmin((((all_draws[:, None, :] - points[None]) / scale) ** 2).sum(axis=2), axis=1)
@@ -198,50 +242,143 @@ def find_regions(
         for r in range(len(modes)):
             members = all_draws[labels == r]
             covs.append(np.cov(members.T) + 1e-9 * np.diag(scale**2) if members.shape[0] > d + 1 else np.diag(scale**2))
-        distance = np.stack(
-            [
-                stats.multivariate_normal(points[r], covs[r], allow_singular=True).logpdf(all_draws)
-                for r in range(len(modes))
-            ],
-            axis=1,
-        )
-        labels = np.argmax(distance, axis=1)
+        labels = np.argmax(_region_log_likelihoods(points, covs, all_draws), axis=1)
     by_chain = labels.reshape(m, n)
     regions = []
     for r in range(len(modes)):
         members = all_draws[labels == r]
         if members.shape[0] == 0:
             # A mode no chain reached: report it with the optimizer's point only.
-            regions.append(Region(points[r], points[r], np.diag((0.1 * scale) ** 2), 0.0, []))
+            regions.append(Region(points[r], points[r], np.diag((0.1 * scale) ** 2), 0.0, [], modes[r][1]))
             continue
         chains = sorted({chain_ids[c] for c in range(m) if np.mean(by_chain[c] == r) >= 0.05})
         cov = np.atleast_2d(np.cov(members.T)) if members.shape[0] > 1 else np.diag((0.1 * scale) ** 2)
-        regions.append(Region(points[r], members.mean(axis=0), cov, members.shape[0] / all_draws.shape[0], chains))
-    return regions, note
+        regions.append(Region(points[r], members.mean(axis=0), cov, members.shape[0] / all_draws.shape[0], chains,
+                              modes[r][1]))
+    return regions, by_chain
+
+
+def _weigh_regions(counter, regions: list, scale: np.ndarray) -> str | None:
+    """Laplace masses of the regions (walktune.modes), from a finite-difference Hessian at each mode (2 d^2 + 1 each)."""
+    d = scale.shape[0]
+    hessians = []
+    for region in regions:
+        if counter.left() < 2 * d * d + 1:
+            return "the evaluation budget ran out before the mass of every region was estimated"
+        hessians.append(finite_difference_hessian(counter, region.mode, scale))
+    _, masses, minor = weigh([r.log_density for r in regions], hessians)
+    for region, mass, negligible in zip(regions, masses, minor):
+        region.mass, region.negligible = float(mass), bool(negligible and not np.isfinite(mass))
+    return None
+
+
+def _free_chain_shares(regions: list, labels: np.ndarray) -> None:
+    """Each region's share of the draws of chains that moved between regions, and how often they entered it."""
+    free = moved_between(chain_visits(labels, len(regions)))
+    if not free.any():
+        return
+    moving = labels[free]
+    entering = np.ones(moving.shape, dtype=bool)  # the first draw of a chain, and every change of region
+    entering[:, 1:] = moving[:, 1:] != moving[:, :-1]
+    entered = moving[entering]
+    for r, region in enumerate(regions):
+        region.free_share = float(np.mean(moving == r))
+        region.entries = int(np.sum(entered == r))
+
+
+def assign_draws(regions: list, draws: np.ndarray) -> np.ndarray:
+    """Region of every draw (chains, n, d), shape (chains, n): the one whose mode and covariance make it most likely."""
+    m, n, d = draws.shape
+    if len(regions) < 2:
+        return np.zeros((m, n), dtype=int)
+    flat = draws.reshape(-1, d)
+    return np.argmax(_region_log_likelihoods([r.mode for r in regions], [r.covariance for r in regions], flat),
+                     axis=1).reshape(m, n)
+
+
+#: The Laplace masses and the free chains' shares agree when they differ by less than this plus two
+#: binomial standard errors of the share over the free chains' entries into regions (a rule of thumb:
+#: a Laplace mass of a skewed mode may be off by a few tenths of its share).
+MASS_AGREEMENT = 0.1
+
+
+def masses_agree(regions: list) -> bool | None:
+    """Whether the regions' Laplace masses agree with the free chains' shares; None when either is unknown."""
+    masses = np.array([r.mass for r in regions])
+    shares = np.array([r.free_share for r in regions])
+    if not (np.all(np.isfinite(masses)) and np.all(np.isfinite(shares))):
+        return None
+    visits = max(1, sum(r.entries for r in regions))
+    se = np.sqrt(masses * (1 - masses) / visits)
+    return bool(np.all(np.abs(shares - masses) <= MASS_AGREEMENT + 2 * se))
+
+
+def _mass_check_text(regions: list) -> str:
+    agree = masses_agree(regions)
+    if not np.all(np.isfinite([r.free_share for r in regions])):
+        return ("No chain moved between regions, so the draws cannot check the masses; the Laplace masses assume each "
+                "region is close to Gaussian.") if np.all(np.isfinite([r.mass for r in regions])) else ""
+    shares = ", ".join(f"{r.free_share:.0%}" for r in regions)
+    visits = sum(r.entries for r in regions)
+    spent = f"Chains that moved between regions ({visits} visits in all) spent {shares} of their draws in them"
+    if agree is None:
+        return spent + "."
+    verdict = "agrees with" if agree else "DISAGREES with"
+    return (f"{spent}, which {verdict} the Laplace "
+            "masses" + ("." if agree else ": a region is far from Gaussian, or those chains have not settled; "
+                        "trust neither without a longer run or tempering."))
 
 
 def multimodal_finding(regions: list, names: list) -> Finding | None:
+    """``multimodal`` (critical) when two or more regions hold a share of the mass that is not negligible,
+    else ``minor-mode`` for the regions of negligible Laplace mass (warn when chains sat in them)."""
     if len(regions) < 2:
         return None
     parts = []
     for i, region in enumerate(regions):
         where = ", ".join(f"{names[j]}={region.mode[j]:.3g}" for j in range(min(len(names), 4)))
         chains = ", ".join(map(str, region.chains)) if region.chains else "none"
-        parts.append(f"region {i + 1} near ({where}{', ...' if len(names) > 4 else ''}), {region.share:.0%} of draws, chains {chains}")
+        mass = f"Laplace mass {region.mass:.2g}" if np.isfinite(region.mass) else "mass unknown"
+        parts.append(f"region {i + 1} near ({where}{', ...' if len(names) > 4 else ''}), {mass}, "
+                     f"{region.share:.0%} of draws, chains {chains}")
+    evidence = {"regions": [r.to_dict() for r in regions], "masses_agree": masses_agree(regions),
+                "threshold": MINOR_MODE_MASS}
+    check = _mass_check_text(regions)
+    major = [r for r in regions if not r.minor]
+    moved = bool(np.all(np.isfinite([r.free_share for r in regions])))
+    if len(major) < 2:
+        return _minor_region_finding(regions, parts, names, evidence)
     return Finding(
         "multimodal",
         "critical",
         list(names),
-        f"the posterior has {len(regions)} separated regions: " + "; ".join(parts) + ". A random walk will not move "
-        "between them at a useful rate, so do not trust pooled estimates. Use tempering (e.g. parallel tempering), or "
-        "run each region separately with its own proposal (regions in advice.json) and combine them; the relative "
-        "weights of the regions then need other means (e.g. bridge sampling or marginal-likelihood estimates).",
-        {
-            "regions": [
-                {"mode": r.mode.tolist(), "mean": r.mean.tolist(), "sd": r.sd.tolist(), "share": r.share, "chains": r.chains}
-                for r in regions
-            ]
-        },
+        f"the posterior has {len(major)} separated regions of non-negligible mass: " + "; ".join(parts) + ". "
+        + (check + " " if check else "") + (
+            "The posterior table pools chains that moved between the regions: its R-hat says whether they moved often "
+            "enough. " if moved else
+            "A random walk will not move between them at a useful rate, so no estimate may pool them: the posterior "
+            "table comes from one region's chains and is marked NOT CONVERGED. ")
+        + "Use tempering (e.g. parallel tempering), or run each region separately with its own proposal (regions in "
+        "advice.json) and combine them with weights from the masses above, checked by other means (e.g. bridge "
+        "sampling).",
+        evidence,
+    )
+
+
+def _minor_region_finding(regions: list, parts: list, names: list, evidence: dict) -> Finding:
+    top = max(r.log_density for r in regions)
+    minor = [i for i, r in enumerate(regions) if r.minor]
+    stuck = sorted({c for i in minor for c in regions[i].chains})
+    gaps = ", ".join(f"region {i + 1} {top - regions[i].log_density:.1f}" for i in minor)
+    return Finding(
+        "minor-mode",
+        "warn" if stuck else "info",
+        list(names),
+        "separated regions, all but one of negligible mass: " + "; ".join(parts) + " (below the main mode in "
+        f"log-density: {gaps}). Below {MINOR_MODE_MASS:g} of the mass a region changes no estimate beyond its Monte "
+        "Carlo error" + (f"; chains {', '.join(map(str, stuck))} spent time in one, and a chain that stayed there is "
+                         "left out of the posterior table." if stuck else "."),
+        evidence,
     )
 
 

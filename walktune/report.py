@@ -422,9 +422,12 @@ def _plain_advice(advice: dict) -> list:
                  f"{format_factor(advice['predicted_slowdown']['step_sizes']['slowest_parameter'], 2)} lower smallest ESS "
                  "per evaluation than with the tuned covariance.")
     table = advice.get("posterior_table")
+    if table and table.get("region") is not None:
+        lines.append(_scope_text(table))
     if table and not table.get("converged", True):
-        lines.append(f"The posterior summary comes from the {table['run']} run, whose chains have not converged "
-                     "(R-hat above 1.01): do not trust it yet.")
+        why = ("it covers one region of a multimodal posterior" if table.get("whole_posterior", True) is False
+               else "the chains have not converged (R-hat above 1.01)")
+        lines.append(f"The posterior summary comes from the {table['run']} run, and {why}: do not trust it yet.")
     critical = [f for f in advice.get("findings", []) if f["severity"] == "critical"]
     if critical:
         lines.append("Before anything else: " + "; ".join(f["kind"] for f in critical) + " (see the findings).")
@@ -451,6 +454,17 @@ figcaption { font-size: .9em; color: #555; }
 """
 
 
+def _scope_text(table: dict) -> str:
+    """Which chains of the run the posterior table pools, when not all (advice.json ``posterior_table``)."""
+    mass = table.get("region_mass")
+    text = (f"The posterior table comes from chains {', '.join(map(str, table['chains']))} in region {table['region']} "
+            f"({'Laplace mass ' + format(mass, '.2g') if mass is not None else 'mass unknown'}) only")
+    if table.get("excluded_chains"):
+        text += f"; chains {', '.join(map(str, table['excluded_chains']))} sat in other regions and are left out"
+    return text + (" (what is left out holds a negligible share of the mass)." if table.get("whole_posterior")
+                   else "; it is not the whole posterior.")
+
+
 def _posterior_html(advice: dict, names: list) -> list:
     """The posterior table of a tuning run: mean, MCSE, sd and R-hat from the one run it names."""
     table = advice.get("posterior_table")
@@ -458,9 +472,12 @@ def _posterior_html(advice: dict, names: list) -> list:
         return []
     esc = html.escape
     parts = [f"<h2>Posterior (from the {esc(table['run'])} fixed-proposal run)</h2>"]
+    if table.get("region") is not None:
+        parts.append(f"<p>{esc(_scope_text(table))}</p>")
     if not table.get("converged", True):
-        parts.append('<p class="partial">NOT CONVERGED: an R-hat is above 1.01 (marked !); these numbers are not '
-                     "trustworthy yet.</p>")
+        why = ("one region of a multimodal posterior" if table.get("whole_posterior", True) is False
+               else "an R-hat is above 1.01 (marked !)")
+        parts.append(f'<p class="partial">NOT CONVERGED: {why}; these numbers are not trustworthy yet.</p>')
     parts.append("<table><tr><th>parameter</th><th>mean</th><th>MCSE</th><th>sd</th><th>R-hat</th></tr>")
 
     def cell(value, digits=4):

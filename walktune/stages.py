@@ -7,7 +7,8 @@
     advice  = advise(pilot.covariance, ...)                       # walktune.advice, walktune.analysis
     coords  = new_coordinates(posterior, pilot, start, budget, seed, tracker, ...)
     proof   = run_proofs(posterior, pilot, advice, coords, budget, current, seed, tracker)
-    checks  = check_geometry(posterior, proof, start, pilot, budget)
+    chosen  = recommend(proof.rows).proposal
+    checks  = check_geometry(posterior, proof, start, pilot, budget, chosen)
 
 Each stage decides its own evaluation budget from :class:`Budget` (the job's
 total, the pilot's share) and the evaluations already spent
@@ -33,6 +34,8 @@ from .engine import Chains, sample
 from .errors import WalktuneError
 from .findings import Finding
 from .geometry import (
+    MIN_DRAWS_TO_DECIDE,
+    assign_draws,
     boundary_findings,
     climb,
     curvature_probe_cost,
@@ -45,6 +48,7 @@ from .geometry import (
     within_chain_iact,
 )
 from .mode import ModeFit, find_mode
+from .modes import ModeMass, TableScope, minor_mode_finding, table_scope, weigh_start_modes
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
 from .recommend import ComparisonRow, row_from_run
@@ -124,6 +128,10 @@ class StartingPoints:
     unconstrained : walktune.unconstrained.UnconstrainedStart or None
         Where the pilot starts in unconstrained coordinates, when the mode or
         the mass is near a bound.
+    minor_modes : list of walktune.modes.ModeMass
+        Separate modes of negligible Laplace mass: reported, and no chain starts there.
+    main_mode : walktune.modes.ModeMass or None
+        The heaviest mode, when other modes were found (None otherwise).
     """
 
     fit: ModeFit
@@ -132,6 +140,8 @@ class StartingPoints:
     states: np.ndarray
     values: np.ndarray
     unconstrained: UnconstrainedStart | None = None
+    minor_modes: list = field(default_factory=list)
+    main_mode: ModeMass | None = None
 
 
 def _initial_covariance(fit: ModeFit, bounds: np.ndarray, start: np.ndarray) -> np.ndarray:
@@ -176,14 +186,15 @@ def _overdispersed_starts(counted, centres, cov, chains: int, rng, bounds: np.nd
 
 
 def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
-    """Climb from ``count`` points spread widely around the start; return modes separate from ``fit.mode``.
+    """Climb from ``count`` points spread widely around the start; return the modes separate from ``fit.mode``.
 
     The points are drawn around the start with, per parameter, the largest of
     5 Laplace sds, the distance from the start to the mode, and half the
     mode's magnitude (a tight posterior far from zero may have a mirror image),
-    clipped inside the bounds. A climb's end point counts as another mode only
-    when the log-density dips between it and every mode already known
-    (:func:`walktune.geometry.separated`).
+    clipped inside the bounds; and from the mode's mirror image ``-mode`` (clipped
+    likewise) when it is more than 5 Laplace sds away. A climb's end point counts
+    as another mode only when the log-density dips between it and every mode already known
+    (:func:`walktune.geometry.separated`). Returns ``(mode, log-density)`` pairs.
     """
     dim = start.shape[0]
     sd = np.sqrt(np.diag(cov))
@@ -191,8 +202,13 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     known = [(fit.mode, fit.log_density)]
     low = np.where(np.isfinite(bounds[:, 0]), bounds[:, 0] + 1e-3 * sd, -np.inf)
     high = np.where(np.isfinite(bounds[:, 1]), bounds[:, 1] - 1e-3 * sd, np.inf)
-    for _ in range(count):
-        point = np.clip(start + spread * rng.standard_normal(dim), low, high)
+    points = [np.clip(start + spread * rng.standard_normal(dim), low, high) for _ in range(count)]
+    # And the mode's mirror image through zero, when it lies beyond 5 Laplace sds: a parameter whose sign the
+    # data cannot see (it enters as a square) has a mirror mode that random spread points seldom reach.
+    mirror = np.clip(-fit.mode, low, high)
+    if np.any(np.abs(mirror - fit.mode) > 5.0 * sd):
+        points.append(mirror)
+    for point in points:
         if not np.isfinite(counted.scalar(point)):
             continue
         end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
@@ -200,11 +216,16 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
             continue
         if all(separated(counted.scalar, end, mode, value, lp) for mode, lp in known):
             known.append((end, value))
-    return [mode for mode, _ in known[1:]]
+    return known[1:]
 
 
 def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, tracker) -> StartingPoints:
-    """Mode search (a third of the pilot's budget, less the Hessian's), then 4 climbs for other modes and the starts."""
+    """Mode search (a third of the pilot's budget, less the Hessian's), climbs for other modes, and the starts.
+
+    Four climbs from spread points and one from the mode's mirror image look for
+    other modes; chains start only in modes of non-negligible Laplace mass
+    (:mod:`walktune.modes`).
+    """
     bounds, start, dim = posterior.bounds, posterior.start, posterior.dim
     counted = posterior.counted
     tracker("mode", 0, 1)
@@ -217,10 +238,14 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     initial = _initial_covariance(fit, bounds, start)
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
-    centres = [fit.mode] + other_modes
+    optimizer_fit = fit
+    fit, main, centres, minor = weigh_start_modes(counted.scalar, fit, other_modes, initial, bounds)
+    if fit is not optimizer_fit:
+        initial = _initial_covariance(fit, bounds, start)
+        tracker.estimate(initial, 1.0, "the Laplace approximation at the heaviest mode")
     states, values = _overdispersed_starts(counted, centres, initial, budget.chains, rng, bounds)
     unconstrained = _unconstrained_start(posterior, fit, initial, centres, budget, rng)
-    return StartingPoints(fit, initial, centres, states, values, unconstrained)
+    return StartingPoints(fit, initial, centres, states, values, unconstrained, minor, main)
 
 
 def _unconstrained_start(posterior: Posterior, fit: ModeFit, initial: np.ndarray, centres: list, budget: Budget,
@@ -490,10 +515,15 @@ class GeometryChecks:
     Attributes
     ----------
     regions : list of walktune.geometry.Region
-        Separated regions (one when there is no second).
+        Separated regions (one when there is no second), with their Laplace masses.
     multimodal, funnel, boundary, heavy_tails : list of Finding
+        ``multimodal`` also holds the ``minor-mode`` findings.
     undecided : list of str
         Checks the draws were too few to settle.
+    table : walktune.modes.TableScope
+        The chains of the recommended run the posterior table comes from.
+    table_stats : walktune.diagnostics.ChainMeasures
+        Their measures: the posterior table.
     """
 
     regions: list
@@ -502,15 +532,20 @@ class GeometryChecks:
     boundary: list
     heavy_tails: list
     undecided: list
+    table: TableScope
+    table_stats: ChainMeasures
 
 
 def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pilot: PilotResult,
-                   budget: Budget) -> GeometryChecks:
-    """Separated modes, funnels, pile-up at bounds and heavy tails, within what the budget leaves.
+                   budget: Budget, chosen: str) -> GeometryChecks:
+    """Separated modes and their masses, the table's chains, funnels, pile-up at bounds and heavy tails.
 
-    The detectors look at every proof run: all are fixed-proposal continuations
-    of the pilot's chains. The curvature probe for funnels runs only when the
-    draws showed none, d <= MAX_CURVATURE_PROBE_DIM and the budget has room.
+    The mode and funnel detectors look at every proof run: all are
+    fixed-proposal continuations of the pilot's chains. The curvature probe for
+    funnels runs only when the draws showed none, d <= MAX_CURVATURE_PROBE_DIM
+    and the budget has room. The posterior table comes from the ``chosen`` run's
+    chains in one region (:func:`walktune.modes.table_scope`), and pile-up and
+    heavy tails are checked on those draws, every parameter.
     """
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
     detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
@@ -520,7 +555,32 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
         chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
     )
-    multimodal = multimodal_finding(regions, names)
+    multimodal = [f for f in (multimodal_finding(regions, names),
+                              minor_mode_finding(start.minor_modes, start.main_mode, names)) if f is not None]
+    chosen_draws = proof.runs[chosen].draws
+    # A region minor by its log-density alone (no Laplace mass) counts as holding none.
+    table = table_scope(assign_draws(regions, chosen_draws), [0.0 if r.negligible else r.mass for r in regions])
+    table_draws = chosen_draws[table.chains]
+    table_stats = proof.stats[chosen] if table.region is None else measure_chains(table_draws)
+    funnel, undecided_scale = _funnel_checks(posterior, proof_draws, proof, pilot, budget)
+    undecided_tails = [names[i] for i in range(dim) if not table_stats.bulk_ess[i] >= MIN_DRAWS_TO_DECIDE]
+    return GeometryChecks(
+        regions=regions,
+        multimodal=multimodal,
+        funnel=list(funnel),
+        boundary=boundary_findings(table_draws, posterior.bounds, names),
+        heavy_tails=heavy_tail_findings(table_draws, table_stats.bulk_ess, names),
+        undecided=[note for note in (undecided_modes, undecided_scale) if note] + (
+            [f"too few draws to check the tails of {', '.join(undecided_tails)} (bulk ESS below {MIN_DRAWS_TO_DECIDE} "
+             f"in the draws of the posterior table)"] if undecided_tails else []),
+        table=table,
+        table_stats=table_stats,
+    )
+
+
+def _funnel_checks(posterior: Posterior, proof_draws: np.ndarray, proof: Proof, pilot: PilotResult, budget: Budget):
+    """Varying scale in the draws of every proof run; the model's curvature when they show none and the budget allows."""
+    counted, names, dim = posterior.counted, posterior.names, posterior.dim
     tau_median = within_chain_iact(proof_draws, np.median)
     # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
     proof_ess = measure_chains(proof_draws).bulk_ess
@@ -535,11 +595,4 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
                                                 log_densities=np.concatenate([run.log_density for run in proof.runs.values()]))
         if funnel and funnel[0].severity != "info":
             undecided_scale = None
-    return GeometryChecks(
-        regions=regions,
-        multimodal=[multimodal] if multimodal is not None else [],
-        funnel=list(funnel),
-        boundary=boundary_findings(proof.tuned.draws, posterior.bounds, names),
-        heavy_tails=heavy_tail_findings(proof.tuned.draws, proof.tuned_stats.bulk_ess, names),
-        undecided=[note for note in (undecided_modes, undecided_scale) if note],
-    )
+    return funnel, undecided_scale

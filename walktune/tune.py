@@ -42,6 +42,7 @@ from .constants import CAUTION, DEFAULT_TARGET_ESS
 from .errors import NumericalFailure, SamplingError, WalktuneError
 from .findings import collect_findings
 from .mode import ModeFit
+from .modes import TableScope
 from .pilot import PilotResult
 from .posterior import (
     check_start,
@@ -83,7 +84,9 @@ class TuneResult:
         Its proposal covariance, in the coordinates it runs in (``recommended.coordinates``).
     posterior_mean : ndarray of shape (d,)
         From the recommended fixed-proposal run (``posterior_run``), with
-        ``posterior_mean_mcse``, ``posterior_sd`` and ``posterior_rhat`` from the same draws.
+        ``posterior_mean_mcse``, ``posterior_sd`` and ``posterior_rhat`` from the same draws:
+        the chains named by ``posterior_scope`` (all of them unless chains sat in
+        separated regions without moving between them; see :mod:`walktune.modes`).
     posterior_covariance : ndarray of shape (d, d)
         The pilot's shrinkage estimate from pooled fixed-proposal stages (what the proposals are built from).
     step_sizes : ndarray of shape (d,)
@@ -131,11 +134,17 @@ class TuneResult:
     posterior_run: str = "tuned-covariance"
     posterior_sd: np.ndarray | None = None
     posterior_rhat: np.ndarray | None = None
+    posterior_scope: TableScope | None = None
+
+    @property
+    def whole_posterior(self) -> bool:
+        """The posterior table stands for the whole posterior, not for one region of several (:mod:`walktune.modes`)."""
+        return self.posterior_scope is None or self.posterior_scope.whole
 
     @property
     def converged(self) -> bool:
-        """The chains of the run the posterior table comes from agree: R-hat <= 1.01 for every parameter."""
-        return self.posterior_rhat is not None and bool(np.all(self.posterior_rhat <= 1.01))
+        """The table's chains agree (R-hat <= 1.01 for every parameter), and the table is not one region of several."""
+        return self.posterior_rhat is not None and bool(np.all(self.posterior_rhat <= 1.01)) and self.whole_posterior
 
     @property
     def pilot_converged(self) -> bool:
@@ -215,6 +224,9 @@ class TuneResult:
                     "proposal_covariance": theory.optimal_proposal(r.covariance).tolist(),
                     "share_of_draws": r.share,
                     "chains": r.chains,
+                    "log_density_at_mode": _json_float(r.log_density),
+                    "laplace_mass": _json_float(r.mass),
+                    "share_of_free_chains": _json_float(r.free_share),
                 }
                 for r in self.regions
             ],
@@ -244,6 +256,7 @@ class TuneResult:
             "sd": None if self.posterior_sd is None else self.posterior_sd.tolist(),
             "rhat": None if self.posterior_rhat is None else [_json_float(x) for x in self.posterior_rhat],
             "converged": self.converged,
+            **(self.posterior_scope.to_dict() if self.posterior_scope is not None else {}),
         }
 
     def save(self, directory, produced_by: dict | None = None) -> Path:
@@ -533,10 +546,10 @@ def tune(
                                  forbid_transforms)
         pilot_evaluations = posterior.counted.count
         proof = run_proofs(posterior, pilot, advice, coords, plan, inputs.current, proof_seed, tracker)
-        checks = check_geometry(posterior, proof, start_points, pilot, plan)
         recommended = recommend(proof.rows)
         chosen = recommended.proposal
-        table_stats = proof.stats[chosen]
+        checks = check_geometry(posterior, proof, start_points, pilot, plan, chosen)
+        table_stats = checks.table_stats
         findings = collect_findings(posterior, structure, pilot, pilot_evaluations, coords, proof, checks,
                                     recommended=chosen, expected_acceptance=advice.expected_acceptance)
 
@@ -553,6 +566,7 @@ def tune(
             posterior_sd=table_stats.sd,
             posterior_rhat=table_stats.rhat,
             posterior_run=chosen,
+            posterior_scope=checks.table,
             recommended=recommended,
             recommended_proposal=proof.proposals.get(chosen),
             posterior_covariance=pilot.covariance,
