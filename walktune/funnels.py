@@ -396,13 +396,14 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
             continue
         candidate = (j, float(np.exp(sign * size)), affected, log_ratio, values, confirmation, structural)
         (confirmed if confirmation["confirmed"] else suspected).append(candidate)
-    confirmed.sort(key=lambda c: (not c[6], -abs(np.log(c[1]))))
-    # Every confirmed funnel; a varying scale that only moves with others, only the strongest and only alone.
-    confirmed = [c for c in confirmed if c[6]] or confirmed[:1]
-    if confirmed:
-        return [curvature_finding(*c, names, bounds, flat) for c in confirmed]
-    suspected = [c for c in suspected if c[6]] or suspected
-    return [curvature_finding(*suspected[0], names, bounds, flat)] if suspected else []
+    # Every confirmed funnel, strongest first; else the strongest suspected funnel (info). A varying scale that
+    # only moves with the others is explained by a funnel when there is one; without any, the strongest alone.
+    funnels = [c for c in confirmed if c[6]]
+    if funnels:
+        return [curvature_finding(*c, names, bounds, flat) for c in funnels]
+    suspected_funnels = [c for c in suspected if c[6]]
+    chosen = suspected_funnels[:1] or confirmed[:1] or suspected[:1]
+    return [curvature_finding(*c, names, bounds, flat) for c in chosen]
 
 
 #: Above this R-hat of the candidate parameter the chains have plainly not mixed along it (the
@@ -482,6 +483,7 @@ def curvature_finding(j, factor, affected, log_ratio, values, confirmation, stru
     alone = "" if structural else (
         f" {name} does not set it on its own: moved alone, the others held, it changes their curvature little, so "
         "the change comes with the parameters that move with it.")
+    settle = _settle(name, confirmation, advice).rstrip(".")
     if confirmation["confirmed"]:
         measured = confirmation["measured_factor"]
         return Finding(
@@ -494,11 +496,12 @@ def curvature_finding(j, factor, affected, log_ratio, values, confirmation, stru
         )
     return Finding(
         "varying-scale", "info", [name] + [names[i] for i in affected],
-        f"suspected, not confirmed: the local spread of {listed(names, affected)} is {model}, but "
-        f"{times(confirmation['measured_factor'])} in the draws between their bottom and top fifths of {name} "
-        f"(standard error of the log {confirmation['standard_error']:.2f}; the curvature predicts "
-        f"{times(confirmation['predicted_factor_between_fifths'])} there).{alone} To settle it: "
-        f"{_settle(name, confirmation, advice)}.",
+        f"suspected, not confirmed: the local spread of {listed(names, affected)} is {times(factor)} wider at one "
+        f"end of {name} than the other in the model's curvature between {name} = {values[0]:.3g} and "
+        f"{values[1]:.3g}, but {times(confirmation['measured_factor'])} in the draws between their bottom and top "
+        f"fifths of {name} (standard error of the log {confirmation['standard_error']:.2f}; the curvature predicts "
+        f"{times(confirmation['predicted_factor_between_fifths'])} there).{alone} To settle it: {settle}."
+        + ("" if advice in settle else f" If it is confirmed: {advice}"),
         {**evidence, "status": "suspected"},
     )
 
