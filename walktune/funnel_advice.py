@@ -159,8 +159,9 @@ def other_fix(scale: int, affected: list, names: list, bounds: np.ndarray, flat:
     if scale in positive:
         listed = ", ".join(f"log({names[i]})" for i in positive)
         return (f"No group of effects shares a location and this scale, so the non-centred form does not apply; "
-                f"sampling {listed} (a log transform of the positive parameters) evens the spread out, and a "
-                "random walk there needs no single step size for both ends.", "log-transform",
+                f"what fits is a log transform of the positive parameters, sampling {listed}: it removes their "
+                "bounds and shortens their right tails, though some change of spread may remain (the measured "
+                "rows of the comparison show which proposal copes best).", "log-transform",
                 [names[i] for i in positive])
     return ("No group of effects shares a location and this scale, so the non-centred form does not apply; sample "
             "in the coordinates walktune recommends (sampling_map.json) and compare the rows of the comparison.",
