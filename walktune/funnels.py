@@ -535,7 +535,12 @@ def needs_curvature_probe(findings: list) -> bool:
 
 
 def merge_probe(from_draws: list, probed: list) -> list:
-    """The draws' findings, replaced by the curvature probe's where it confirmed any (it names the scale)."""
+    """The draws' findings, replaced by the curvature probe's where it confirmed any (it names the scale).
+
+    Otherwise the draws' varying scale stays, followed by a funnel the probe suspects (info), if any.
+    """
     if any(f.severity != "info" for f in probed):
         return list(probed)
-    return list(from_draws) if from_draws else list(probed)
+    if not from_draws:
+        return list(probed)
+    return list(from_draws) + [f for f in probed if f.evidence.get("funnel_structure")]
