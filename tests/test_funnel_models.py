@@ -159,3 +159,40 @@ def test_weibull_model_gets_no_noncentred_rewrite_and_no_critical_funnel():
         for finding in scale:
             if finding.parameters[0] == "shape":
                 assert finding.evidence["fix"] == "log-transform" and "log(shape)" in finding.message
+
+
+def test_farm_exact_draws_name_tau_not_a_farm():
+    # iid draws of the farm model's exact posterior: (mu, tau) from the grid, then each farm effect from its
+    # closed-form normal given (mu, tau): mean (ybar_j tau^2 + mu se_j^2) / (tau^2 + se_j^2), variance
+    # se_j^2 tau^2 / (tau^2 + se_j^2). The draws-based detector must name tau (positive, declared bound 0) as
+    # the scale, and never a farm effect as the scale of mu and tau.
+    from walktune.funnels import funnel_findings_from_curvature, varying_scale_findings
+
+    rng = np.random.default_rng(21)
+    mu = np.linspace(YBAR.mean() - 4, YBAR.mean() + 4, 801)[:, None]
+    tau = np.linspace(0, 3.0, 1501)[None, :]
+    variance = SE[:, None, None] ** 2 + tau**2
+    log_joint = -0.5 * ((mu - 5) / 3) ** 2 - 0.5 * (tau / 0.5) ** 2
+    log_joint = log_joint + sum(stats.norm.logpdf(YBAR[j], mu, np.sqrt(variance[j])) for j in range(8))
+    weight = np.exp(log_joint - log_joint.max()).ravel()
+    n = 20_000
+    cells = rng.choice(weight.size, size=n, p=weight / weight.sum())
+    mu_draws = mu[cells // tau.shape[1], 0] + (rng.random(n) - 0.5) * (mu[1, 0] - mu[0, 0])
+    tau_draws = tau[0, cells % tau.shape[1]] + rng.random(n) * (tau[0, 1] - tau[0, 0])
+    t2, s2 = tau_draws[:, None] ** 2, SE[None, :] ** 2
+    effects = (YBAR * t2 + mu_draws[:, None] * s2) / (t2 + s2) + np.sqrt(s2 * t2 / (t2 + s2)) * rng.standard_normal((n, 8))
+    draws = np.column_stack([mu_draws, tau_draws, effects])[None]
+    bounds = np.tile([-np.inf, np.inf], (10, 1))
+    bounds[1] = [0.0, np.inf]
+    # Between the fifths of tau the spread changes less than the draws' 4-fold threshold: nothing, or tau.
+    found, note = varying_scale_findings(draws, 1.0, FARM_NAMES, bounds=bounds)
+    assert note is None
+    assert not any(f.evidence["fix"] == "non-centred" and f.parameters[0] != "tau" for f in found)
+    # The model's curvature shows it, and the exact draws confirm it: tau, with the non-centred rewrite; the farm
+    # effects the ridge probe also flags (they drag tau along) do not set the spread on their own.
+    # As four chains (the confirmation needs three or more chains in each fifth), 10,000 draws.
+    probed = funnel_findings_from_curvature(lambda x: float(farm_log_density(x)[0]), draws.reshape(4, -1, 10)[:, ::2],
+                                            1.0, FARM_NAMES, bounds)
+    assert probed and probed[0].parameters[0] == "tau" and probed[0].severity == "warn", [f.message for f in probed]
+    assert probed[0].evidence["fix"] == "non-centred" and "farm_1 = mu + tau * z_farm_1" in probed[0].message
+    assert all(f.parameters[0] == "tau" for f in probed)
