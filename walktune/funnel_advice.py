@@ -227,7 +227,10 @@ def draws_finding(j, factor, affected, log_ratio, names, bounds, flat, structura
     advice, fix = fix_text(j, affected, log_ratio, names, bounds, flat, sign, structural)
     what = "a funnel" if structural else "a varying scale, not a funnel of this parameter"
     hint = ""
-    if not structural:
+    if not structural and positive_type(flat, bounds, j):
+        hint = (f" {names[j]} is positive, but the spread does not narrow together toward its low end as a scale's "
+                "would.")
+    elif not structural:
         hint = (f" {names[j]} is not a scale by type (neither positive nor a log-scale whose change the others "
                 "follow alone)" + (f", and {names[scale_hint]}, a positive parameter whose own spread changes "
                                    f"along {names[j]}, may be the scale that sets it" if scale_hint is not None else "")
