@@ -260,7 +260,7 @@ def test_correlated_gaussians_raise_no_funnel_modes_or_ridge(seed):
 def test_rewrite_names_location_scale_and_effects_of_a_centred_model():
     # Exact draws of a centred hierarchy (mu ~ N(0, 1), log tau ~ N(0, 1), theta_j ~ N(mu, tau^2)):
     # the effects are conditionally independent given (mu, tau), so mu is their location.
-    from walktune.funnels import _noncentred_rewrite
+    from walktune.funnel_advice import effect_group, noncentred_rewrite
 
     rng = np.random.default_rng(11)
     n, groups = 4000, 6
@@ -269,16 +269,37 @@ def test_rewrite_names_location_scale_and_effects_of_a_centred_model():
     flat = np.column_stack([mu, log_tau, theta])
     names = ["mu", "log_tau"] + [f"school_{j}" for j in range(groups)]
     bounds = np.tile([-np.inf, np.inf], (groups + 2, 1))
-    text = _noncentred_rewrite(1, list(range(2, groups + 2)), names, bounds, flat)
-    assert "school_0 = mu + exp(log_tau) * z_school_0" in text
+    effects, up = list(range(2, groups + 2)), np.r_[0.0, 0.0, np.ones(groups)]
+    group = effect_group(flat, 1, effects, up)
+    assert group is not None and group[1] == 0
+    assert "school_0 = mu + exp(log_tau) * z_school_0" in noncentred_rewrite(1, group, names, bounds)
     # On the natural scale, bounded at 0, the scale enters as itself.
     bounds[1] = [0.0, np.inf]
     natural = np.column_stack([mu, np.exp(log_tau), theta])
-    assert "school_0 = mu + log_tau * z_school_0" in _noncentred_rewrite(1, list(range(2, groups + 2)), names, bounds,
-                                                                          natural)
-    # Neal's funnel has no location: the rewrite says so rather than invent one.
+    text = noncentred_rewrite(1, effect_group(natural, 1, effects, up), names, bounds)
+    assert "school_0 = mu + log_tau * z_school_0" in text
+    # Neal's funnel has no location parameter: the effects' common centre (0 here) is named as m.
     v = rng.normal(0, 3, n)
     x = rng.standard_normal((n, 5)) * np.exp(v / 2)[:, None]
-    text = _noncentred_rewrite(0, list(range(1, 6)), ["v"] + [f"x{i}" for i in range(5)],
-                               np.tile([-np.inf, np.inf], (6, 1)), np.column_stack([v, x]))
+    neal = np.column_stack([v, x])
+    group = effect_group(neal, 0, list(range(1, 6)), np.r_[0.0, np.ones(5)])
+    assert group is not None and group[1] is None and abs(group[2]) < 0.5
+    text = noncentred_rewrite(0, group, ["v"] + [f"x{i}" for i in range(5)], np.tile([-np.inf, np.inf], (6, 1)))
     assert "x0 = m + exp(v) * z_x0" in text
+
+
+def test_no_group_no_noncentred_rewrite():
+    # Two affected parameters on different scales and centres (a Weibull model's scale in years and a log
+    # ratio) are not exchangeable effects: no group, so no non-centred rewrite; the positive ones get a log.
+    from walktune.funnel_advice import effect_group, fix_text
+
+    rng = np.random.default_rng(12)
+    shape = rng.lognormal(0.5, 0.3, 4000)
+    scale = rng.lognormal(3.0, 0.8, 4000) / shape
+    ratio = rng.normal(0.3, 0.5, 4000)
+    flat = np.column_stack([shape, scale, ratio])
+    bounds = np.array([[0.0, np.inf], [0.0, np.inf], [-np.inf, np.inf]])
+    assert effect_group(flat, 0, [1, 2], np.array([0.0, -1.0, -1.0])) is None
+    text, evidence = fix_text(0, [1, 2], np.array([0.0, -1.0, -1.0]), ["shape", "scale", "b"], bounds, flat, -1.0, True)
+    assert evidence["fix"] == "log-transform" and "non-centred form does not apply" in text
+    assert "log(shape), log(scale)" in text

@@ -316,7 +316,10 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
                                              informed, posterior.dim)
     findings += acceptance_findings(proof.rows, recommended)
     findings += acceptance_mismatch_findings(expected_acceptance, proof.tuned_row)
-    findings += checks.multimodal + checks.funnel + checks.boundary + checks.heavy_tails
+    from .funnel_advice import note_recommended_coordinates  # funnel_advice builds on this module's Finding
+
+    findings += checks.multimodal + note_recommended_coordinates(checks.funnel, recommended, coords.reparam)
+    findings += checks.boundary + checks.heavy_tails
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
                  for note in checks.undecided]
     findings += coords.findings

@@ -33,6 +33,7 @@ from .diagnostics import ChainMeasures, measure_chains
 from .engine import Chains, sample
 from .errors import WalktuneError
 from .findings import Finding
+from .funnels import merge_probe, needs_curvature_probe
 from .geometry import (
     MIN_DRAWS_TO_DECIDE,
     assign_draws,
@@ -587,12 +588,16 @@ def _funnel_checks(posterior: Posterior, proof_draws: np.ndarray, proof: Proof, 
     funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds,
                                                      ess=proof_ess)
     probe_cost = curvature_probe_cost(dim)
-    if not funnel and dim <= MAX_CURVATURE_PROBE_DIM and (budget.total is None or budget.total - counted.count >= probe_cost):
-        # The model itself can show a funnel the draws do not show plainly (chains kept out of its neck);
-        # it is reported as more than a hypothesis only where the draws confirm it.
-        funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
+    left = None if budget.total is None else budget.total - counted.count
+    if needs_curvature_probe(funnel) and dim <= MAX_CURVATURE_PROBE_DIM and (left is None or left >= probe_cost):
+        # The model itself can show a funnel the draws do not show plainly (chains kept out of its neck), and
+        # names its scale where the draws show only a parameter that moves with it; it is reported as more
+        # than a hypothesis only where the draws confirm it.
+        probed = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
                                                 spread=np.sqrt(np.diag(pilot.covariance)),
-                                                log_densities=np.concatenate([run.log_density for run in proof.runs.values()]))
-        if funnel and funnel[0].severity != "info":
+                                                log_densities=np.concatenate([run.log_density for run in proof.runs.values()]),
+                                                budget=left)
+        funnel = merge_probe(funnel, probed)
+        if any(f.severity != "info" for f in funnel):
             undecided_scale = None
     return funnel, undecided_scale
