@@ -22,14 +22,14 @@ progress and their best covariance so far through it, and nothing else.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from . import theory
 from .advice import Advice
 from .diagnostics import ChainMeasures, measure_chains
-from .engine import Chains, sample
+from .engine import Chains
 from .errors import WalktuneError
 from .findings import Finding
 from .geometry import (
@@ -47,7 +47,8 @@ from .geometry import (
 from .mode import ModeFit, find_mode
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
-from .recommend import ComparisonRow, row_from_run
+from .proof import Option, first_round_steps, run_rounds
+from .recommend import ComparisonRow
 from .reparam import build_reparam, curved_ridge_findings
 from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
@@ -70,8 +71,21 @@ def pilot_budget_default(dim: int) -> int:
 
 
 def proof_steps_default(dim: int) -> int:
-    """Steps per chain of each proof run: enough for about 65 IACTs (IACT ~ 3 d) in each half-chain."""
+    """Steps per chain of one proof run before the proof ran in rounds: about 65 IACTs (IACT ~ 3 d) per half-chain."""
     return max(2000, 400 * dim)
+
+
+def proof_budget_default(dim: int, chains: int) -> int:
+    """Default evaluations of the whole proof: ``chains x max(2000, 400 d)``, one run of the old equal-length proof.
+
+    An optimally scaled random walk has IACT about 3 d on a Gaussian (Roberts,
+    Gelman and Gilks 1997), so this holds about 500 IACTs: twice the
+    ``IACTS_FOR_PRECISE_ESS`` the recommended run needs, with room for the
+    other options' first rounds. R-hat below 1.01 on every one of d parameters
+    takes about four times as many (docs/method.md); when the budget ends
+    first, the ``proof-unsettled`` finding says how many more.
+    """
+    return chains * proof_steps_default(dim)
 
 
 def minimum_budget(dim: int, chains: int) -> int:
@@ -392,18 +406,41 @@ class Proof:
     runs : dict of str to Chains
         Draws in the user's parameters, by proposal name.
     stats : dict of str to walktune.diagnostics.ChainMeasures
-    steps : int
-        Steps per chain of every run.
+    steps : dict of str to int
+        Steps per chain of each run (runs measured slower stopped early).
     proposals : dict of str to ndarray of shape (d, d)
         Each run's proposal covariance, in the coordinates it ran in (the new
         coordinates' runs in those of ``sampling_map.json``).
+    budget : int
+        Evaluations the proof could spend (:func:`proof_budget`).
+    rounds : int
+    settled : bool
+        The recommended run's ESS is reliable and its R-hat below 1.01
+        (:func:`walktune.recommend.settled`) within the budget.
     """
 
     rows: list
     runs: dict
     stats: dict
-    steps: int
+    steps: dict
     proposals: dict = field(default_factory=dict)
+    budget: int = 0
+    rounds: int = 0
+    settled: bool = False
+
+    @property
+    def full_length_runs(self) -> dict:
+        """The runs of the longest length (those still in contention when the proof ended), by name.
+
+        Runs stopped early are shorter; the detectors pool chains of one length.
+        """
+        longest = max(run.n_steps for run in self.runs.values())
+        return {name: run for name, run in self.runs.items() if run.n_steps == longest}
+
+    @property
+    def evaluations(self) -> int:
+        """Evaluations the proof spent, all runs together."""
+        return sum(run.evaluations for run in self.runs.values())
 
     @property
     def tuned(self) -> Chains:
@@ -441,43 +478,48 @@ def _user_space_plan(advice: Advice, current: np.ndarray | None, dim: int) -> li
     ]
 
 
+def proof_budget(dim: int, budget: Budget, spent: int, options: int) -> int:
+    """Evaluations the proof may spend: by default :func:`proof_budget_default`; with a cap on the job, what the
+    mode search and pilots left less the detection reserve (at least 50 steps per chain for every option)."""
+    if budget.total is None:
+        return proof_budget_default(dim, budget.chains)
+    left = budget.total - spent - detection_reserve(dim, budget.total)
+    return max(left, 50 * options * budget.chains)
+
+
 def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords: NewCoordinates, budget: Budget,
                current: np.ndarray | None, seed, tracker) -> Proof:
-    """Equal budgets, fixed proposals, from the pilot's end states.
+    """Fixed-proposal runs from the pilot's end states, in rounds sized by need (:mod:`walktune.proof`).
 
-    Steps per chain: the default, or with a cap on the job what the mode search
-    and pilots left (less the detection reserve), shared equally by the runs.
+    Every option runs a first round of :func:`walktune.proof.first_round_steps`
+    (fewer when the budget cannot hold them); runs measured slower stop, and the
+    others continue until the recommended one is settled or :func:`proof_budget` is spent.
     """
-    dim, counted = posterior.dim, posterior.counted
-    steps = proof_steps_default(dim)
-    if budget.total is not None:
-        left = budget.total - counted.count - detection_reserve(dim, budget.total)
-        steps = max(50, left // ((3 + len(coords.plan)) * budget.chains))
+    dim, counted, chains = posterior.dim, posterior.counted, budget.chains
     plan = _user_space_plan(advice, current, dim)
-    rows, runs, stats, proposals = [], {}, {}, {}
-    tracker.proof_rows(rows)
-    for run_plan, child in zip(plan, seed.spawn(len(plan))):
-        name = run_plan.name
-        run = sample(
-            None, pilot.states, run_plan.covariance, steps, seed=child, evaluator=counted,
-            start_log_density=pilot.state_log_density,
-            progress=lambda done, total, name=name: tracker(name, done, total),
-        )
-        runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
-        rows.append(row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
-                                  rows[0] if rows else None))
+    options = [Option(p.name, p.description, p.covariance, p.predicted, child, counted, pilot.states,
+                      pilot.state_log_density)
+               for p, child in zip(plan, seed.spawn(len(plan)))]
     if coords.plan:
         z_evaluator = SamplerSpaceEvaluator(counted, coords.reparam)
-        for run_plan, child in zip(coords.plan, seed.spawn(len(coords.plan))):
-            name = run_plan.name
-            run = sample(None, coords.states, run_plan.covariance, steps, seed=child, evaluator=z_evaluator,
-                         independent=run_plan.independent,
-                         progress=lambda done, total, name=name: tracker(name, done, total))
-            # Measured in the user's own parameters.
-            run = replace(run, draws=coords.reparam.from_sampler(run.draws))
-            runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
-            rows.append(row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
-    return Proof(rows, runs, stats, steps, proposals)
+        options += [Option(p.name, p.description, p.covariance, float("nan"), child, z_evaluator, coords.states, None,
+                           independent=p.independent, to_user=coords.reparam.from_sampler)
+                    for p, child in zip(coords.plan, seed.spawn(len(coords.plan)))]
+    cap = proof_budget(dim, budget, counted.count, len(options))
+    first = min(first_round_steps(dim), max(50, cap // (len(options) * chains)))
+    rows: list = []
+    tracker.proof_rows(rows)
+    rounds = run_rounds(options, cap, chains, first, tracker, rows)
+    return Proof(
+        rows=rounds.rows,
+        runs={o.name: o.run for o in options},
+        stats={o.name: o.stats for o in options},
+        steps={o.name: o.steps for o in options},
+        proposals={o.name: o.covariance for o in options},
+        budget=cap,
+        rounds=rounds.rounds,
+        settled=rounds.settled,
+    )
 
 
 # --------------------------------------------------------------------------- geometry checks
@@ -508,13 +550,13 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
                    budget: Budget) -> GeometryChecks:
     """Separated modes, funnels, pile-up at bounds and heavy tails, within what the budget leaves.
 
-    The detectors look at every proof run: all are fixed-proposal continuations
-    of the pilot's chains. The curvature probe for funnels runs only when the
+    The detectors look at the proof runs of full length (those not stopped
+    early): all are fixed-proposal continuations of the pilot's chains. The curvature probe for funnels runs only when the
     draws showed none, d <= MAX_CURVATURE_PROBE_DIM and the budget has room.
     """
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
     detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
-    proof_draws = np.concatenate([run.draws for run in proof.runs.values()], axis=0)
+    proof_draws = np.concatenate([run.draws for run in proof.full_length_runs.values()], axis=0)
     tau_within = within_chain_iact(proof_draws)
     regions, undecided_modes = find_regions(
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
@@ -532,7 +574,7 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         # it is reported as more than a hypothesis only where the draws confirm it.
         funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
                                                 spread=np.sqrt(np.diag(pilot.covariance)),
-                                                log_densities=np.concatenate([run.log_density for run in proof.runs.values()]))
+                                                log_densities=np.concatenate([run.log_density for run in proof.full_length_runs.values()]))
         if funnel and funnel[0].severity != "info":
             undecided_scale = None
     return GeometryChecks(
