@@ -49,6 +49,9 @@ FIRST_ROUND_MIN, FIRST_ROUND_PER_DIM = 200, 25
 GROWTH = (1.25, 4.0)
 #: Extend to this many times what the measures say is needed: the IACT and R-hat of a short run are noisy.
 NEED_MARGIN = 1.2
+#: The runs other than the recommended one continue only within this share of the proof's budget: a slow
+#: run that mixes needs more evaluations than the recommended one to pin its efficiency down.
+OTHERS_SHARE = 1 / 3
 #: Fewer steps per chain than this left in the budget: no further round.
 MIN_ROUND_STEPS = 50
 
@@ -142,11 +145,19 @@ def _next_steps(chosen, steps: int, chains: int) -> int:
     return int(np.clip(wanted, low, high))
 
 
-def _to_extend(options: list, rows: list, chosen, steps: int, chains: int) -> list:
-    """The recommended run, and the runs in contention its longer run alone would not be expected to resolve."""
+def _to_extend(options: list, rows: list, chosen, steps: int, chains: int, others_left: int) -> list:
+    """The recommended run, and the runs in contention its longer run alone would not be expected to resolve,
+    as far as ``others_left`` evaluations (their share of the budget) reach."""
     by_name = {row.proposal: row for row in rows}
-    return [o for o in options if o.name == chosen.proposal
-            or not resolved_by_extending(chosen, by_name[o.name], steps * chains)]
+    out = []
+    for option in options:
+        if option.name == chosen.proposal:
+            out.append(option)
+        elif not resolved_by_extending(chosen, by_name[option.name], steps * chains):
+            if option.cost(steps, chains) <= others_left:
+                others_left -= option.cost(steps, chains)
+                out.append(option)
+    return out
 
 
 def _affordable_steps(options: list, left: int, chains: int) -> int:
@@ -190,7 +201,8 @@ def run_rounds(options: list, budget: int, chains: int, first_steps: int, tracke
         in_play = {row.proposal for row in in_contention(rows)}
         chosen = next(row for row in rows if row.proposal == recommend(rows).proposal)
         wanted = _next_steps(chosen, chosen.steps, chains)
-        active = _to_extend([o for o in options if o.name in in_play], rows, chosen, wanted, chains)
+        others_left = int(OTHERS_SHARE * budget) - sum(o.run.evaluations for o in options if o.name != chosen.proposal)
+        active = _to_extend([o for o in options if o.name in in_play], rows, chosen, wanted, chains, others_left)
         affordable = _affordable_steps(active, budget - spent, chains)
         if settled(chosen) or affordable - chosen.steps < MIN_ROUND_STEPS:
             end = "settled" if settled(chosen) else "budget"

@@ -76,16 +76,19 @@ def proof_steps_default(dim: int) -> int:
 
 
 def proof_budget_default(dim: int, chains: int) -> int:
-    """Default evaluations of the whole proof: ``chains x max(2000, 400 d)``, one run of the old equal-length proof.
+    """Default evaluations of the whole proof: ``chains x max(6000, 400 d)``.
 
-    An optimally scaled random walk has IACT about 3 d on a Gaussian (Roberts,
-    Gelman and Gilks 1997), so this holds about 500 IACTs: twice the
-    ``IACTS_FOR_PRECISE_ESS`` the recommended run needs, with room for the
-    other options' first rounds. R-hat below 1.01 on every one of d parameters
-    takes about four times as many (docs/method.md); when the budget ends
-    first, the ``proof-unsettled`` finding says how many more.
+    From d = 15 on, one run of the old equal-length proof (``chains x 400 d``):
+    an optimally scaled random walk has IACT about 3 d on a Gaussian (Roberts,
+    Gelman and Gilks 1997), so this holds about 130 d / (IACT / 3 d) IACTs,
+    over twice the ``IACTS_FOR_PRECISE_ESS`` the recommended run needs, with
+    room for the other options' first rounds. Below, the old proof's total
+    (three runs of 2000 steps), where those first rounds weigh most. R-hat
+    below 1.01 on every one of d parameters takes about four times the
+    evaluations of a reliable ESS (docs/method.md); when the budget ends first,
+    the ``proof-unsettled`` finding says how many more would settle it.
     """
-    return chains * proof_steps_default(dim)
+    return chains * max(6000, 400 * dim)
 
 
 def minimum_budget(dim: int, chains: int) -> int:
