@@ -74,13 +74,13 @@ def test_stopped_rows_agree_with_a_plain_sampler_within_their_claimed_error(case
     """A stopped run's efficiency is an upper bound where it has not mixed, else within its relative error."""
     result, log_density, cov, mean = request.getfixturevalue(case)
     rng = np.random.default_rng(3)
-    stopped = [row for row in result.comparison if row.proof_end == "slower"]
-    assert stopped and all(row.steps < result.runs[result.recommended.proposal].n_steps for row in stopped)
+    # Runs stopped before the recommended one: measured slower, or left at their length (imprecise).
+    longest = result.runs[result.recommended.proposal].n_steps
+    stopped = [row for row in result.comparison if row.steps < longest]
+    assert len(stopped) == 2
     if case == "slow_baselines":
         assert all(row.mixed for row in stopped)  # the mixed branch below is exercised
-    for row in result.comparison:
-        if row.proof_end != "slower":
-            continue
+    for row in stopped:
         proposal = result.runs[row.proposal].proposal_cov
         # Reference: 16 chains from exact draws, 40 times the stopped run's length (plain sampler).
         start = rng.multivariate_normal(mean, cov, size=16)

@@ -51,7 +51,7 @@ GROWTH = (1.25, 4.0)
 NEED_MARGIN = 1.2
 #: The runs other than the recommended one continue only within this share of the proof's budget: a slow
 #: run that mixes needs more evaluations than the recommended one to pin its efficiency down.
-OTHERS_SHARE = 1 / 3
+OTHERS_SHARE = 1 / 5
 #: Fewer steps per chain than this left in the budget: no further round.
 MIN_ROUND_STEPS = 50
 
