@@ -75,20 +75,24 @@ def proof_steps_default(dim: int) -> int:
     return max(2000, 400 * dim)
 
 
-def proof_budget_default(dim: int, chains: int) -> int:
-    """Default evaluations of the whole proof: ``chains x max(6000, 400 d)``.
+#: Up to this dimension the proof's default budget is the old equal-length proof's total (three runs).
+SMALL_PROOF_DIM = 10
 
-    From d = 15 on, one run of the old equal-length proof (``chains x 400 d``):
-    an optimally scaled random walk has IACT about 3 d on a Gaussian (Roberts,
-    Gelman and Gilks 1997), so this holds about 130 d / (IACT / 3 d) IACTs,
-    over twice the ``IACTS_FOR_PRECISE_ESS`` the recommended run needs, with
-    room for the other options' first rounds. Below, the old proof's total
-    (three runs of 2000 steps), where those first rounds weigh most. R-hat
-    below 1.01 on every one of d parameters takes about four times the
-    evaluations of a reliable ESS (docs/method.md); when the budget ends first,
-    the ``proof-unsettled`` finding says how many more would settle it.
+
+def proof_budget_default(dim: int, chains: int) -> int:
+    """Default evaluations of the whole proof: ``chains x max(2000, 400 d)`` times 3 up to d = 10, else once.
+
+    An optimally scaled random walk has IACT about 3 d on a Gaussian (Roberts,
+    Gelman and Gilks 1997). R-hat below 1.01 on every parameter asks for about
+    1000 IACTs (docs/method.md, Proof rounds): up to d = 10 the old proof's
+    total (three runs of ``max(2000, 400 d)`` steps per chain) holds them.
+    Above, one such run: about 500 IACTs, twice the ``IACTS_FOR_PRECISE_ESS``
+    a reliable ESS needs, with room for the other options' first rounds; when
+    the budget ends first, the ``proof-unsettled`` finding says how many more
+    evaluations would settle the recommended run.
     """
-    return chains * max(6000, 400 * dim)
+    runs = 3 if dim <= SMALL_PROOF_DIM else 1
+    return chains * runs * proof_steps_default(dim)
 
 
 def minimum_budget(dim: int, chains: int) -> int:
@@ -431,14 +435,23 @@ class Proof:
     rounds: int = 0
     settled: bool = False
 
-    @property
-    def full_length_runs(self) -> dict:
-        """The runs of the longest length (those still in contention when the proof ended), by name.
+    def pooled(self) -> tuple:
+        """Every run's draws as chains of one length, for the detectors: (draws, log_density, chain_ids).
 
-        Runs stopped early are shorter; the detectors pool chains of one length.
+        Runs stopped early are shorter; each longer run is cut into consecutive
+        pieces of the shortest run's length (its last whole pieces), each piece
+        a chain of the pool, with the index of the chain it comes from.
+        Shapes (pieces, length, d), (pieces, length) and (pieces,).
         """
-        longest = max(run.n_steps for run in self.runs.values())
-        return {name: run for name, run in self.runs.items() if run.n_steps == longest}
+        length = min(run.n_steps for run in self.runs.values())
+        draws, log_density, chain_ids = [], [], []
+        for run in self.runs.values():
+            pieces = run.n_steps // length
+            kept = slice(run.n_steps - pieces * length, run.n_steps)
+            draws.append(run.draws[:, kept].reshape(run.n_chains * pieces, length, run.dim))
+            log_density.append(run.log_density[:, kept].reshape(run.n_chains * pieces, length))
+            chain_ids.append(np.repeat(np.arange(run.n_chains), pieces))
+        return np.concatenate(draws), np.concatenate(log_density), np.concatenate(chain_ids)
 
     @property
     def evaluations(self) -> int:
@@ -553,17 +566,17 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
                    budget: Budget) -> GeometryChecks:
     """Separated modes, funnels, pile-up at bounds and heavy tails, within what the budget leaves.
 
-    The detectors look at the proof runs of full length (those not stopped
-    early): all are fixed-proposal continuations of the pilot's chains. The curvature probe for funnels runs only when the
+    The detectors look at every proof run (:meth:`Proof.pooled`): all are
+    fixed-proposal continuations of the pilot's chains. The curvature probe for funnels runs only when the
     draws showed none, d <= MAX_CURVATURE_PROBE_DIM and the budget has room.
     """
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
     detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
-    proof_draws = np.concatenate([run.draws for run in proof.full_length_runs.values()], axis=0)
+    proof_draws, proof_log_density, chain_ids = proof.pooled()
     tau_within = within_chain_iact(proof_draws)
     regions, undecided_modes = find_regions(
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
-        chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
+        chain_ids=list(chain_ids),
     )
     multimodal = multimodal_finding(regions, names)
     tau_median = within_chain_iact(proof_draws, np.median)
@@ -577,7 +590,7 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         # it is reported as more than a hypothesis only where the draws confirm it.
         funnel = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
                                                 spread=np.sqrt(np.diag(pilot.covariance)),
-                                                log_densities=np.concatenate([run.log_density for run in proof.full_length_runs.values()]))
+                                                log_densities=proof_log_density)
         if funnel and funnel[0].severity != "info":
             undecided_scale = None
     return GeometryChecks(

@@ -478,7 +478,7 @@ def tune(
         The proposal used today: a (d, d) covariance or (d,) step sizes (sds).
     budget : int, optional
         Cap on log-density evaluations for the whole job. Default: ``20 d^2 +
-        2000`` for the pilot plus at most ``chains x max(6000, 400 d)`` for the
+        2000`` for the pilot plus at most ``chains x max(2000, 400 d)`` (3 times that up to d = 10) for the
         proof runs (:func:`walktune.stages.proof_budget_default`).
     chains : int, default=4
     seed : int or None
