@@ -576,7 +576,7 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     tau_within = within_chain_iact(proof_draws)
     regions, undecided_modes = find_regions(
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
-        chain_ids=list(chain_ids),
+        chain_ids=[int(c) for c in chain_ids],
     )
     multimodal = multimodal_finding(regions, names)
     tau_median = within_chain_iact(proof_draws, np.median)
