@@ -435,6 +435,12 @@ class Proof:
     rounds: int = 0
     settled: bool = False
 
+    @property
+    def full_length_runs(self) -> dict:
+        """The runs of the longest length (those still extended when the proof ended), by name."""
+        longest = max(run.n_steps for run in self.runs.values())
+        return {name: run for name, run in self.runs.items() if run.n_steps == longest}
+
     def pooled(self) -> tuple:
         """Every run's draws as chains of one length, for the detectors: (draws, log_density, chain_ids).
 
@@ -566,8 +572,9 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
                    budget: Budget) -> GeometryChecks:
     """Separated modes, funnels, pile-up at bounds and heavy tails, within what the budget leaves.
 
-    The detectors look at every proof run (:meth:`Proof.pooled`): all are
-    fixed-proposal continuations of the pilot's chains. The curvature probe for funnels runs only when the
+    All proof runs are fixed-proposal continuations of the pilot's chains. The
+    search for separated regions looks at every run (:meth:`Proof.pooled`); the
+    funnel detectors at the runs of full length (:attr:`Proof.full_length_runs`). The curvature probe for funnels runs only when the
     draws showed none, d <= MAX_CURVATURE_PROBE_DIM and the budget has room.
     """
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
@@ -579,6 +586,10 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
         chain_ids=[int(c) for c in chain_ids],
     )
     multimodal = multimodal_finding(regions, names)
+    # The funnel detectors compare whole chains (fifths filled by several chains): the runs of full length.
+    full = proof.full_length_runs.values()
+    proof_draws = np.concatenate([run.draws for run in full], axis=0)
+    proof_log_density = np.concatenate([run.log_density for run in full], axis=0)
     tau_median = within_chain_iact(proof_draws, np.median)
     # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
     proof_ess = measure_chains(proof_draws).bulk_ess
