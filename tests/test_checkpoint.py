@@ -102,7 +102,7 @@ def uninterrupted():
     return walktune.tune(gaussian, np.ones(3), seed=5, budget=12_000)
 
 
-@pytest.mark.parametrize("stop_at", [5, 400, 2_500, 7_000, 10_850])  # mode, multi-start, pilot, proof, mode checks
+@pytest.mark.parametrize("stop_at", [5, 400, 2_500, 7_000, 10_680])  # mode, multi-start, pilot, proof, mode checks (the proof ends at 10,640)
 def test_resume_after_a_stop_anywhere_is_the_uninterrupted_run(tmp_path, uninterrupted, stop_at):
     identity = {"model": "gaussian", "seed": 5}
     box = [Checkpoint(tmp_path, identity)]

@@ -32,6 +32,7 @@ STAGE_LABELS = {
     "single-step": "proof: one step size",
     "step-sizes": "proof: per-parameter steps",
     "tuned-covariance": "proof: tuned covariance",
+    "proof": "proof (fixed-proposal rounds)",
 }
 
 
@@ -273,7 +274,7 @@ def comparison_table(result: TuneResult, width: int | None = None) -> Table:
     rows = result.comparison
     budgets = sorted({row.evaluations for row in rows})
     budget = f"{budgets[0]} evaluations each" if len(budgets) == 1 else "evaluations in the evals column"
-    title = f"Measured: fixed-proposal runs on equal budgets ({budget}) from the pilot's end states"
+    title = f"Measured: fixed-proposal runs from the pilot's end states ({budget}; runs measured slower stopped early)"
     columns = [("proposal", "left"), ("accept", "right"), ("min ESS", "right"), ("med ESS", "right"),
                ("speed-up", "right"), ("R-hat max", "right")]
     if len(budgets) > 1:

@@ -22,6 +22,10 @@ source is named):
 * ``imprecise-ess``: the recommended run's ESS rests on fewer than
   ``diagnostics.IACTS_FOR_PRECISE_ESS`` autocorrelation times over its chains, so
   its relative error is above ``diagnostics.IACT_RELATIVE_ERROR``.
+* ``proof-unsettled``: the proof's budget ran out before the recommended run
+  had a reliable ESS and R-hat below 1.01 on every parameter; says what is
+  missing and how many more evaluations would settle it (extrapolated from the
+  run's measured IACT, :func:`walktune.recommend.evaluations_still_needed`).
 * ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
 
 ``not-converged`` and ``imprecise-ess`` are about the recommended run, the one
@@ -231,6 +235,46 @@ def short_chain_findings(row, steps: int) -> list:
     ]
 
 
+def proof_length_findings(row, proof) -> list:
+    """``proof-unsettled`` when the proof's budget ran out before the recommended run was settled.
+
+    Says what is missing (the ESS against the ``IACTS_FOR_PRECISE_ESS`` a reliable
+    one needs, R-hat against 1.01) and how many more evaluations of that run would
+    settle it, extrapolated from its measured IACT
+    (:func:`walktune.recommend.evaluations_still_needed`).
+    """
+    from .recommend import RHAT_SETTLED, evaluations_still_needed
+
+    if proof.settled:
+        return []
+    ess = row.ess_per_1000 * row.evaluations / 1000
+    missing = []
+    if not row.ess_reliable:
+        missing.append(f"ESS {ess:.0f} of the {IACTS_FOR_PRECISE_ESS} a reliable estimate needs")
+    if not row.max_rhat < RHAT_SETTLED:
+        missing.append(f"R-hat {row.max_rhat:.3f} (below {RHAT_SETTLED} wanted)")
+    if not row.mixed:
+        missing.append("its chains have not mixed")
+    more = evaluations_still_needed(row)
+    if more is None:
+        # Not mixed: the IACT is at least half a chain's length, so a reliable ESS needs at least this many.
+        more = max(0, int(np.ceil(IACTS_FOR_PRECISE_ESS * row.steps / 2)) - row.evaluations)
+        settle = f"at least {more:,} more evaluations of that run (its IACT is at least half its chains' length)"
+    else:
+        settle = (f"about {more:,} more evaluations of that run (extrapolated from its measured IACT "
+                  f"{row.iact_max:.3g} and R-hat)")
+    return [
+        Finding(
+            "proof-unsettled", "warn", [],
+            f"the proof's budget ({proof.budget:,} evaluations) ran out before the {row.proposal} run was settled: "
+            f"{'; '.join(missing)}. {settle[0].upper() + settle[1:]} would settle it; raise the budget by that much.",
+            {"proposal": row.proposal, "ess": ess, "ess_needed": IACTS_FOR_PRECISE_ESS, "max_rhat": row.max_rhat,
+             "rhat_wanted": RHAT_SETTLED, "evaluations": row.evaluations, "evaluations_more": more,
+             "proof_budget": proof.budget},
+        )
+    ]
+
+
 def acceptance_mismatch_findings(expected: float, row, factor: float = 1.5) -> list:
     """``acceptance-mismatch`` when ``row`` (the tuned covariance's run) accepts ``factor`` times more or less than expected."""
     measured = row.acceptance
@@ -323,7 +367,9 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
                  for note in checks.undecided]
     findings += coords.findings
-    findings += short_chain_findings(next(row for row in proof.rows if row.proposal == recommended), proof.steps)
+    chosen = next(row for row in proof.rows if row.proposal == recommended)
+    findings += short_chain_findings(chosen, proof.steps[recommended])
+    findings += proof_length_findings(chosen, proof)
     findings += pilot_findings(pilot.converged, pilot_evaluations)
     findings += failed_evaluation_findings(proof.runs)
     findings += timeout_findings(posterior.counted.timeouts, posterior.time_limit)

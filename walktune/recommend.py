@@ -21,8 +21,14 @@ in tests/test_recommend.py). Its efficiency is then an upper bound, and a
 speed-up over it a lower bound. Everywhere else a short run's ESS is as
 likely under- as over-estimated, and a speed-up resting on one is imprecise.
 
+The same comparison sizes the proof (:mod:`walktune.proof`): a run measured
+slower than another beyond the error is stopped (:func:`in_contention`), and
+the recommended run is extended until :func:`settled`.
+
 References
 ----------
+Gelman, A. and Rubin, D. B. (1992). Inference from iterative simulation using multiple
+sequences. Statistical Science, 7(4), 457-472.
 Geyer, C. J. (1992). Practical Markov chain Monte Carlo. Statistical Science, 7(4), 473-483.
 Sokal, A. (1997). Monte Carlo methods in statistical mechanics: foundations and new algorithms.
 In Functional Integration, Springer, 131-192.
@@ -41,6 +47,9 @@ Z_RESOLVED = 2.0
 STUCK_RHAT = 2.0
 #: Predicted factors beyond this are printed as a bound: no measurement could tell them apart.
 LARGEST_SHOWN_FACTOR = 1e6
+#: A proof run is settled when its ESS is reliable and its R-hat is below this on every parameter
+#: (Vehtari et al. 2021 recommend below 1.01).
+RHAT_SETTLED = 1.01
 
 #: When runs are within the measurement's error of each other, the first of these is recommended:
 #: no change over a change, then the tuned covariance (theory predicts it at least as fast as
@@ -203,6 +212,62 @@ def recommend(rows: list) -> Recommendation:
     )
 
 
+def in_contention(rows: list) -> list:
+    """The rows no other usable run was measured faster than (:func:`measured_faster`): the runs worth extending.
+
+    A row measured slower beyond the error is plainly slower: its figure's upper
+    end lies below another run's lower end, or it has not mixed and even its
+    too-high ESS is below another's lower end. The speed-up over it stays
+    what it is at that length (a lower bound when it has not mixed).
+    """
+    usable = [row for row in rows if np.isfinite(row.ess_per_1000) and row.ess_per_1000 > 0] or list(rows)
+    return [row for row in rows if not any(measured_faster(other, row) for other in usable if other is not row)]
+
+
+def resolved_by_extending(leader, other, evaluations: int) -> bool:
+    """Whether ``leader`` would be measured faster than ``other`` once the leader alone runs ``evaluations`` in all.
+
+    The leader's relative error falls as ``1 / sqrt(evaluations)`` at its measured
+    IACT (Sokal 1997); the other run keeps its figures. A run whose efficiency is
+    not below the leader's is never resolved so, nor is a leader that has not mixed.
+    """
+    ea, eb = _efficiency(leader), _efficiency(other)
+    if not leader.mixed or not (ea > 0 and np.isfinite(ea)) or not (eb < ea):
+        return False
+    if not (eb > 0 and np.isfinite(eb)):
+        return True
+    error = leader.ess_relative_error * np.sqrt(leader.evaluations / max(evaluations, leader.evaluations))
+    if other.mixed:
+        error = np.hypot(error, other.ess_relative_error)
+    return bool(np.log(ea / eb) > Z_RESOLVED * error)
+
+
+def settled(row) -> bool:
+    """Whether a run is long enough to stop: mixed, ESS reliable, R-hat below :data:`RHAT_SETTLED` on every parameter."""
+    return bool(row.mixed and row.ess_reliable and np.isfinite(row.max_rhat) and row.max_rhat < RHAT_SETTLED)
+
+
+def evaluations_still_needed(row) -> int | None:
+    """More evaluations a run needs to be :func:`settled`, extrapolated from its measures; None when it has not mixed.
+
+    For a reliable ESS the run needs ``IACTS_FOR_PRECISE_ESS * tau`` evaluations
+    in all (its measured largest IACT ``tau``). For R-hat: the between-chain
+    variance of chain means of a mixing chain falls as ``tau / n``, so
+    ``R-hat - 1`` falls about as ``1 / n`` (Gelman and Rubin 1992), and the run
+    needs ``evaluations (R-hat - 1) / (RHAT_SETTLED - 1)`` in all. A chain that
+    has not mixed gives no IACT to extrapolate from.
+    """
+    if settled(row):
+        return 0
+    if not row.mixed or not np.isfinite(row.iact_max):
+        return None
+    for_ess = IACTS_FOR_PRECISE_ESS * row.iact_max
+    excess = row.max_rhat - 1.0 if np.isfinite(row.max_rhat) else float("inf")
+    for_rhat = row.evaluations * excess / (RHAT_SETTLED - 1.0) if excess >= RHAT_SETTLED - 1.0 else 0.0
+    needed = max(for_ess, for_rhat)
+    return int(np.ceil(needed - row.evaluations)) if np.isfinite(needed) else None
+
+
 def speedup_text(speedup: float, kind: str) -> str:
     """``at least 3.2x``, ``at most 0.5x``, ``roughly 1.3x`` (imprecise) or ``2.1x``."""
     prefix = {"lower-bound": "at least ", "upper-bound": "at most ", "imprecise": "roughly "}.get(kind, "")
@@ -242,7 +307,11 @@ class ComparisonRow:
     as over-estimated; ``evaluations_to_settle`` in all would make both
     reliable). See the module docstring. ``predicted_slowdown`` is the
     predicted ratio of the tuned run's smallest ESS to this run's
-    (``theory.Slowdown.slowest_parameter``).
+    (``theory.Slowdown.slowest_parameter``). ``steps`` is the run's length per
+    chain and ``proof_end`` why it ended (:mod:`walktune.proof`): ``slower``
+    (stopped once measured slower than another run), ``settled`` (the
+    recommended run's ESS reliable and R-hat below :data:`RHAT_SETTLED`) or
+    ``budget`` (the proof's budget ran out first).
     """
 
     proposal: str
@@ -262,12 +331,14 @@ class ComparisonRow:
     settle_evaluations: int = 0
     speedup_kind: str = "baseline"
     evaluations_to_settle: int | None = 0
+    steps: int = 0
+    proof_end: str = ""
 
     def to_dict(self) -> dict:
         return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in self.__dict__.items()}
 
 
-def row_from_run(name, description, chains, stats, predicted, baseline=None):
+def row_from_run(name, description, chains, stats, predicted, baseline=None, proof_end=""):
     """A comparison row from a run and its diagnostics ``stats`` (walktune.diagnostics.ChainMeasures)."""
     ess = stats.bulk_ess
     evaluations = chains.evaluations
@@ -298,6 +369,8 @@ def row_from_run(name, description, chains, stats, predicted, baseline=None):
         mixed=not not_mixed(iact_max, steps, max_rhat),
         ess_relative_error=ess_relative_error(iact_max, stats.n_chains, steps),
         settle_evaluations=evaluations_to_settle(iact_max, stats.n_chains, steps, reliable),
+        steps=int(steps),
+        proof_end=proof_end,
     )
     if baseline is None:
         return row

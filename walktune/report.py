@@ -373,7 +373,7 @@ FIGURES = [
      "draws, with the principal axes of their covariance in those draws; each panel gives both correlations."),
     ("spectrum", figure_spectrum, "Eigenvalues of the correlation matrix of the pilot's covariance estimate: the pinned directions (small eigenvalues) cap the step a diagonal proposal can take, so it crawls along the widest ones (large eigenvalues); with a prior given apart, the directions the data inform."),
     ("autocorrelation", figure_autocorrelation, "Autocorrelation of the slowest parameter in the baseline run and the recommended run."),
-    ("ess", figure_ess, "Effective samples per 1000 evaluations in every proof run (fixed proposals, equal budgets)."),
+    ("ess", figure_ess, "Effective samples per 1000 evaluations in every proof run (fixed proposals; runs measured slower stopped early)."),
     ("evaluations", figure_needed, "Evaluations each proposal needs for the ESS wanted, at the efficiency measured in its proof run."),
 ]
 
@@ -407,7 +407,7 @@ def _plain_advice(advice: dict) -> list:
         if chosen is rows[0]:
             worth = "no other option was measured faster than it beyond the measurement's error"
         else:
-            worth = (f"measured on equal budgets it gave {speedup_text(chosen['speedup'], chosen.get('speedup_kind', 'measured'))} "
+            worth = (f"measured per evaluation it gave {speedup_text(chosen['speedup'], chosen.get('speedup_kind', 'measured'))} "
                      f"the effective samples per evaluation of {rows[0]['proposal']}")
         action = "Keep your current proposal" if recommended.get("keep_current") else f"Use {chosen['proposal']} ({where})"
         lines.append(f"{action}: {worth}.")

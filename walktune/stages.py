@@ -23,14 +23,14 @@ progress and their best covariance so far through it, and nothing else.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from . import theory
 from .advice import Advice
 from .diagnostics import ChainMeasures, measure_chains
-from .engine import Chains, sample
+from .engine import Chains
 from .errors import WalktuneError
 from .findings import Finding
 from .funnels import merge_probe, needs_curvature_probe
@@ -52,7 +52,8 @@ from .mode import ModeFit, find_mode
 from .modes import ModeMass, TableScope, minor_mode_finding, table_scope, weigh_start_modes
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
-from .recommend import ComparisonRow, row_from_run
+from .proof import Option, first_round_steps, run_rounds
+from .recommend import ComparisonRow
 from .reparam import build_reparam, curved_ridge_findings
 from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
@@ -75,8 +76,28 @@ def pilot_budget_default(dim: int) -> int:
 
 
 def proof_steps_default(dim: int) -> int:
-    """Steps per chain of each proof run: enough for about 65 IACTs (IACT ~ 3 d) in each half-chain."""
+    """Steps per chain of one proof run before the proof ran in rounds: about 65 IACTs (IACT ~ 3 d) per half-chain."""
     return max(2000, 400 * dim)
+
+
+#: Up to this dimension the proof's default budget is the old equal-length proof's total (three runs).
+SMALL_PROOF_DIM = 10
+
+
+def proof_budget_default(dim: int, chains: int) -> int:
+    """Default evaluations of the whole proof: ``chains x max(2000, 400 d)`` times 3 up to d = 10, else once.
+
+    An optimally scaled random walk has IACT about 3 d on a Gaussian (Roberts,
+    Gelman and Gilks 1997). R-hat below 1.01 on every parameter asks for about
+    1000 IACTs (docs/method.md, Proof rounds): up to d = 10 the old proof's
+    total (three runs of ``max(2000, 400 d)`` steps per chain) holds them.
+    Above, one such run: about 500 IACTs, twice the ``IACTS_FOR_PRECISE_ESS``
+    a reliable ESS needs, with room for the other options' first rounds; when
+    the budget ends first, the ``proof-unsettled`` finding says how many more
+    evaluations would settle the recommended run.
+    """
+    runs = 3 if dim <= SMALL_PROOF_DIM else 1
+    return chains * runs * proof_steps_default(dim)
 
 
 def minimum_budget(dim: int, chains: int) -> int:
@@ -418,18 +439,56 @@ class Proof:
     runs : dict of str to Chains
         Draws in the user's parameters, by proposal name.
     stats : dict of str to walktune.diagnostics.ChainMeasures
-    steps : int
-        Steps per chain of every run.
+    steps : dict of str to int
+        Steps per chain of each run (runs measured slower stopped early).
     proposals : dict of str to ndarray of shape (d, d)
         Each run's proposal covariance, in the coordinates it ran in (the new
         coordinates' runs in those of ``sampling_map.json``).
+    budget : int
+        Evaluations the proof could spend (:func:`proof_budget`).
+    rounds : int
+    settled : bool
+        The recommended run's ESS is reliable and its R-hat below 1.01
+        (:func:`walktune.recommend.settled`) within the budget.
     """
 
     rows: list
     runs: dict
     stats: dict
-    steps: int
+    steps: dict
     proposals: dict = field(default_factory=dict)
+    budget: int = 0
+    rounds: int = 0
+    settled: bool = False
+
+    @property
+    def full_length_runs(self) -> dict:
+        """The runs of the longest length (those still extended when the proof ended), by name."""
+        longest = max(run.n_steps for run in self.runs.values())
+        return {name: run for name, run in self.runs.items() if run.n_steps == longest}
+
+    def pooled(self) -> tuple:
+        """Every run's draws as chains of one length, for the detectors: (draws, log_density, chain_ids).
+
+        Runs stopped early are shorter; each longer run is cut into consecutive
+        pieces of the shortest run's length (its last whole pieces), each piece
+        a chain of the pool, with the index of the chain it comes from.
+        Shapes (pieces, length, d), (pieces, length) and (pieces,).
+        """
+        length = min(run.n_steps for run in self.runs.values())
+        draws, log_density, chain_ids = [], [], []
+        for run in self.runs.values():
+            pieces = run.n_steps // length
+            kept = slice(run.n_steps - pieces * length, run.n_steps)
+            draws.append(run.draws[:, kept].reshape(run.n_chains * pieces, length, run.dim))
+            log_density.append(run.log_density[:, kept].reshape(run.n_chains * pieces, length))
+            chain_ids.append(np.repeat(np.arange(run.n_chains), pieces))
+        return np.concatenate(draws), np.concatenate(log_density), np.concatenate(chain_ids)
+
+    @property
+    def evaluations(self) -> int:
+        """Evaluations the proof spent, all runs together."""
+        return sum(run.evaluations for run in self.runs.values())
 
     @property
     def tuned(self) -> Chains:
@@ -467,43 +526,48 @@ def _user_space_plan(advice: Advice, current: np.ndarray | None, dim: int) -> li
     ]
 
 
+def proof_budget(dim: int, budget: Budget, spent: int, options: int) -> int:
+    """Evaluations the proof may spend: by default :func:`proof_budget_default`; with a cap on the job, what the
+    mode search and pilots left less the detection reserve (at least 50 steps per chain for every option)."""
+    if budget.total is None:
+        return proof_budget_default(dim, budget.chains)
+    left = budget.total - spent - detection_reserve(dim, budget.total)
+    return max(left, 50 * options * budget.chains)
+
+
 def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords: NewCoordinates, budget: Budget,
                current: np.ndarray | None, seed, tracker) -> Proof:
-    """Equal budgets, fixed proposals, from the pilot's end states.
+    """Fixed-proposal runs from the pilot's end states, in rounds sized by need (:mod:`walktune.proof`).
 
-    Steps per chain: the default, or with a cap on the job what the mode search
-    and pilots left (less the detection reserve), shared equally by the runs.
+    Every option runs a first round of :func:`walktune.proof.first_round_steps`
+    (fewer when the budget cannot hold them); runs measured slower stop, and the
+    others continue until the recommended one is settled or :func:`proof_budget` is spent.
     """
-    dim, counted = posterior.dim, posterior.counted
-    steps = proof_steps_default(dim)
-    if budget.total is not None:
-        left = budget.total - counted.count - detection_reserve(dim, budget.total)
-        steps = max(50, left // ((3 + len(coords.plan)) * budget.chains))
+    dim, counted, chains = posterior.dim, posterior.counted, budget.chains
     plan = _user_space_plan(advice, current, dim)
-    rows, runs, stats, proposals = [], {}, {}, {}
-    tracker.proof_rows(rows)
-    for run_plan, child in zip(plan, seed.spawn(len(plan))):
-        name = run_plan.name
-        run = sample(
-            None, pilot.states, run_plan.covariance, steps, seed=child, evaluator=counted,
-            start_log_density=pilot.state_log_density,
-            progress=lambda done, total, name=name: tracker(name, done, total),
-        )
-        runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
-        rows.append(row_from_run(name, run_plan.description, run, stats[name], run_plan.predicted,
-                                  rows[0] if rows else None))
+    options = [Option(p.name, p.description, p.covariance, p.predicted, child, counted, pilot.states,
+                      pilot.state_log_density)
+               for p, child in zip(plan, seed.spawn(len(plan)))]
     if coords.plan:
         z_evaluator = SamplerSpaceEvaluator(counted, coords.reparam)
-        for run_plan, child in zip(coords.plan, seed.spawn(len(coords.plan))):
-            name = run_plan.name
-            run = sample(None, coords.states, run_plan.covariance, steps, seed=child, evaluator=z_evaluator,
-                         independent=run_plan.independent,
-                         progress=lambda done, total, name=name: tracker(name, done, total))
-            # Measured in the user's own parameters.
-            run = replace(run, draws=coords.reparam.from_sampler(run.draws))
-            runs[name], stats[name], proposals[name] = run, measure_chains(run.draws), run_plan.covariance
-            rows.append(row_from_run(name, run_plan.description, run, stats[name], float("nan"), rows[0]))
-    return Proof(rows, runs, stats, steps, proposals)
+        options += [Option(p.name, p.description, p.covariance, float("nan"), child, z_evaluator, coords.states, None,
+                           independent=p.independent, to_user=coords.reparam.from_sampler)
+                    for p, child in zip(coords.plan, seed.spawn(len(coords.plan)))]
+    cap = proof_budget(dim, budget, counted.count, len(options))
+    first = min(first_round_steps(dim), max(50, cap // (len(options) * chains)))
+    rows: list = []
+    tracker.proof_rows(rows)
+    rounds = run_rounds(options, cap, chains, first, tracker, rows)
+    return Proof(
+        rows=rounds.rows,
+        runs={o.name: o.run for o in options},
+        stats={o.name: o.stats for o in options},
+        steps={o.name: o.steps for o in options},
+        proposals={o.name: o.covariance for o in options},
+        budget=cap,
+        rounds=rounds.rounds,
+        settled=rounds.settled,
+    )
 
 
 # --------------------------------------------------------------------------- geometry checks
@@ -541,20 +605,22 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
                    budget: Budget, chosen: str) -> GeometryChecks:
     """Separated modes and their masses, the table's chains, funnels, pile-up at bounds and heavy tails.
 
-    The mode and funnel detectors look at every proof run: all are
-    fixed-proposal continuations of the pilot's chains. The curvature probe for
-    funnels runs only when the draws showed none, d <= MAX_CURVATURE_PROBE_DIM
-    and the budget has room. The posterior table comes from the ``chosen`` run's
+    All proof runs are fixed-proposal continuations of the pilot's chains. The
+    search for separated regions looks at every run (:meth:`Proof.pooled`); the
+    funnel detectors at the runs of full length (:attr:`Proof.full_length_runs`).
+    The curvature probe for funnels runs only when the draws showed none (or
+    only a scale without a funnel's structure), d <= MAX_CURVATURE_PROBE_DIM and
+    the budget has room. The posterior table comes from the ``chosen`` run's
     chains in one region (:func:`walktune.modes.table_scope`), and pile-up and
     heavy tails are checked on those draws, every parameter.
     """
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
     detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
-    proof_draws = np.concatenate([run.draws for run in proof.runs.values()], axis=0)
+    proof_draws, _, chain_ids = proof.pooled()
     tau_within = within_chain_iact(proof_draws)
     regions, undecided_modes = find_regions(
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
-        chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
+        chain_ids=[int(c) for c in chain_ids],
     )
     multimodal = [f for f in (multimodal_finding(regions, names),
                               minor_mode_finding(start.minor_modes, start.main_mode, names)) if f is not None]
@@ -563,7 +629,7 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     table = table_scope(assign_draws(regions, chosen_draws), [0.0 if r.negligible else r.mass for r in regions])
     table_draws = chosen_draws[table.chains]
     table_stats = proof.stats[chosen] if table.region is None else measure_chains(table_draws)
-    funnel, undecided_scale = _funnel_checks(posterior, proof_draws, proof, pilot, budget)
+    funnel, undecided_scale = _funnel_checks(posterior, proof, pilot, budget)
     undecided_tails = [names[i] for i in range(dim) if not table_stats.bulk_ess[i] >= MIN_DRAWS_TO_DECIDE]
     return GeometryChecks(
         regions=regions,
@@ -579,9 +645,14 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     )
 
 
-def _funnel_checks(posterior: Posterior, proof_draws: np.ndarray, proof: Proof, pilot: PilotResult, budget: Budget):
-    """Varying scale in the draws of every proof run; the model's curvature when they show none and the budget allows."""
+def _funnel_checks(posterior: Posterior, proof: Proof, pilot: PilotResult, budget: Budget):
+    """Varying scale in the draws of the full-length proof runs; the model's curvature when they show none and the
+    budget allows."""
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
+    # The funnel detectors compare whole chains (fifths filled by several chains): the runs of full length.
+    full = proof.full_length_runs.values()
+    proof_draws = np.concatenate([run.draws for run in full], axis=0)
+    proof_log_density = np.concatenate([run.log_density for run in full], axis=0)
     tau_median = within_chain_iact(proof_draws, np.median)
     # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
     proof_ess = measure_chains(proof_draws).bulk_ess
@@ -595,8 +666,7 @@ def _funnel_checks(posterior: Posterior, proof_draws: np.ndarray, proof: Proof, 
         # than a hypothesis only where the draws confirm it.
         probed = funnel_findings_from_curvature(counted.scalar, proof_draws, tau_median, names, posterior.bounds,
                                                 spread=np.sqrt(np.diag(pilot.covariance)),
-                                                log_densities=np.concatenate([run.log_density for run in proof.runs.values()]),
-                                                budget=left)
+                                                log_densities=proof_log_density, budget=left)
         funnel = merge_probe(funnel, probed)
         if any(f.severity != "info" for f in funnel):
             undecided_scale = None

@@ -12,10 +12,10 @@ with explicit inputs and a small result:
    (:mod:`walktune.analysis`, :mod:`walktune.advice`, :mod:`walktune.theory`);
 5. new coordinates (transforms, rotation, informed split) and a short pilot in
    them (:mod:`walktune.reparam`);
-6. the proof: fixed-proposal runs from the pilot's end states, on equal
-   evaluation budgets, of a baseline (the user's proposal or one tuned step
-   size), tuned per-parameter step sizes, the tuned covariance and the runs in
-   new coordinates;
+6. the proof: fixed-proposal runs from the pilot's end states of a baseline
+   (the user's proposal or one tuned step size), tuned per-parameter step
+   sizes, the tuned covariance and the runs in new coordinates, in rounds
+   sized by need (:mod:`walktune.proof`);
 7. hard-geometry checks (:mod:`walktune.geometry`) and the findings
    (:func:`walktune.findings.collect_findings`).
 
@@ -491,7 +491,8 @@ def tune(
         The proposal used today: a (d, d) covariance or (d,) step sizes (sds).
     budget : int, optional
         Cap on log-density evaluations for the whole job. Default: ``20 d^2 +
-        2000`` for the pilot plus three proof runs of ``chains x max(2000, 400 d)``.
+        2000`` for the pilot plus at most ``chains x max(2000, 400 d)`` (3 times that up to d = 10) for the
+        proof runs (:func:`walktune.stages.proof_budget_default`).
     chains : int, default=4
     seed : int or None
         Makes the whole job reproducible.
