@@ -37,6 +37,19 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
   estimate from the draws of a stage run at corrected scales is adopted (the
   draws win).
 
+A stage counts towards settling only when its estimate rests on at least
+:data:`MIN_SETTLED_DRAWS` roughly independent draws: with fewer, "the change is
+within noise" says nothing (the noise level is then a several-fold slow-down).
+Such a slow stage means the chains have not crossed the posterior, and the
+draws it saw so far may be narrower than the posterior but not, beyond noise,
+wider. So while the stages are slow the pilot grows the covariance from all the
+draws since the last rescaling, as adaptive Metropolis does (Haario, Saksman
+and Tamminen 2001), keeping only the directions in which the draws are wider
+than ``C`` (:func:`expanded_covariance`), adopted when the growth is beyond
+noise; and it holds the global factor, since the diffusion-limit relation that
+steers it assumes the shape is right. A pilot still unsettled when its budget
+ends takes the extension once, as a poor start does.
+
 Adaptation happens only between stages; nothing measured after the pilot comes
 from an adapting chain.
 
@@ -76,6 +89,10 @@ PROBE_FALSE_ALARM = 1e-4
 RIGHT_SCALE_ACCEPTANCE = 2.0 / np.pi * np.arctan(2.0 / 2.4)
 #: Largest rescaling one probe applies (an all-accepted probe says only "much wider").
 PROBE_LIMIT = 10.0
+#: Roughly independent draws a stage's estimate must rest on to count towards settling: from 16
+#: draws the 99% noise level of :func:`noise_slowdown` is below 2 in every dimension (1.8 at d = 3,
+#: 1.5 at d = 20; from 4 draws it is 2.2-9.7), so "within noise" then means "within a 2-fold slow-down".
+MIN_SETTLED_DRAWS = 16
 
 
 @dataclass
@@ -298,6 +315,34 @@ def probe_components(evaluate, states: np.ndarray, log_density: np.ndarray, cova
                           sweeps * n_chains)
 
 
+def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndarray, int]:
+    """``C`` grown where ``draws`` are wider than it, and kept where they are narrower.
+
+    The shrinkage estimate ``S`` of ``draws`` (:func:`shrunk_covariance`, shrunk
+    towards ``reference``) is whitened by ``C``, ``W = L^{-1} S L^{-T}``
+    (``C = L L^T``); eigenvalues of ``W`` below 1 are raised to 1 and the
+    result mapped back, so the new matrix is at least ``C`` in every direction
+    (Loewner order). Returns it and the number of roughly independent draws.
+
+    Parameters
+    ----------
+    covariance, reference : ndarray of shape (d, d)
+    draws : ndarray of shape (chains, n, d)
+    """
+    estimate, _, n_independent = shrunk_covariance(draws, reference)
+    chol = np.linalg.cholesky(covariance)
+    white = np.linalg.solve(chol, np.linalg.solve(chol, estimate).T)
+    values, vectors = np.linalg.eigh(0.5 * (white + white.T))
+    grown = chol @ ((vectors * np.maximum(values, 1.0)) @ vectors.T) @ chol.T
+    return 0.5 * (grown + grown.T), n_independent
+
+
+def _since(history: list, first: int) -> np.ndarray:
+    """All stage draws from stage ``first`` on, less the first half of that stage (warm-up)."""
+    draws = np.concatenate(history[first:], axis=1)
+    return draws[:, history[first].shape[1] // 2 :]
+
+
 def _scale_step(factor: float, acceptance: float, target: float) -> float:
     """New global factor so that the diffusion-limit acceptance hits ``target``."""
     acceptance = min(max(acceptance, 0.01), 0.95)
@@ -374,8 +419,9 @@ def run_pilot(
         Probe each parameter's scale after a stage (:func:`probe_components`)
         until a probe finds every parameter in range.
     extension : int, default=0
-        Evaluations added to ``budget`` the first time a probe rescales a
-        parameter (the start was poor, and the pilot needs more stages).
+        Evaluations added to ``budget`` once: the first time a probe rescales a
+        parameter (the start was poor, and the pilot needs more stages), or when
+        the pilot has not settled and the budget would not hold the next stage.
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -394,6 +440,7 @@ def run_pilot(
     settled = 0
     rescaled = False
     trust_start = True
+    since = 0  # the first stage whose draws the slow-stage estimate pools
     while True:
         steps = window * 2 ** min(stage_index, 6)
         remaining = budget - spent
@@ -419,9 +466,16 @@ def run_pilot(
             np.linalg.cholesky(new_cov)
         except np.linalg.LinAlgError:
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
+        acceptance = chains.acceptance_rate
+        slow = n_independent < MIN_SETTLED_DRAWS
+        if slow and not within_chains and acceptance > 0:
+            # Too few independent draws to confirm a shape: grow it from every draw since the last rescaling.
+            try:
+                new_cov, n_independent = expanded_covariance(result.covariance, _since(history, since), reference)
+            except np.linalg.LinAlgError:
+                new_cov, n_independent = result.covariance, 0
         change = theory.direction_slowdown(new_cov, result.covariance)
         noise = noise_slowdown(dim, n_independent, noise_rng)
-        acceptance = chains.acceptance_rate
         significant = change > noise
         # Once a probe has shown the start wrong, the draws win even when the change is within
         # noise; but not the draws of a stage that ran with scales a probe has just corrected.
@@ -435,16 +489,20 @@ def run_pilot(
             spent += _probe_and_rescale(evaluate, result, stage, probe_rng)
             rescaled = probe = bool(np.any(stage.component_scaling != 1.0))
             if rescaled:
-                trust_start = False
+                trust_start, since = False, len(history)
                 budget, extension = budget + extension, 0  # a poor start: take the extra allowance once
         if acceptance == 0 and not rescaled:
             result.covariance = result.covariance / 10.0  # nothing moved and no probe said why: much smaller steps
         result.stages.append(stage)
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
-        factor = _scale_step(factor, acceptance, target)
+        # While slow stages grow the shape, hold the factor (as adaptive Metropolis does) unless nearly nothing moves.
+        if not (slow and not within_chains and acceptance >= 0.1 * target):
+            factor = _scale_step(factor, acceptance, target)
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
-        steady = not significant and not rescaled and good_acceptance and stage_index >= 1
+        steady = not significant and not rescaled and good_acceptance and stage_index >= 1 and not slow
+        if not steady and extension and budget - spent < n_chains * window * 2 ** min(stage_index + 1, 6):
+            budget, extension = budget + extension, 0  # unsettled as the budget ends: take the extra allowance once
         settled = settled + 1 if steady else 0
         stage_index += 1
         if on_stage is not None:
