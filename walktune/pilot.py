@@ -42,8 +42,8 @@ A stage counts towards settling only when its estimate rests on at least
 within noise" says nothing (the noise level is then a several-fold slow-down).
 Such a slow stage means the chains have not crossed the posterior, and the
 draws it saw so far may be narrower than the posterior but not, beyond noise,
-wider. So while the stages are slow the pilot grows the covariance from all the
-draws since the last rescaling, as adaptive Metropolis does (Haario, Saksman
+wider. So while the stages are slow, and no probe has faulted the start, the
+pilot grows the covariance from all the draws so far, as adaptive Metropolis does (Haario, Saksman
 and Tamminen 2001), keeping only the directions in which the draws are wider
 than ``C`` (:func:`expanded_covariance`), adopted when the growth is beyond
 noise; and it holds the global factor, since the diffusion-limit relation that
@@ -337,10 +337,10 @@ def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np
     return 0.5 * (grown + grown.T), n_independent
 
 
-def _since(history: list, first: int) -> np.ndarray:
-    """All stage draws from stage ``first`` on, less the first half of that stage (warm-up)."""
-    draws = np.concatenate(history[first:], axis=1)
-    return draws[:, history[first].shape[1] // 2 :]
+def _all_since_warmup(history: list) -> np.ndarray:
+    """Every stage's draws, less the first half of the first stage (warm-up), shape (chains, n, d)."""
+    draws = np.concatenate(history, axis=1)
+    return draws[:, history[0].shape[1] // 2 :]
 
 
 def _scale_step(factor: float, acceptance: float, target: float) -> float:
@@ -440,7 +440,6 @@ def run_pilot(
     settled = 0
     rescaled = False
     trust_start = True
-    since = 0  # the first stage whose draws the slow-stage estimate pools
     while True:
         steps = window * 2 ** min(stage_index, 6)
         remaining = budget - spent
@@ -468,10 +467,12 @@ def run_pilot(
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
         acceptance = chains.acceptance_rate
         slow = n_independent < MIN_SETTLED_DRAWS
-        if slow and not within_chains and acceptance > 0:
-            # Too few independent draws to confirm a shape: grow it from every draw since the last rescaling.
+        # Grow only a shape no probe has faulted: once one has, the draws win as they are (they may be narrower).
+        growing = slow and trust_start and not within_chains and acceptance > 0
+        if growing:
+            # Too few independent draws to confirm a shape: grow it from every draw so far.
             try:
-                new_cov, n_independent = expanded_covariance(result.covariance, _since(history, since), reference)
+                new_cov, n_independent = expanded_covariance(result.covariance, _all_since_warmup(history), reference)
             except np.linalg.LinAlgError:
                 new_cov, n_independent = result.covariance, 0
         change = theory.direction_slowdown(new_cov, result.covariance)
@@ -489,14 +490,14 @@ def run_pilot(
             spent += _probe_and_rescale(evaluate, result, stage, probe_rng)
             rescaled = probe = bool(np.any(stage.component_scaling != 1.0))
             if rescaled:
-                trust_start, since = False, len(history)
+                trust_start = False
                 budget, extension = budget + extension, 0  # a poor start: take the extra allowance once
         if acceptance == 0 and not rescaled:
             result.covariance = result.covariance / 10.0  # nothing moved and no probe said why: much smaller steps
         result.stages.append(stage)
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
         # While slow stages grow the shape, hold the factor (as adaptive Metropolis does) unless nearly nothing moves.
-        if not (slow and not within_chains and acceptance >= 0.1 * target):
+        if not (growing and acceptance >= 0.1 * target):
             factor = _scale_step(factor, acceptance, target)
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
