@@ -37,9 +37,10 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
   estimate from the draws of a stage run at corrected scales is adopted (the
   draws win).
 
-A stage counts towards settling only when its estimate rests on at least
-:data:`MIN_SETTLED_DRAWS` roughly independent draws: with fewer, "the change is
-within noise" says nothing (the noise level is then a several-fold slow-down).
+A stage counts towards settling only when its estimate rests on enough roughly
+independent draws that its noise level is at most :data:`SETTLED_NOISE`: with
+fewer, "the change is within noise" says little (the noise level is then a
+several-fold slow-down).
 Such a slow stage means the chains have not crossed the posterior, and the
 draws it saw so far may be narrower than the posterior but not, beyond noise,
 wider. So while the stages are slow, and no probe has faulted the start, the
@@ -47,8 +48,9 @@ pilot grows the covariance from all the draws so far, as adaptive Metropolis doe
 and Tamminen 2001), keeping only the directions in which the draws are wider
 than ``C`` (:func:`expanded_covariance`), adopted when the growth is beyond
 noise; and it holds the global factor, since the diffusion-limit relation that
-steers it assumes the shape is right. A pilot still unsettled when its budget
-ends takes the extension once, as a poor start does.
+steers it assumes the shape is right. A pilot whose draws have changed its
+covariance and that has not settled when its budget ends takes the extension
+once, as a poor start does (a start whose shape the draws confirm does not).
 
 Adaptation happens only between stages; nothing measured after the pilot comes
 from an adapting chain.
@@ -89,10 +91,11 @@ PROBE_FALSE_ALARM = 1e-4
 RIGHT_SCALE_ACCEPTANCE = 2.0 / np.pi * np.arctan(2.0 / 2.4)
 #: Largest rescaling one probe applies (an all-accepted probe says only "much wider").
 PROBE_LIMIT = 10.0
-#: Roughly independent draws a stage's estimate must rest on to count towards settling: from 16
-#: draws the 99% noise level of :func:`noise_slowdown` is below 2 in every dimension (1.8 at d = 3,
-#: 1.5 at d = 20; from 4 draws it is 2.2-9.7), so "within noise" then means "within a 2-fold slow-down".
-MIN_SETTLED_DRAWS = 16
+#: A stage counts towards settling only when the noise level of its estimate (:func:`noise_slowdown`, the
+#: 99% quantile of the slow-down an estimate from as many independent draws shows by chance) is at most
+#: this: "the change is within noise" then means "within a 2-fold slow-down". From 16 independent draws
+#: the level is below 2 in every dimension (1.8 at d = 3, 1.5 at d = 20); from 4 draws it is 2.2-9.7.
+SETTLED_NOISE = 2.0
 
 
 @dataclass
@@ -193,7 +196,7 @@ NOISE_REPLICATES = 399
 
 
 def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates: int = NOISE_REPLICATES,
-                   quantile: float = 0.99) -> float:
+                   quantile: float = 0.99, grow_only: bool = False) -> float:
     """How far a shrinkage estimate from ``n_draws`` independent draws strays by chance.
 
     The ``quantile`` of ``direction_slowdown(estimate, truth)`` when the truth
@@ -206,6 +209,9 @@ def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates:
     (numpy's "weibull" method), whose coverage has mean ``quantile`` and sd
     ``sqrt(quantile (1 - quantile) / (replicates + 2))`` (the Beta distribution of
     uniform order statistics): 0.990 +/- 0.005 with the defaults.
+
+    With ``grow_only`` the estimate's eigenvalues below 1 are raised to 1
+    first, as :func:`expanded_covariance` does: the noise of a grown shape.
     """
     if n_draws < 2:
         return np.inf
@@ -214,6 +220,9 @@ def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates:
     for _ in range(replicates):
         white = rng.standard_normal((n_draws, dim))
         estimate = _lw_estimate(white - white.mean(axis=0))
+        if grow_only:
+            eigenvalues, vectors = np.linalg.eigh(estimate)
+            estimate = (vectors * np.maximum(eigenvalues, 1.0)) @ vectors.T
         values.append(theory.direction_slowdown(estimate, identity))
     return float(np.quantile(values, quantile, method="weibull"))
 
@@ -421,7 +430,8 @@ def run_pilot(
     extension : int, default=0
         Evaluations added to ``budget`` once: the first time a probe rescales a
         parameter (the start was poor, and the pilot needs more stages), or when
-        the pilot has not settled and the budget would not hold the next stage.
+        the draws have changed the covariance, the pilot has not settled, and
+        the budget would not hold the next stage.
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -440,6 +450,7 @@ def run_pilot(
     settled = 0
     rescaled = False
     trust_start = True
+    reshaped = False  # a stage's draws have changed the covariance
     while True:
         steps = window * 2 ** min(stage_index, 6)
         remaining = budget - spent
@@ -466,7 +477,8 @@ def run_pilot(
         except np.linalg.LinAlgError:
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
         acceptance = chains.acceptance_rate
-        slow = n_independent < MIN_SETTLED_DRAWS
+        noise = noise_slowdown(dim, n_independent, noise_rng)
+        slow = noise > SETTLED_NOISE
         # Grow only a shape no probe has faulted: once one has, the draws win as they are (they may be narrower).
         growing = slow and trust_start and not within_chains and acceptance > 0
         if growing:
@@ -475,8 +487,8 @@ def run_pilot(
                 new_cov, n_independent = expanded_covariance(result.covariance, _all_since_warmup(history), reference)
             except np.linalg.LinAlgError:
                 new_cov, n_independent = result.covariance, 0
+            noise = noise_slowdown(dim, n_independent, noise_rng, grow_only=True)
         change = theory.direction_slowdown(new_cov, result.covariance)
-        noise = noise_slowdown(dim, n_independent, noise_rng)
         significant = change > noise
         # Once a probe has shown the start wrong, the draws win even when the change is within
         # noise; but not the draws of a stage that ran with scales a probe has just corrected.
@@ -502,8 +514,9 @@ def run_pilot(
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
         steady = not significant and not rescaled and good_acceptance and stage_index >= 1 and not slow
-        if not steady and extension and budget - spent < n_chains * window * 2 ** min(stage_index + 1, 6):
-            budget, extension = budget + extension, 0  # unsettled as the budget ends: take the extra allowance once
+        reshaped = reshaped or adopted
+        if reshaped and not steady and extension and budget - spent < n_chains * window * 2 ** min(stage_index + 1, 6):
+            budget, extension = budget + extension, 0  # still changing as the budget ends: take the extra allowance once
         settled = settled + 1 if steady else 0
         stage_index += 1
         if on_stage is not None:
