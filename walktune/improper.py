@@ -23,7 +23,7 @@ log-density falls far from the centre; so the check is
    by ``(nu + d) log 100`` per 100-fold step.
 
 The job then stops with a one-line error naming the parameters that move along
-that direction (those with at least half their variance along it) and saying
+that direction (at least a tenth as far as the one moving most) and saying
 what to add, as for a flat parameter or a runaway mode search: an improper
 posterior has no mean or spread to report, so a finding beside numbers would
 invite using the numbers.
@@ -43,8 +43,9 @@ GROWTH_TRIGGER = 100.0
 RAY_DISTANCES = (1.0, 1e2, 1e4, 1e6)
 #: Evaluations of the profile's search at each distance, per parameter searched over.
 PROFILE_EVALUATIONS_PER_PARAMETER = 20
-#: A parameter is named when at least this share of its variance lies along the runaway direction.
-NAMED_SHARE = 0.5
+#: A parameter is named when its move along the flat direction (in its own sd at the start) is at
+#: least this share of the largest move.
+NAMED_SHARE = 0.1
 
 
 @dataclass(frozen=True)
@@ -56,11 +57,11 @@ class SpreadRunaway:
     growth : float
         Variance growth along the direction, ``w^T C w / w^T C0 w``.
     step : ndarray of shape (d,)
-        The 1-sd move ``delta`` along it.
+        The direction found flat: the 1-sd move ``delta`` plus the profile's offset across it.
     log_density : ndarray of shape (2, len(RAY_DISTANCES))
-        At ``centre +/- k delta``, plus side first.
+        The profile log-density at ``RAY_DISTANCES`` on each side, plus side first.
     share : ndarray of shape (d,)
-        Each parameter's share of variance along the direction, ``delta_i^2 / C_ii``.
+        Each parameter's move along ``step`` in units of its sd at the start, over the largest such move.
     side : int
         +1 or -1, the side on which the log-density stays flat.
     """
@@ -93,11 +94,13 @@ def _complement(step: np.ndarray, chol: np.ndarray) -> np.ndarray:
     return chol @ basis
 
 
-def _profile(evaluate, centre: np.ndarray, step: np.ndarray, across: np.ndarray, distances, budget: int) -> np.ndarray:
+def _profile(evaluate, centre: np.ndarray, step: np.ndarray, across: np.ndarray, distances,
+             budget: int) -> tuple[np.ndarray, np.ndarray]:
     """Largest log-density at ``centre + t (step + across z)`` over ``z``, for each ``t`` in ``distances``.
 
     L-BFGS-B from the previous distance's optimum, at most ``budget`` evaluations
     each: a ray that misses a flat ridge by a small angle finds it again.
+    Returns the values and the direction ``step + across z`` found at the last distance.
     """
     def negative(z, t):
         # The offset across is per unit distance: a ridge that leaves the ray at an angle is at the same z at
@@ -113,7 +116,7 @@ def _profile(evaluate, centre: np.ndarray, step: np.ndarray, across: np.ndarray,
         found = optimize.minimize(negative, z, args=(t,), method="L-BFGS-B", options={"maxfun": budget})
         z = found.x
         values.append(-float(found.fun))
-    return np.array(values)
+    return np.array(values), step + across @ z
 
 
 def find_spread_runaway(evaluate, centre: np.ndarray, start_covariance: np.ndarray,
@@ -140,12 +143,15 @@ def find_spread_runaway(evaluate, centre: np.ndarray, start_covariance: np.ndarr
     across = _complement(step, chol)
     budget = PROFILE_EVALUATIONS_PER_PARAMETER * (across.shape[1] + 1)
     with np.errstate(all="ignore"):
-        values = np.array([_profile(evaluate, centre, side * step, across, RAY_DISTANCES, budget) for side in (1, -1)])
-    sides = [side for side, row in zip((1, -1), values) if _flat_side(row)]
-    if not sides:
+        rays = [_profile(evaluate, centre, side * step, across, RAY_DISTANCES, budget) for side in (1, -1)]
+    flat = [k for k, (values, _) in enumerate(rays) if _flat_side(values)]
+    if not flat:
         return None
-    share = step**2 / np.diag(covariance)
-    return SpreadRunaway(growth, step, values, share, sides[0])
+    values, direction = rays[flat[0]]
+    # Each parameter's move along the flat direction, in units of its spread at the start.
+    moves = np.abs(direction) / np.sqrt(np.diag(start_covariance))
+    return SpreadRunaway(growth, direction, np.array([rays[0][0], rays[1][0]]), moves / moves.max(),
+                         1 if flat[0] == 0 else -1)
 
 
 def runaway_message(found: SpreadRunaway, names: list) -> str:
