@@ -31,11 +31,12 @@ whenever ``not-converged`` or ``pilot-unsettled`` is raised.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
 from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS
+from .theory import optimal_scale, predicted_parameter_iact
 
 SEVERITIES = ("info", "warn", "critical")
 
@@ -238,6 +239,28 @@ def acceptance_mismatch_findings(expected: float, row, factor: float = 1.5) -> l
     ]
 
 
+def curved_ridge_measured(findings: list, row, proposal: np.ndarray, covariance: np.ndarray) -> list:
+    """``findings`` with the measured slowness added to an unstraightened ``curved-ridge``.
+
+    The tuned run's largest IACT (``row.iact_max``) beside the diffusion-limit
+    prediction for a Gaussian posterior of ``covariance`` under ``proposal``
+    (:func:`walktune.theory.predicted_parameter_iact`): how much slower the bend
+    made the same proposal.
+    """
+    out = []
+    for finding in findings:
+        if finding.kind == "curved-ridge" and not finding.evidence.get("straightened", True) \
+                and np.isfinite(row.iact_max):
+            predicted = float(np.max(predicted_parameter_iact(proposal, covariance)))
+            finding = replace(finding, message=finding.message + (
+                f" Measured: the {row.proposal} run's slowest parameter has an autocorrelation time of "
+                f"{row.iact_max:.3g} steps, {row.iact_max / predicted:.3g}x the {predicted:.3g} predicted for a "
+                "Gaussian posterior with the pilot's covariance."),
+                evidence={**finding.evidence, "iact_measured": float(row.iact_max), "iact_gaussian": predicted})
+        out.append(finding)
+    return out
+
+
 def pilot_findings(converged: bool, pilot_evaluations: int) -> list:
     if converged:
         return []
@@ -307,7 +330,8 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     findings += checks.multimodal + checks.funnel + checks.boundary + checks.heavy_tails
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
                  for note in checks.undecided]
-    findings += coords.findings
+    tuned = (pilot.scale_factor * optimal_scale(posterior.dim)) ** 2 * pilot.covariance
+    findings += curved_ridge_measured(coords.findings, proof.tuned_row, tuned, pilot.covariance)
     findings += short_chain_findings(next(row for row in proof.rows if row.proposal == recommended), proof.steps)
     findings += pilot_findings(pilot.converged, pilot_evaluations)
     findings += failed_evaluation_findings(proof.runs)
