@@ -22,7 +22,10 @@ source is named):
 * ``imprecise-ess``: the recommended run's ESS rests on fewer than
   ``diagnostics.IACTS_FOR_PRECISE_ESS`` autocorrelation times over its chains, so
   its relative error is above ``diagnostics.IACT_RELATIVE_ERROR``.
-* ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
+* ``pilot-unsettled``: the pilot ended before the covariance and scale settled;
+  a warning when its last estimate rested on too few independent draws to
+  confirm a shape and some parameter's spread had grown 1.5-fold or more over
+  the start (the posterior may be wider still), else a note.
 
 ``not-converged`` and ``imprecise-ess`` are about the recommended run, the one
 the posterior table comes from; ``pilot_converged`` in advice.json is false
@@ -261,15 +264,40 @@ def curved_ridge_measured(findings: list, row, proposal: np.ndarray, covariance:
     return out
 
 
-def pilot_findings(converged: bool, pilot_evaluations: int) -> list:
-    if converged:
+def pilot_findings(pilot, pilot_evaluations: int, names: list, start_covariance: np.ndarray | None = None) -> list:
+    """``pilot-unsettled`` when the pilot's budget ended before it settled.
+
+    A warning when its last stage was slow (its estimate rested on too few
+    independent draws to confirm a shape) and some parameter's spread grew
+    1.5-fold or more over the start during the pilot: the posterior may be
+    wider still, and the proposals too narrow. Otherwise a note.
+    """
+    if pilot.converged:
         return []
+    last = pilot.stages[-1] if pilot.stages else None
+    grew = []
+    if start_covariance is not None and last is not None and last.slow:
+        ratio = np.sqrt(np.diag(pilot.covariance) / np.diag(start_covariance))
+        grew = [(names[i], float(ratio[i])) for i in np.argsort(-ratio) if ratio[i] >= 1.5]
+    if not grew:
+        return [
+            Finding(
+                "pilot-unsettled", "info", [],
+                "the pilot's covariance was still changing when its budget ran out; the advice may improve "
+                "with a larger budget.",
+                {"pilot_evaluations": pilot_evaluations},
+            )
+        ]
     return [
         Finding(
-            "pilot-unsettled", "info", [],
-            "the pilot's covariance was still changing when its budget ran out; the advice may improve "
-            "with a larger budget.",
-            {"pilot_evaluations": pilot_evaluations},
+            "pilot-unsettled", "warn", [name for name, _ in grew],
+            f"the pilot did not settle: its last estimate rests on about {last.independent_draws} roughly "
+            "independent draws, too few to confirm the covariance, and its spread grew during the pilot (the sd of "
+            + ", ".join(f"{name} {r:.2g}-fold" for name, r in grew) + " over the start): the posterior may be "
+            "wider still, and proposals built from the pilot too narrow and slow. A larger budget (--budget) "
+            "gives the pilot more stages.",
+            {"pilot_evaluations": pilot_evaluations, "independent_draws": last.independent_draws,
+             "sd_growth": dict(grew)},
         )
     ]
 
@@ -333,7 +361,8 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     tuned = (pilot.scale_factor * optimal_scale(posterior.dim)) ** 2 * pilot.covariance
     findings += curved_ridge_measured(coords.findings, proof.tuned_row, tuned, pilot.covariance)
     findings += short_chain_findings(next(row for row in proof.rows if row.proposal == recommended), proof.steps)
-    findings += pilot_findings(pilot.converged, pilot_evaluations)
+    first = pilot.stages[0].proposal_cov / optimal_scale(posterior.dim) ** 2 if pilot.stages else None
+    findings += pilot_findings(pilot, pilot_evaluations, names, first)
     findings += failed_evaluation_findings(proof.runs)
     findings += timeout_findings(posterior.counted.timeouts, posterior.time_limit)
     return findings

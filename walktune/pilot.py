@@ -113,6 +113,9 @@ class PilotStage:
     probe_acceptance: np.ndarray | None = None
     component_scaling: np.ndarray | None = None
     coordinates: str = "parameters"
+    #: Roughly independent draws the stage's estimate rests on, and whether that was too few to settle on.
+    independent_draws: int = 0
+    slow: bool = False
 
 
 @dataclass
@@ -478,7 +481,7 @@ def run_pilot(
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
         acceptance = chains.acceptance_rate
         noise = noise_slowdown(dim, n_independent, noise_rng)
-        slow = noise > SETTLED_NOISE
+        slow, stage_draws = noise > SETTLED_NOISE, n_independent
         # Grow only a shape no probe has faulted: once one has, the draws win as they are (they may be narrower).
         growing = slow and trust_start and not within_chains and acceptance > 0
         if growing:
@@ -495,7 +498,8 @@ def run_pilot(
         adopted = acceptance > 0 and (significant or not (trust_start or rescaled))
         if adopted:
             result.covariance = new_cov
-        stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted)
+        stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted,
+                           independent_draws=int(stage_draws), slow=bool(slow))
         # Probe only when a stage can follow to use (and test) a rescaled proposal.
         rescaled = False
         if probe and budget - spent >= probe_cost + n_chains * window:
