@@ -40,17 +40,17 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
 A stage counts towards settling only when its estimate rests on enough roughly
 independent draws that its noise level is at most :data:`SETTLED_NOISE`: with
 fewer, "the change is within noise" says little (the noise level is then a
-several-fold slow-down).
-Such a slow stage means the chains have not crossed the posterior, and the
-draws it saw so far may be narrower than the posterior but not, beyond noise,
-wider. So while the stages are slow, and no probe has faulted the start, the
-pilot grows the covariance from all the draws so far, as adaptive Metropolis does (Haario, Saksman
-and Tamminen 2001), keeping only the directions in which the draws are wider
-than ``C`` (:func:`expanded_covariance`), adopted when the growth is beyond
-noise; and it holds the global factor, since the diffusion-limit relation that
-steers it assumes the shape is right. A pilot whose draws have changed its
-covariance and that has not settled when its budget ends takes the extension
-once, as a poor start does (a start whose shape the draws confirm does not).
+several-fold slow-down). The chains of such a slow stage may not have crossed
+the posterior yet: their draws can be narrower than the posterior but not,
+beyond noise, wider. So while the stages are slow, and no probe has faulted the
+start, the pilot grows the covariance from all the draws so far, as adaptive
+Metropolis does (Haario, Saksman and Tamminen 2001), keeping only the
+directions in which the draws are wider than ``C``
+(:func:`expanded_covariance`), adopted when the growth is beyond noise; and it
+holds the global factor, since the diffusion-limit relation that steers it
+assumes the shape is right. A pilot whose draws have changed its covariance and
+that has not settled when its budget ends takes the extension once, as a poor
+start does (a start whose shape the draws confirm does not).
 
 Adaptation happens only between stages; nothing measured after the pilot comes
 from an adapting chain.
