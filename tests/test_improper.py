@@ -179,6 +179,10 @@ def test_ray_check_finds_a_flat_ridge_and_not_a_wide_proper_one():
     # (10^6 x 100)^2 / (2 x 2 x 10^6) over the ray, far more than log 10^6.
     proper = _Batch(lambda x: -0.5 * (x[0] - x[1]) ** 2 - 0.5 * (x[0] + x[1]) ** 2 / (2 * 1e6))
     assert improper.find_spread_runaway(proper, np.array([3.0, 3.0]), np.eye(2), end) is None
+    # A bound closes a side: the same proper density on a + b > 0 only (-inf beyond it) is not flat there.
+    half = _Batch(lambda x: -0.5 * (x[0] - x[1]) ** 2 - 0.5 * (x[0] + x[1]) ** 2 / (2 * 1e6) if x[0] + x[1] > 0
+                  else -np.inf)
+    assert improper.find_spread_runaway(half, np.array([3.0, 3.0]), np.eye(2), end) is None
     # No check below the trigger: a 50-fold growth costs no evaluation.
     quiet = _Batch(lambda x: 0.0)
     assert improper.find_spread_runaway(quiet, np.zeros(2), np.eye(2), 50 * np.eye(2)) is None and quiet.points == 0

@@ -111,11 +111,13 @@ def _profile(evaluate, centre: np.ndarray, step: np.ndarray, across: np.ndarray,
     z, values = np.zeros(across.shape[1]), []
     for t in distances:
         if across.shape[1] == 0:
-            values.append(-negative(z, t))
+            value = negative(z, t)
+            values.append(-value if value < 1e300 else -np.inf)
             continue
         found = optimize.minimize(negative, z, args=(t,), method="L-BFGS-B", options={"maxfun": budget})
         z = found.x
-        values.append(-float(found.fun))
+        # Nowhere finite across the ray at this distance (outside a bound): the side is closed.
+        values.append(-float(found.fun) if found.fun < 1e300 else -np.inf)
     return np.array(values), step + across @ z
 
 
