@@ -280,11 +280,13 @@ def pilot_findings(pilot, pilot_evaluations: int, names: list, start_covariance:
         ratio = np.sqrt(np.diag(pilot.covariance) / np.diag(start_covariance))
         grew = [(names[i], float(ratio[i])) for i in np.argsort(-ratio) if ratio[i] >= 1.5]
     if not grew:
+        why = (f"its last estimate rested on about {last.independent_draws} roughly independent draws, too few "
+               "to confirm the covariance" if last is not None and last.slow else
+               "the pilot's covariance was still changing")
         return [
             Finding(
                 "pilot-unsettled", "info", [],
-                "the pilot's covariance was still changing when its budget ran out; the advice may improve "
-                "with a larger budget.",
+                f"{why} when the pilot's budget ran out; the advice may improve with a larger budget.",
                 {"pilot_evaluations": pilot_evaluations},
             )
         ]
