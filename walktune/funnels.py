@@ -454,7 +454,7 @@ def _funnel_finding(j, factor, affected, names, bounds, flat, values, confirmati
     if not confirmation["chains_fill_fifths"]:
         settle = (f"the chains sit in different places along {names[j]} (fewer than {MIN_CHAINS_PER_FIFTH} fill each "
                   "fifth of its draws), so the draws compare chains, not regions; runs that mix (or a run of the "
-                  "non-centred form beside this one) would settle it")
+                  f"non-centred form beside this one) would settle it. {rewrite.rstrip('.')}")
     elif not np.isfinite(needed):
         settle = (f"the change lies outside the range of the draws of {names[j]}, so more draws of this posterior "
                   "will not settle it; a run of the non-centred form beside this one would")

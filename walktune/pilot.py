@@ -46,9 +46,10 @@ beyond noise, wider. So while the stages are slow, and no probe has faulted the
 start, the pilot grows the covariance from all the draws so far, as adaptive
 Metropolis does (Haario, Saksman and Tamminen 2001), keeping only the
 directions in which the draws are wider than ``C``
-(:func:`expanded_covariance`), adopted when the growth is beyond noise; and it
-holds the global factor, since the diffusion-limit relation that steers it
-assumes the shape is right. A pilot whose draws have changed its covariance and
+(:func:`expanded_covariance`), adopted when the growth is beyond noise. (Holding
+the global factor meanwhile, as adaptive Metropolis does, was tried: it kept
+the chains of a centred hierarchical model further from its funnel's neck, and
+the funnel went unreported.) A pilot whose draws have changed its covariance and
 that has not settled when its budget ends takes the extension once, as a poor
 start does (a start whose shape the draws confirm does not).
 
@@ -512,9 +513,7 @@ def run_pilot(
             result.covariance = result.covariance / 10.0  # nothing moved and no probe said why: much smaller steps
         result.stages.append(stage)
         # A new shape moves the optimal factor; adjust the factor for the stage just seen.
-        # While slow stages grow the shape, hold the factor (as adaptive Metropolis does) unless nearly nothing moves.
-        if not (growing and acceptance >= 0.1 * target):
-            factor = _scale_step(factor, acceptance, target)
+        factor = _scale_step(factor, acceptance, target)
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
         steady = not significant and not rescaled and good_acceptance and stage_index >= 1 and not slow
