@@ -149,7 +149,7 @@ def find_spread_runaway(evaluate, centre: np.ndarray, start_covariance: np.ndarr
     flat = [k for k, (values, _) in enumerate(rays) if _flat_side(values)]
     if not flat:
         return None
-    values, direction = rays[flat[0]]
+    direction = rays[flat[0]][1]
     # Each parameter's move along the flat direction, in units of its spread at the start.
     moves = np.abs(direction) / np.sqrt(np.diag(start_covariance))
     return SpreadRunaway(growth, direction, np.array([rays[0][0], rays[1][0]]), moves / moves.max(),
@@ -161,7 +161,7 @@ def runaway_message(found: SpreadRunaway, names: list) -> str:
     named = [names[i] for i in np.flatnonzero(found.share >= NAMED_SHARE)] or [names[int(np.argmax(found.share))]]
     row = found.log_density[0 if found.side > 0 else 1]
     return (
-        f"the posterior is not proper: the pilot's spread kept growing ({found.growth:.3g}-fold in variance) along "
+        f"the posterior is not proper: the pilot's spread grew {found.growth:.3g}-fold (in variance) along "
         f"a direction that moves {', '.join(named)}, and the log-density stays flat along it (it changes by "
         f"{row[-1] - row[0]:+.3g} from 1 to a million times the pilot's spread), so the chains diffuse without "
         f"limit; add a prior for {', '.join(named)} (PRIOR or LOG_PRIOR in the model file, prior= in Python) "
