@@ -236,13 +236,21 @@ def twisted_gaussian(theta, b=0.1):
 
 
 @pytest.mark.parametrize("seed", [1, 2])
-def test_twisted_gaussian_gets_a_curved_ridge_that_stays_slow(seed):
+def test_twisted_gaussian_gets_a_curved_ridge_that_mixes_slowly(seed):
     result = walktune.tune(twisted_gaussian, np.zeros(2), seed=seed, budget=40_000)
     ridge = [f for f in result.findings if f.kind == "curved-ridge"]
     assert ridge, [f.kind for f in result.findings]
     # Unbounded parameters: no transform can straighten the bend.
     assert not ridge[0].evidence["straightened"]
-    assert "stay slow" in ridge[0].message
+    # A Gaussian proposal with the exact covariance does mix on it (docs/benchmarks.md, twisted_ridge):
+    # the finding says slow, not hopeless, and names the bend's partner (x2 depends on x1 through x1^2,
+    # with no linear correlation: Haario et al. 1999).
+    assert "still mixes, but slowly along the bend" in ridge[0].message
+    assert "theta[1] ~ theta[0]" in ridge[0].message
+    # "Slowly" as measured: the tuned run's largest IACT above the Gaussian prediction for the same proposal.
+    evidence = ridge[0].evidence
+    assert evidence["iact_measured"] > evidence["iact_gaussian"]
+    assert f"{evidence['iact_measured']:.3g} steps" in ridge[0].message
     assert "multimodal" not in {f.kind for f in result.findings}
 
 

@@ -26,7 +26,10 @@ source is named):
   had a reliable ESS and R-hat below 1.01 on every parameter; says what is
   missing and how many more evaluations would settle it (extrapolated from the
   run's measured IACT, :func:`walktune.recommend.evaluations_still_needed`).
-* ``pilot-unsettled``: the pilot ended before the covariance and scale settled.
+* ``pilot-unsettled``: the pilot ended before the covariance and scale settled;
+  a warning when its last estimate rested on too few independent draws to
+  confirm a shape and some parameter's spread had grown 1.5-fold or more over
+  the start (the posterior may be wider still), else a note.
 
 ``not-converged`` and ``imprecise-ess`` are about the recommended run, the one
 the posterior table comes from; ``pilot_converged`` in advice.json is false
@@ -35,11 +38,12 @@ whenever ``not-converged`` or ``pilot-unsettled`` is raised.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
 from .diagnostics import IACT_RELATIVE_ERROR, IACTS_FOR_PRECISE_ESS
+from .theory import optimal_scale, predicted_parameter_iact
 
 SEVERITIES = ("info", "warn", "critical")
 
@@ -293,15 +297,64 @@ def acceptance_mismatch_findings(expected: float, row, factor: float = 1.5) -> l
     ]
 
 
-def pilot_findings(converged: bool, pilot_evaluations: int) -> list:
-    if converged:
+def curved_ridge_measured(findings: list, row, proposal: np.ndarray, covariance: np.ndarray) -> list:
+    """``findings`` with the measured slowness added to an unstraightened ``curved-ridge``.
+
+    The tuned run's largest IACT (``row.iact_max``) beside the diffusion-limit
+    prediction for a Gaussian posterior of ``covariance`` under ``proposal``
+    (:func:`walktune.theory.predicted_parameter_iact`): how much slower the bend
+    made the same proposal.
+    """
+    out = []
+    for finding in findings:
+        if finding.kind == "curved-ridge" and not finding.evidence.get("straightened", True) \
+                and np.isfinite(row.iact_max):
+            predicted = float(np.max(predicted_parameter_iact(proposal, covariance)))
+            finding = replace(finding, message=finding.message + (
+                f" Measured: the {row.proposal} run's slowest parameter has an autocorrelation time of "
+                f"{row.iact_max:.3g} steps, {row.iact_max / predicted:.3g}x the {predicted:.3g} predicted for a "
+                "Gaussian posterior with the pilot's covariance."),
+                evidence={**finding.evidence, "iact_measured": float(row.iact_max), "iact_gaussian": predicted})
+        out.append(finding)
+    return out
+
+
+def pilot_findings(pilot, pilot_evaluations: int, names: list, start_covariance: np.ndarray | None = None) -> list:
+    """``pilot-unsettled`` when the pilot's budget ended before it settled.
+
+    A warning when its last stage was slow (its estimate rested on too few
+    independent draws to confirm a shape) and some parameter's spread grew
+    1.5-fold or more over the start during the pilot: the posterior may be
+    wider still, and the proposals too narrow. Otherwise a note.
+    """
+    if pilot.converged:
         return []
+    last = pilot.stages[-1] if pilot.stages else None
+    grew = []
+    if start_covariance is not None and last is not None and last.slow:
+        ratio = np.sqrt(np.diag(pilot.covariance) / np.diag(start_covariance))
+        grew = [(names[i], float(ratio[i])) for i in np.argsort(-ratio) if ratio[i] >= 1.5]
+    if not grew:
+        why = (f"its last estimate rested on about {last.independent_draws} roughly independent draws, too few "
+               "to confirm the covariance" if last is not None and last.slow else
+               "the pilot's covariance was still changing")
+        return [
+            Finding(
+                "pilot-unsettled", "info", [],
+                f"{why} when the pilot's budget ran out; the advice may improve with a larger budget.",
+                {"pilot_evaluations": pilot_evaluations},
+            )
+        ]
     return [
         Finding(
-            "pilot-unsettled", "info", [],
-            "the pilot's covariance was still changing when its budget ran out; the advice may improve "
-            "with a larger budget.",
-            {"pilot_evaluations": pilot_evaluations},
+            "pilot-unsettled", "warn", [name for name, _ in grew],
+            f"the pilot did not settle: its last estimate rests on about {last.independent_draws} roughly "
+            "independent draws, too few to confirm the covariance, and its spread grew during the pilot (the sd of "
+            + ", ".join(f"{name} {r:.2g}-fold" for name, r in grew) + " over the start): the posterior may be "
+            "wider still, and proposals built from the pilot too narrow and slow. A larger budget (--budget) "
+            "gives the pilot more stages.",
+            {"pilot_evaluations": pilot_evaluations, "independent_draws": last.independent_draws,
+             "sd_growth": dict(grew)},
         )
     ]
 
@@ -366,11 +419,13 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     findings += checks.boundary + checks.heavy_tails
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
                  for note in checks.undecided]
-    findings += coords.findings
+    tuned = (pilot.scale_factor * optimal_scale(posterior.dim)) ** 2 * pilot.covariance
+    findings += curved_ridge_measured(coords.findings, proof.tuned_row, tuned, pilot.covariance)
     chosen = next(row for row in proof.rows if row.proposal == recommended)
     findings += short_chain_findings(chosen, proof.steps[recommended])
     findings += proof_length_findings(chosen, proof)
-    findings += pilot_findings(pilot.converged, pilot_evaluations)
+    first = pilot.stages[0].proposal_cov / optimal_scale(posterior.dim) ** 2 if pilot.stages else None
+    findings += pilot_findings(pilot, pilot_evaluations, names, first)
     findings += failed_evaluation_findings(proof.runs)
     findings += timeout_findings(posterior.counted.timeouts, posterior.time_limit)
     return findings

@@ -37,6 +37,22 @@ Each stage is an ordinary random-walk Metropolis run with a fixed proposal
   estimate from the draws of a stage run at corrected scales is adopted (the
   draws win).
 
+A stage counts towards settling only when its estimate rests on enough roughly
+independent draws that its noise level is at most :data:`SETTLED_NOISE`: with
+fewer, "the change is within noise" says little (the noise level is then a
+several-fold slow-down). The chains of such a slow stage may not have crossed
+the posterior yet: their draws can be narrower than the posterior but not,
+beyond noise, wider. So while the stages are slow, and no probe has faulted the
+start, the pilot grows the covariance from all the draws so far, as adaptive
+Metropolis does (Haario, Saksman and Tamminen 2001), keeping only the
+directions in which the draws are wider than ``C``
+(:func:`expanded_covariance`), adopted when the growth is beyond noise. (Holding
+the global factor meanwhile, as adaptive Metropolis does, was tried: it kept
+the chains of a centred hierarchical model further from its funnel's neck, and
+the funnel went unreported.) A pilot whose draws have changed its covariance and
+that has not settled when its budget ends takes the extension once, as a poor
+start does (a start whose shape the draws confirm does not).
+
 Adaptation happens only between stages; nothing measured after the pilot comes
 from an adapting chain.
 
@@ -76,6 +92,11 @@ PROBE_FALSE_ALARM = 1e-4
 RIGHT_SCALE_ACCEPTANCE = 2.0 / np.pi * np.arctan(2.0 / 2.4)
 #: Largest rescaling one probe applies (an all-accepted probe says only "much wider").
 PROBE_LIMIT = 10.0
+#: A stage counts towards settling only when the noise level of its estimate (:func:`noise_slowdown`, the
+#: 99% quantile of the slow-down an estimate from as many independent draws shows by chance) is at most
+#: this: "the change is within noise" then means "within a 2-fold slow-down". From 16 independent draws
+#: the level is below 2 in every dimension (1.8 at d = 3, 1.5 at d = 20); from 4 draws it is 2.2-9.7.
+SETTLED_NOISE = 2.0
 
 
 @dataclass
@@ -93,6 +114,9 @@ class PilotStage:
     probe_acceptance: np.ndarray | None = None
     component_scaling: np.ndarray | None = None
     coordinates: str = "parameters"
+    #: Roughly independent draws the stage's estimate rests on, and whether that was too few to settle on.
+    independent_draws: int = 0
+    slow: bool = False
 
 
 @dataclass
@@ -176,7 +200,7 @@ NOISE_REPLICATES = 399
 
 
 def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates: int = NOISE_REPLICATES,
-                   quantile: float = 0.99) -> float:
+                   quantile: float = 0.99, grow_only: bool = False) -> float:
     """How far a shrinkage estimate from ``n_draws`` independent draws strays by chance.
 
     The ``quantile`` of ``direction_slowdown(estimate, truth)`` when the truth
@@ -189,6 +213,9 @@ def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates:
     (numpy's "weibull" method), whose coverage has mean ``quantile`` and sd
     ``sqrt(quantile (1 - quantile) / (replicates + 2))`` (the Beta distribution of
     uniform order statistics): 0.990 +/- 0.005 with the defaults.
+
+    With ``grow_only`` the estimate's eigenvalues below 1 are raised to 1
+    first, as :func:`expanded_covariance` does: the noise of a grown shape.
     """
     if n_draws < 2:
         return np.inf
@@ -197,6 +224,9 @@ def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates:
     for _ in range(replicates):
         white = rng.standard_normal((n_draws, dim))
         estimate = _lw_estimate(white - white.mean(axis=0))
+        if grow_only:
+            eigenvalues, vectors = np.linalg.eigh(estimate)
+            estimate = (vectors * np.maximum(eigenvalues, 1.0)) @ vectors.T
         values.append(theory.direction_slowdown(estimate, identity))
     return float(np.quantile(values, quantile, method="weibull"))
 
@@ -298,6 +328,34 @@ def probe_components(evaluate, states: np.ndarray, log_density: np.ndarray, cova
                           sweeps * n_chains)
 
 
+def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndarray, int]:
+    """``C`` grown where ``draws`` are wider than it, and kept where they are narrower.
+
+    The shrinkage estimate ``S`` of ``draws`` (:func:`shrunk_covariance`, shrunk
+    towards ``reference``) is whitened by ``C``, ``W = L^{-1} S L^{-T}``
+    (``C = L L^T``); eigenvalues of ``W`` below 1 are raised to 1 and the
+    result mapped back, so the new matrix is at least ``C`` in every direction
+    (Loewner order). Returns it and the number of roughly independent draws.
+
+    Parameters
+    ----------
+    covariance, reference : ndarray of shape (d, d)
+    draws : ndarray of shape (chains, n, d)
+    """
+    estimate, _, n_independent = shrunk_covariance(draws, reference)
+    chol = np.linalg.cholesky(covariance)
+    white = np.linalg.solve(chol, np.linalg.solve(chol, estimate).T)
+    values, vectors = np.linalg.eigh(0.5 * (white + white.T))
+    grown = chol @ ((vectors * np.maximum(values, 1.0)) @ vectors.T) @ chol.T
+    return 0.5 * (grown + grown.T), n_independent
+
+
+def _all_since_warmup(history: list) -> np.ndarray:
+    """Every stage's draws, less the first half of the first stage (warm-up), shape (chains, n, d)."""
+    draws = np.concatenate(history, axis=1)
+    return draws[:, history[0].shape[1] // 2 :]
+
+
 def _scale_step(factor: float, acceptance: float, target: float) -> float:
     """New global factor so that the diffusion-limit acceptance hits ``target``."""
     acceptance = min(max(acceptance, 0.01), 0.95)
@@ -374,8 +432,10 @@ def run_pilot(
         Probe each parameter's scale after a stage (:func:`probe_components`)
         until a probe finds every parameter in range.
     extension : int, default=0
-        Evaluations added to ``budget`` the first time a probe rescales a
-        parameter (the start was poor, and the pilot needs more stages).
+        Evaluations added to ``budget`` once: the first time a probe rescales a
+        parameter (the start was poor, and the pilot needs more stages), or when
+        the draws have changed the covariance, the pilot has not settled, and
+        the budget would not hold the next stage.
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -394,6 +454,7 @@ def run_pilot(
     settled = 0
     rescaled = False
     trust_start = True
+    reshaped = False  # a stage's draws have changed the covariance
     while True:
         steps = window * 2 ** min(stage_index, 6)
         remaining = budget - spent
@@ -419,16 +480,27 @@ def run_pilot(
             np.linalg.cholesky(new_cov)
         except np.linalg.LinAlgError:
             new_cov, shrinkage, n_independent = result.covariance, 1.0, 0
-        change = theory.direction_slowdown(new_cov, result.covariance)
-        noise = noise_slowdown(dim, n_independent, noise_rng)
         acceptance = chains.acceptance_rate
+        noise = noise_slowdown(dim, n_independent, noise_rng)
+        slow, stage_draws = noise > SETTLED_NOISE, n_independent
+        # Grow only a shape no probe has faulted: once one has, the draws win as they are (they may be narrower).
+        growing = slow and trust_start and not within_chains and acceptance > 0
+        if growing:
+            # Too few independent draws to confirm a shape: grow it from every draw so far.
+            try:
+                new_cov, n_independent = expanded_covariance(result.covariance, _all_since_warmup(history), reference)
+            except np.linalg.LinAlgError:
+                new_cov, n_independent = result.covariance, 0
+            noise = noise_slowdown(dim, n_independent, noise_rng, grow_only=True)
+        change = theory.direction_slowdown(new_cov, result.covariance)
         significant = change > noise
         # Once a probe has shown the start wrong, the draws win even when the change is within
         # noise; but not the draws of a stage that ran with scales a probe has just corrected.
         adopted = acceptance > 0 and (significant or not (trust_start or rescaled))
         if adopted:
             result.covariance = new_cov
-        stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted)
+        stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted,
+                           independent_draws=int(stage_draws), slow=bool(slow))
         # Probe only when a stage can follow to use (and test) a rescaled proposal.
         rescaled = False
         if probe and budget - spent >= probe_cost + n_chains * window:
@@ -444,7 +516,10 @@ def run_pilot(
         factor = _scale_step(factor, acceptance, target)
         result.draws = pooled_draws
         good_acceptance = 0.6 * target <= acceptance <= 1.6 * target
-        steady = not significant and not rescaled and good_acceptance and stage_index >= 1
+        steady = not significant and not rescaled and good_acceptance and stage_index >= 1 and not slow
+        reshaped = reshaped or adopted
+        if reshaped and not steady and extension and budget - spent < n_chains * window * 2 ** min(stage_index + 1, 6):
+            budget, extension = budget + extension, 0  # still changing as the budget ends: take the extra allowance once
         settled = settled + 1 if steady else 0
         stage_index += 1
         if on_stage is not None:

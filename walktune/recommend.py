@@ -45,6 +45,9 @@ from .diagnostics import IACTS_FOR_PRECISE_ESS, WINDOW_PER_IACT
 Z_RESOLVED = 2.0
 #: R-hat far above 1: together with half-chains no longer than one estimated IACT, chains that have not mixed at all.
 STUCK_RHAT = 2.0
+#: R-hat above which a run's chains disagree too much for its ESS to be compared with another run's
+#: (where the not-converged finding turns critical): the message then states no factor between such runs.
+DISAGREEING_RHAT = 1.1
 #: Predicted factors beyond this are printed as a bound: no measurement could tell them apart.
 LARGEST_SHOWN_FACTOR = 1e6
 #: A proof run is settled when its ESS is reliable and its R-hat is below this on every parameter
@@ -274,20 +277,40 @@ def speedup_text(speedup: float, kind: str) -> str:
     return prefix + format_factor(speedup)
 
 
+def _disagree(*rows) -> list:
+    """The rows whose chains disagree (R-hat above :data:`DISAGREEING_RHAT`, or none measured)."""
+    return [row for row in rows if row is not None and not row.max_rhat <= DISAGREEING_RHAT]
+
+
+def _disagreeing_text(rows: list) -> str:
+    worst = max(rows, key=lambda row: row.max_rhat if np.isfinite(row.max_rhat) else np.inf)
+    return (f"the chains of {', '.join(row.proposal for row in rows)} disagree (R-hat up to {worst.max_rhat:.3g}), "
+            "so no speed-up involving them is stated; run longer to compare them")
+
+
 def _message(chosen, close, baseline, contender, to_resolve) -> str:
+    # A speed-up between runs whose chains disagree compares numbers that do not measure speed yet.
+    unmixed = _disagree(chosen, baseline) if chosen is not baseline else []
     if chosen.proposal == "current":
         text = "Keep your current proposal: no option was measured faster beyond the measurement's error"
-    elif chosen is baseline:
+    elif chosen is baseline or unmixed:
         text = f"Use {chosen.proposal}: no option was measured faster beyond the measurement's error"
     else:
         text = (f"Use {chosen.proposal}: its ESS per evaluation was measured at "
                 f"{speedup_text(chosen.speedup, chosen.speedup_kind)} that of {baseline.proposal}")
+    if unmixed:
+        text += "; " + _disagreeing_text(unmixed)
     if contender is None:
         return text + "."
+    names = ", ".join(row.proposal for row in close)
+    if _disagree(chosen, contender):
+        extra = [row for row in _disagree(chosen, contender) if row not in unmixed]
+        return (text + f". Not resolved: {names} measured within the error of it"
+                + (f"; {_disagreeing_text(extra)}." if extra else "."))
     ratio = contender.ess_per_1000 / chosen.ess_per_1000
     settle = (f"; about {to_resolve:,} evaluations per run would settle it" if to_resolve
               else "; they are equally fast within 5%")
-    return (text + f". Not resolved: {', '.join(row.proposal for row in close)} measured within the error of it "
+    return (text + f". Not resolved: {names} measured within the error of it "
             f"({contender.proposal} at {format_factor(ratio)} of its efficiency){settle}.")
 
 

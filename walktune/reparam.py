@@ -519,10 +519,14 @@ def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, 
     involved = [i for i in range(len(names)) if before[i] > threshold]
     corr_before = np.corrcoef(draws.T)
     corr_after = np.corrcoef(u.T)
+    # The partner a parameter bends along: the other most correlated with it, linearly or through its square
+    # (a symmetric bend, as in the twisted Gaussian, has no linear correlation at all).
+    centred = draws - draws.mean(axis=0)
+    squares = np.corrcoef(draws.T, (centred**2).T)[: len(names), len(names):]
     pairs = []
     for i in involved:
         others = [j for j in range(len(names)) if j != i]
-        j = max(others, key=lambda k: abs(corr_before[i, k]))
+        j = max(others, key=lambda k: max(abs(corr_before[i, k]), abs(np.nan_to_num(squares[i, k]))))
         pairs.append((i, j))
     partners = sorted({k for pair in pairs for k in pair})
     chosen = ", ".join(f"{t.name}: {t.kind}" for t in reparam.transforms if t.kind != "identity") or "none"
@@ -540,7 +544,9 @@ def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, 
             f"the posterior bends: a quadratic predicts {', '.join(names[i] for i in involved)} from the others much "
             f"better than a straight line ({details}). Chosen transforms ({chosen}) "
             + ("straighten it: sample in the coordinates of sampling_map.json." if straightened else
-               "do not fully straighten it; a tuned Gaussian proposal will stay slow along the bend."),
+               "do not straighten it: a fixed Gaussian proposal still mixes, but slowly along the bend (its steps "
+               "must stay short across the ridge while the ridge is long), and its covariance must come from "
+               "draws that have reached the ends of the bend."),
             {"curvature_before": {names[i]: float(before[i]) for i in involved},
              "curvature_after": {names[i]: float(after[i]) for i in involved},
              "straightened": straightened},

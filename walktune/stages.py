@@ -31,9 +31,10 @@ from . import theory
 from .advice import Advice
 from .diagnostics import ChainMeasures, measure_chains
 from .engine import Chains
-from .errors import WalktuneError
+from .errors import TargetError, WalktuneError
 from .findings import Finding
 from .funnels import merge_probe, needs_curvature_probe
+from .improper import find_spread_runaway, runaway_message
 from .geometry import (
     MIN_DRAWS_TO_DECIDE,
     assign_draws,
@@ -322,7 +323,21 @@ def run_main_pilot(posterior: Posterior, start: StartingPoints, budget: Budget, 
         pilot = run_unconstrained_pilot(posterior.counted, start.unconstrained, available + budget.pilot_extension,
                                         _minimum_pilot(dim, budget.chains), seed, tracker, within)
     tracker("pilot", pilot.evaluations, pilot.evaluations)
+    _refuse_growing_spread(posterior, start, pilot)
     return pilot
+
+
+def _refuse_growing_spread(posterior: Posterior, start: StartingPoints, pilot: PilotResult) -> None:
+    """Stop with a one-line error when an unsettled pilot's spread grew along a direction where the density is flat.
+
+    :mod:`walktune.improper`; at most ``2 len(RAY_DISTANCES)`` evaluations, only after a large growth.
+    """
+    if pilot.converged:
+        return
+    centre = _pooled_draws(pilot, posterior.dim).mean(axis=0)
+    found = find_spread_runaway(posterior.counted, centre, start.initial_covariance, pilot.covariance)
+    if found is not None:
+        raise TargetError(runaway_message(found, posterior.names))
 
 
 # --------------------------------------------------------------------------- new coordinates
