@@ -70,13 +70,19 @@ def test_farm_model_exact_tau_and_its_funnel():
 
 def _farm_funnel(seed):
     start = np.r_[YBAR.mean(), 0.5, YBAR]
-    result = walktune.tune(farm_log_density, start, names=FARM_NAMES, bounds={"tau": (0.0, None)}, seed=seed,
-                           vectorized=True)
-    return [f for f in result.findings if f.kind == "varying-scale" and f.severity != "info"]
+    return walktune.tune(farm_log_density, start, names=FARM_NAMES, bounds={"tau": (0.0, None)}, seed=seed,
+                         vectorized=True)
 
 
-def _assert_tau_funnel(alarms):
-    assert alarms, "no varying-scale finding"
+def _assert_tau_funnel(result):
+    """A funnel finding along tau with this model's rewrite: confirmed in the draws, or, when the proof's budget ran
+    out before its run settled (a proof-unsettled finding), suspected from the curvature with what would settle it."""
+    scale = [f for f in result.findings if f.kind == "varying-scale"]
+    alarms = [f for f in scale if f.severity != "info"]
+    if not alarms:
+        assert "proof-unsettled" in {f.kind for f in result.findings}, [f.message for f in scale]
+        assert scale and scale[0].evidence["status"] == "suspected" and "To settle it" in scale[0].message, scale
+        alarms = scale
     first = alarms[0]
     assert first.parameters[0] == "tau", first.message
     assert first.evidence["funnel_structure"] and first.evidence["fix"] == "non-centred"

@@ -21,7 +21,8 @@ source is named):
   and the measured figure is the one to trust.
 * ``imprecise-ess``: the recommended run's ESS rests on fewer than
   ``diagnostics.IACTS_FOR_PRECISE_ESS`` autocorrelation times over its chains, so
-  its relative error is above ``diagnostics.IACT_RELATIVE_ERROR``.
+  its relative error is above ``diagnostics.IACT_RELATIVE_ERROR``; not raised beside
+  ``proof-unsettled``, which covers it with one count.
 * ``proof-unsettled``: the proof's budget ran out before the recommended run
   had a reliable ESS and R-hat below 1.01 on every parameter; says what is
   missing and how many more evaluations would settle it (extrapolated from the
@@ -422,8 +423,8 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     tuned = (pilot.scale_factor * optimal_scale(posterior.dim)) ** 2 * pilot.covariance
     findings += curved_ridge_measured(coords.findings, proof.tuned_row, tuned, pilot.covariance)
     chosen = next(row for row in proof.rows if row.proposal == recommended)
-    findings += short_chain_findings(chosen, proof.steps[recommended])
-    findings += proof_length_findings(chosen, proof)
+    # proof-unsettled already says what is missing, with one count that settles both ESS and R-hat.
+    findings += proof_length_findings(chosen, proof) or short_chain_findings(chosen, proof.steps[recommended])
     first = pilot.stages[0].proposal_cov / optimal_scale(posterior.dim) ** 2 if pilot.stages else None
     findings += pilot_findings(pilot, pilot_evaluations, names, first)
     findings += failed_evaluation_findings(proof.runs)
