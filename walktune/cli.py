@@ -409,6 +409,7 @@ def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask,
                 f"resuming from {out / FILE_NAME}: replaying {checkpoint.resumed_evaluations} recorded evaluations "
                 "without calling the model, then going on", highlight=False,
             )
+        _say_budget(arguments, options["chains"], quiet or as_json)
         with _stop_on_signals(checkpoint), StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
             return tune(None if evaluator is not None else spec.function, chains=options["chains"],
                         evaluator=evaluator, checkpoint=checkpoint, progress=progress, **arguments)
@@ -417,6 +418,21 @@ def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask,
     finally:
         if evaluator is not None and hasattr(evaluator, "close"):
             evaluator.close()
+
+
+def _say_budget(arguments: dict, chains: int, quiet: bool) -> None:
+    """Say what the job will spend before the progress bar starts (on stderr); a budget too small for
+    trustworthy figures is said even with --quiet or --json. A budget below the minimum is left to tune()'s error."""
+    from .stages import Budget, budget_statement, minimum_budget
+
+    dim, budget = len(arguments["start"]), arguments["budget"]
+    if budget is not None and budget < minimum_budget(dim, chains):
+        return
+    statement = budget_statement(Budget.plan(budget, dim, chains))
+    if statement.trustworthy and quiet:
+        return
+    label = "budget: " if statement.trustworthy else "warning: "
+    _console(stderr=True).print(label + statement.message, highlight=False, markup=False)
 
 
 @app.command("tune")

@@ -35,6 +35,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
+from .checkpoint import stop_point
 from .diagnostics import rhat
 from .findings import Finding
 from .reparam import candidates, forward, inverse, log_jacobian
@@ -162,6 +163,7 @@ def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold
                     "local spread changes")
     strongest = {}
     for j in range(d):
+        stop_point()
         if n_independent[j] < MIN_DRAWS_FOR_SPREAD:
             continue
         n_fifth = n_independent[j] / 5

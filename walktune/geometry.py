@@ -36,6 +36,7 @@ import numpy as np
 from scipy import optimize, stats
 from sklearn.mixture import GaussianMixture
 
+from .checkpoint import stop_point
 from .diagnostics import iact
 from .findings import Finding
 from .funnels import (  # noqa: F401  (the funnel detectors live in walktune.funnels)
@@ -75,7 +76,11 @@ def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
     Unlike the IACT combined over chains, this stays small when chains sit
     in different regions, which is what thinning for the detectors needs.
     """
-    per_chain = np.array([np.asarray(iact(chain)) for chain in draws])
+    per_chain = []
+    for chain in draws:
+        stop_point()
+        per_chain.append(np.asarray(iact(chain)))
+    per_chain = np.array(per_chain)
     # A chain that never moved has no autocorrelation time (NaN): it says nothing about thinning.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns

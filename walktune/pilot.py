@@ -61,6 +61,7 @@ from scipy import stats
 from sklearn.covariance import ledoit_wolf_shrinkage
 
 from . import theory
+from .checkpoint import stop_point
 from .diagnostics import iact
 from .engine import Chains, sample
 from .evaluators import InProcessEvaluator
@@ -195,6 +196,7 @@ def noise_slowdown(dim: int, n_draws: int, rng: np.random.Generator, replicates:
     identity = np.eye(dim)
     values = []
     for _ in range(replicates):
+        stop_point()
         white = rng.standard_normal((n_draws, dim))
         estimate = _lw_estimate(white - white.mean(axis=0))
         values.append(theory.direction_slowdown(estimate, identity))

@@ -36,7 +36,7 @@ from . import theory
 from ._validation import as_float_array, check_finite, check_positive_int, check_positive_number, check_seed
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
-from .checkpoint import Interrupted
+from .checkpoint import Interrupted, active
 from .constants import ADVICE_SCHEMA as SCHEMA
 from .constants import CAUTION, DEFAULT_TARGET_ESS
 from .errors import NumericalFailure, SamplingError, WalktuneError
@@ -54,6 +54,7 @@ from .posterior import (
 from .recommend import ComparisonRow, Recommendation, recommend
 from .stages import (
     Budget,
+    budget_statement,
     check_geometry,
     find_start,
     minimum_budget,
@@ -283,6 +284,11 @@ class _JobTracker:
         self.scale_factor = 1.0
         self.basis = None
         self.rows: list = []
+        self.budget = None
+
+    def statement(self, statement) -> None:
+        """The job's budget statement (:func:`walktune.stages.budget_statement`), kept for the partial advice."""
+        self.budget = statement.finding().to_dict()
 
     def __call__(self, stage: str, done: float, total: float) -> None:
         self.stage = stage
@@ -318,6 +324,7 @@ class _JobTracker:
             "proposal_covariance": None,
             "step_sizes": None,
             "comparison": [row.to_dict() for row in self.rows],
+            "budget": self.budget,
             "caution": "Partial advice from an interrupted run: not yet checked by fixed-proposal runs. " + CAUTION,
         }
         if self.covariance is not None:
@@ -514,7 +521,7 @@ def tune(
     TuneResult
     """
     tracker = _JobTracker(checkpoint, progress)
-    with _guarded(checkpoint, tracker):
+    with _guarded(checkpoint, tracker), active(checkpoint):
         inputs = _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator,
                                target_ess)
         posterior = prepare_posterior(log_density, inputs.start, inputs.names, inputs.bounds, vectorized=vectorized,
@@ -523,6 +530,8 @@ def tune(
         tracker.names, tracker.counted = posterior.names, posterior.counted
         check_start(posterior)
         plan = Budget.plan(budget, posterior.dim, inputs.chains)
+        statement = budget_statement(plan)  # what the job will spend, said before it spends it
+        tracker.statement(statement)
         mode_seed, pilot_seed, proof_seed = inputs.seed.spawn(3)
 
         start_points = find_start(posterior, plan, np.random.default_rng(mode_seed), tracker)
@@ -539,6 +548,7 @@ def tune(
         table_stats = proof.stats[chosen]
         findings = collect_findings(posterior, structure, pilot, pilot_evaluations, coords, proof, checks,
                                     recommended=chosen, expected_acceptance=advice.expected_acceptance)
+        findings.append(statement.finding())
 
         tau_max = next(row for row in proof.rows if row.proposal == chosen).iact_max
         warmup, thinning = warmup_and_thinning(tau_max)
