@@ -409,7 +409,8 @@ def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask,
                 f"resuming from {out / FILE_NAME}: replaying {checkpoint.resumed_evaluations} recorded evaluations "
                 "without calling the model, then going on", highlight=False,
             )
-        _say_budget(arguments, options["chains"], quiet or as_json)
+        if not as_json:  # the payload's findings carry it
+            _say_budget(arguments, options["chains"], quiet)
         with _stop_on_signals(checkpoint), StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
             return tune(None if evaluator is not None else spec.function, chains=options["chains"],
                         evaluator=evaluator, checkpoint=checkpoint, progress=progress, **arguments)
@@ -422,7 +423,7 @@ def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask,
 
 def _say_budget(arguments: dict, chains: int, quiet: bool) -> None:
     """Say what the job will spend before the progress bar starts (on stderr); a budget too small for
-    trustworthy figures is said even with --quiet or --json. A budget below the minimum is left to tune()'s error."""
+    trustworthy figures is said even with --quiet. A budget below the minimum is left to tune()'s error."""
     from .stages import Budget, budget_statement, minimum_budget
 
     dim, budget = len(arguments["start"]), arguments["budget"]
@@ -432,7 +433,7 @@ def _say_budget(arguments: dict, chains: int, quiet: bool) -> None:
     if statement.trustworthy and quiet:
         return
     label = "budget: " if statement.trustworthy else "warning: "
-    _console(stderr=True).print(label + statement.message, highlight=False, markup=False)
+    _console(stderr=True).print(label + statement.message, highlight=False, markup=False, soft_wrap=True)
 
 
 @app.command("tune")
