@@ -70,17 +70,23 @@ class Region:
         return np.sqrt(np.diag(self.covariance))
 
 
-def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
-    """The largest (or ``over_parameters``) over parameters of the median over chains of each chain's own IACT.
-
-    Unlike the IACT combined over chains, this stays small when chains sit
-    in different regions, which is what thinning for the detectors needs.
-    """
+def chain_iacts(draws: np.ndarray) -> np.ndarray:
+    """Each chain's own IACT per parameter, shape (chains, d), from (chains, n, d) draws."""
     per_chain = []
     for chain in draws:
         stop_point()
         per_chain.append(np.asarray(iact(chain)))
-    per_chain = np.array(per_chain)
+    return np.array(per_chain)
+
+
+def within_chain_iact(draws: np.ndarray, over_parameters=np.max, per_chain: np.ndarray | None = None) -> float:
+    """The largest (or ``over_parameters``) over parameters of the median over chains of each chain's own IACT.
+
+    Unlike the IACT combined over chains, this stays small when chains sit
+    in different regions, which is what thinning for the detectors needs.
+    ``per_chain`` (:func:`chain_iacts` of ``draws``) saves computing them again.
+    """
+    per_chain = chain_iacts(draws) if per_chain is None else per_chain
     # A chain that never moved has no autocorrelation time (NaN): it says nothing about thinning.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns

@@ -34,6 +34,7 @@ from .errors import WalktuneError
 from .findings import Finding
 from .geometry import (
     boundary_findings,
+    chain_iacts,
     climb,
     curvature_probe_cost,
     find_regions,
@@ -655,13 +656,14 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
     detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
     proof_draws = np.concatenate([run.draws for run in proof.runs.values()], axis=0)
-    tau_within = within_chain_iact(proof_draws)
+    per_chain = chain_iacts(proof_draws)  # once for both summaries below
+    tau_within = within_chain_iact(proof_draws, per_chain=per_chain)
     regions, undecided_modes = find_regions(
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
         chain_ids=[c % budget.chains for c in range(proof_draws.shape[0])],
     )
     multimodal = multimodal_finding(regions, names)
-    tau_median = within_chain_iact(proof_draws, np.median)
+    tau_median = within_chain_iact(proof_draws, np.median, per_chain=per_chain)
     # Multi-chain ESS: chains that disagree must not pass for a funnel (walktune.funnels.independent_draws).
     proof_ess = measure_chains(proof_draws).bulk_ess
     funnel, undecided_scale = varying_scale_findings(proof_draws, tau_median, names, bounds=posterior.bounds,
