@@ -98,9 +98,9 @@ def run_case(dim: int, budget) -> dict:
         # last proof run) is counted apart.
         stage["name"] = name if done < total else f"after {name}"
 
-    t0 = time.perf_counter()
+    t0, cpu0 = time.perf_counter(), time.process_time()
     result = walktune.tune(counted, np.ones(dim), seed=1, vectorized=True, budget=budget, progress=progress)
-    wall = time.perf_counter() - t0
+    wall, cpu = time.perf_counter() - t0, time.process_time() - cpu0
     seconds[stage["name"]] = seconds.get(stage["name"], 0.0) + time.perf_counter() - last[0]
     slow = theory.slowdown(result.proposal_covariance, cov)
     sd_ratio = result.posterior_sd / np.sqrt(np.diag(cov))
@@ -109,6 +109,7 @@ def run_case(dim: int, budget) -> dict:
         "dim": dim,
         "budget": budget,
         "seconds": wall,
+        "cpu_seconds": cpu,
         "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         "evaluations": int(result.total_evaluations),
         "evaluations_by_stage": evaluations,
@@ -202,25 +203,27 @@ def interrupt_latencies(dim: int = 300, budget=None, moments=None) -> list:
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         (folder / "model.py").write_text(MODEL.format(dim=dim))
-        for at, idle in moments:
-            results.append(_interrupt_once(folder, dim, at, idle, budget))
+        for label, at, idle in moments:
+            results.append({"moment": label, **_interrupt_once(folder, dim, at, idle, budget)})
             print(json.dumps(results[-1]), flush=True)
     return results
 
 
 def moments_from_stages(by_stage: dict) -> list:
-    """(evaluation count, idle seconds) during the mode search, the pilot, after the pilot, in the proof, after it."""
+    """(label, evaluation count, seconds without evaluations) at which to send SIGINT, from a library run's
+    evaluations by stage (``run_case``): in the mode search, the pilot, just after the pilot (new coordinates;
+    no evaluations), in a proof run, and after the last proof run (its diagnostics, then the geometry checks)."""
     order = list(by_stage)
-    ends = dict(zip(order, np.cumsum([by_stage[k] for k in order])))
+    ends = dict(zip(order, (int(x) for x in np.cumsum([by_stage[k] for k in order]))))
+    starts = {k: ends[k] - by_stage[k] for k in order}
     pilot_end = ends.get("pilot in new coordinates", ends["pilot"])
-    proof_end = ends[[k for k in order if k not in ("setup", "mode", "pilot", "pilot in new coordinates")][-1]]
-    mode_end = ends["mode"]
     return [
-        (mode_end // 2, 0.0),                       # mode search
-        ((mode_end + ends["pilot"]) // 2, 0.0),     # pilot
-        (pilot_end, 0.5),                           # new coordinates (no evaluations)
-        ((pilot_end + proof_end) // 2, 0.0),        # proof
-        (proof_end, 0.5),                           # geometry checks, after the proof's last step
+        ("mode search", (starts["mode"] + ends["mode"]) // 2, 0.0),
+        ("pilot", (starts["pilot"] + ends["pilot"]) // 2, 0.0),
+        ("new coordinates", pilot_end, 0.5),
+        ("proof", (starts["step-sizes"] + ends["step-sizes"]) // 2, 0.0),
+        ("after the proof: diagnostics", ends["tuned-covariance"], 0.5),
+        ("after the proof: geometry checks", ends["tuned-covariance"], 8.0),
     ]
 
 
@@ -231,16 +234,21 @@ def main() -> None:
     parser.add_argument("--interrupt", action="store_true")
     parser.add_argument("--dim", type=int, default=300)
     parser.add_argument("--budget", type=int, default=None)
+    parser.add_argument("--reference", help="a JSON line of this script's output for the same d and budget")
     args = parser.parse_args()
     if args.child:
-        dim, budget = CASES[args.child] if args.child in CASES else (int(args.child), None)
+        if args.child not in CASES:
+            dim, _, budget = args.child.partition("-")
+            CASES[args.child] = (int(dim), None if budget in ("", "None") else int(budget))
+        dim, budget = CASES[args.child]
         print(json.dumps(run_case(dim, budget)))
         return
     if args.interrupt:
         # The stage boundaries of the same job, from a library run (same seed, options and model).
-        name = str(args.dim) if args.budget is None else None
-        CASES.setdefault(f"{args.dim}-{args.budget}", (args.dim, args.budget))
-        reference = in_child(name or f"{args.dim}-{args.budget}")
+        name = f"{args.dim}-{args.budget}"
+        CASES.setdefault(name, (args.dim, args.budget))
+        reference = json.loads(Path(args.reference).read_text().strip().splitlines()[-1]) if args.reference \
+            else in_child(name)
         print(json.dumps({"reference": reference}), flush=True)
         interrupt_latencies(args.dim, args.budget, moments_from_stages(reference["evaluations_by_stage"]))
         return

@@ -208,6 +208,7 @@ class TuneResult:
             "recommended": self._recommended_payload(),
             "posterior_table": self._posterior_table_payload(),
             "comparison": [row.to_dict() for row in self.comparison],
+            "proof_draws_kept_every": max((getattr(run, "thin", 1) for run in self.runs.values()), default=1),
             "regions": [
                 {
                     "mode": r.mode.tolist(),
