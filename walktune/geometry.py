@@ -203,7 +203,8 @@ def find_regions(
     # Assign draws to regions: nearest mode, then by Mahalanobis distance under each region's covariance.
     all_draws = draws.reshape(-1, d)
     points = np.array([mode[0] for mode in modes])
-    labels = np.argmin((((all_draws[:, None, :] - points[None]) / scale) ** 2).sum(axis=2), axis=1)
+    # One mode at a time: an (n, modes, d) array would hold every proof draw once per mode.
+    labels = np.argmin(np.stack([(((all_draws - point) / scale) ** 2).sum(axis=1) for point in points], axis=1), axis=1)
     for _ in range(2):
         covs = []
         for r in range(len(modes)):
