@@ -75,7 +75,8 @@ def run_case(dim: int, budget) -> dict:
     """One tuning job (in this process); what it cost and how good its answer is."""
     import walktune
     from walktune import theory
-    from walktune.stages import minimum_budget, trustworthy_budget
+    from walktune.planning import trustworthy_budget
+    from walktune.stages import minimum_budget
 
     if budget == "smallest":
         budget = minimum_budget(dim, 4)

@@ -14,7 +14,8 @@ from walktune.checkpoint import Checkpoint, Interrupted
 from walktune.cli import app
 from walktune.diagnostics import IACTS_FOR_PRECISE_ESS, measure_chains
 from walktune.engine import sample
-from walktune.stages import Budget, budget_statement, minimum_budget, optimal_iact, proof_thinning
+from walktune.planning import budget_statement, optimal_iact
+from walktune.stages import Budget, minimum_budget, proof_thinning
 
 
 def gaussian(dim, seed=0):

@@ -424,7 +424,8 @@ def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask,
 def _say_budget(arguments: dict, chains: int, quiet: bool) -> None:
     """Say what the job will spend before the progress bar starts (on stderr); a budget too small for
     trustworthy figures is said even with --quiet. A budget below the minimum is left to tune()'s error."""
-    from .stages import Budget, budget_statement, minimum_budget
+    from .planning import budget_statement
+    from .stages import Budget, minimum_budget
 
     dim, budget = len(arguments["start"]), arguments["budget"]
     if budget is not None and budget < minimum_budget(dim, chains):

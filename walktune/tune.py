@@ -52,9 +52,9 @@ from .posterior import (
     worker_busy_share,
 )
 from .recommend import ComparisonRow, Recommendation, recommend
+from .planning import budget_statement
 from .stages import (
     Budget,
-    budget_statement,
     check_geometry,
     find_start,
     minimum_budget,
