@@ -224,7 +224,7 @@ def moments_from_stages(by_stage: dict) -> list:
         ("mode search", (starts["mode"] + ends["mode"]) // 2, 0.0),
         ("pilot", (starts["pilot"] + ends["pilot"]) // 2, 0.0),
         ("new coordinates", pilot_end, 0.5),
-        ("proof", (starts["step-sizes"] + ends["step-sizes"]) // 2, 0.0),
+        ("proof", (starts["single-step"] + ends["single-step"]) // 2, 0.0),
         ("after the proof: diagnostics", ends["tuned-covariance"], 0.5),
         ("after the proof: geometry checks", ends["tuned-covariance"], 8.0),
     ]
