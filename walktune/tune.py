@@ -379,26 +379,33 @@ def _check_inputs(log_density, start, names, bounds, current_proposal, budget, c
                 f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
                 f"give at least {low}."
             )
-        _check_budget_fits(budget, dim)
+        _check_budget_fits(budget, dim, n_chains)
     check_positive_number(target_ess, "target_ess")
     if not callable(log_density) and evaluator is None:
         raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
     return _Inputs(start, names, bound_array, current, n_chains, check_seed(seed))
 
 
-def _check_budget_fits(budget: int, dim: int) -> None:
-    """Refuse, before any work, a budget whose draws cannot be held: the job keeps up to one point of
-    ``dim`` float64 numbers per evaluation (pilot stages and proof runs), so ``8 budget dim`` bytes
+def _check_budget_fits(budget: int, dim: int, chains: int) -> None:
+    """Refuse, before any work, a budget whose draws cannot be held: the pilot stages keep every draw and
+    the proof runs at most about 128 MiB each (:func:`walktune.planning.budget_statement`, ``memory``), which
     must fit in the machine's physical memory."""
+    from .planning import budget_statement
+
     try:
         memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (AttributeError, ValueError, OSError):  # not on POSIX: no check
         return
-    needed = 8 * budget * dim
+    needed = budget_statement(Budget.plan(budget, dim, chains)).memory
     if needed > memory:
+        low, high = minimum_budget(dim, chains), budget  # the draws kept grow with the budget
+        while high - low > max(1, low // 1000):
+            middle = (low + high) // 2
+            low, high = (middle, high) if budget_statement(Budget.plan(middle, dim, chains)).memory <= memory \
+                else (low, middle)
         raise WalktuneError(
             f"a budget of {budget:.3g} evaluations keeps up to {needed / 1e9:.3g} GB of draws of {dim} parameters "
-            f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {memory // (8 * dim)}."
+            f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {low}."
         )
 
 
