@@ -18,13 +18,14 @@ Targets (issue #15): d = 300 within 10x the time of d = 100 at the default
 budget; peak memory under 2 GB; predicted slow-down <= 1.1; d = 1000 to the
 end with the budget stated up front.
 
-``--interrupt`` writes the d = 300 model to a temporary folder, runs
-``walktune tune`` on it as a real process (default budget) and sends SIGINT at
-moments chosen by the model's own evaluation count (shared with this process
-through a memory-mapped counter): during the mode search, the pilot, just after
-the pilot (new coordinates; no evaluations), in the proof, and just after the
-proof (geometry checks). It times the signal to the process's exit and reads
-the stage the partial advice names. Target: under 2 s everywhere.
+``--interrupt [--dim 300] [--budget N]`` writes the model to a temporary
+folder, runs ``walktune tune`` on it as a real process and sends SIGINT at
+moments found from the stages its checkpoint records and the model's own
+evaluation count (shared through a memory-mapped counter): during the mode
+search, the pilot, just after the pilot (new coordinates; no evaluations), in a
+proof run, and after the last proof run (its diagnostics; the geometry checks).
+It times the signal to the process's exit and reads the stage the partial
+advice names. Target: under 2 s everywhere.
 """
 
 from __future__ import annotations
@@ -163,31 +164,44 @@ def log_density(x):
 '''
 
 
-def _interrupt_once(folder: Path, dim: int, at: int, idle: float, budget) -> dict:
-    """Run ``walktune tune`` and send SIGINT once the model has made ``at`` evaluations (and, with
-    ``idle`` > 0, once the count has then stood still that long: a step without evaluations)."""
+def _checkpoint_stage(out: Path):
+    """The last stage the run's checkpoint recorded as ended (None before the first)."""
+    try:
+        with np.load(out / "checkpoint.npz", allow_pickle=False) as archive:
+            return json.loads(str(archive["meta"][()])).get("stage")
+    except (OSError, KeyError, ValueError):
+        return None
+
+
+def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
+    """Run ``walktune tune`` and send SIGINT at ``moment``: once the checkpoint records stage ``after`` as ended
+    (None: from the start), the model has made ``more`` evaluations since, and then ``idle`` seconds passed
+    without one."""
     counter_path = folder / "counter"
     counter_path.write_bytes(np.zeros(1, dtype=np.int64).tobytes())
-    out = folder / f"out-{at}-{idle}"
+    out = folder / f"out-{moment['label'].replace(' ', '-').replace(':', '')}"
     command = [sys.executable, "-m", "walktune", "tune", f"{folder / 'model.py'}:log_density", "--seed", "1",
-               "--out", str(out), "--quiet"]
+               "--out", str(out), "--quiet", "--checkpoint-every", "0"]
     if budget is not None:
         command += ["--budget", str(budget)]
     with open(counter_path, "r+b") as handle:
         counter = np.frombuffer(mmap.mmap(handle.fileno(), 8), dtype=np.int64)
         process = subprocess.Popen(command, env={**os.environ, "PYTHONPATH": str(ROOT), "BENCH_COUNTER": str(counter_path)},
                                    stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-        seen, still_since = -1, time.perf_counter()
+        seen, still_since, base, last_poll = -1, time.perf_counter(), None, 0.0
         while process.poll() is None:
-            count = int(counter[0])
-            now = time.perf_counter()
+            count, now = int(counter[0]), time.perf_counter()
             if count != seen:
                 seen, still_since = count, now
-            if count >= at and now - still_since >= idle:
+            if base is None and now - last_poll > 0.2:
+                last_poll = now
+                if moment["after"] is None or _checkpoint_stage(out) == moment["after"]:
+                    base = count
+            if base is not None and count >= base + moment["more"] and now - still_since >= moment["idle"]:
                 break
-            time.sleep(0.01)
+            time.sleep(0.005)
         if process.poll() is not None:
-            return {"at": at, "idle": idle, "error": "finished before the signal"}
+            return {"error": "finished before the signal"}
         sent = time.perf_counter()
         process.send_signal(signal.SIGINT)
         process.wait()
@@ -195,39 +209,32 @@ def _interrupt_once(folder: Path, dim: int, at: int, idle: float, budget) -> dic
         count = int(counter[0])
     partial = out / "partial-advice.json"
     stage = json.loads(partial.read_text()).get("stopped_in_stage") if partial.exists() else None
-    return {"at": at, "idle": idle, "evaluations_at_signal": seen, "evaluations_at_exit": count,
-            "latency_s": round(latency, 3), "exit_code": process.returncode, "stage": stage}
+    return {"evaluations_at_signal": seen, "evaluations_at_exit": count, "latency_s": round(latency, 3),
+            "exit_code": process.returncode, "stopped_in_stage": stage}
 
 
-def interrupt_latencies(dim: int = 300, budget=None, moments=None) -> list:
-    """SIGINT at the moments (evaluation count, seconds of no evaluations) given, or at the stage boundaries of a
-    library run of the same job (``--child`` output, passed as JSON in ``moments``)."""
+#: When to send SIGINT: after the checkpoint records a stage's end, so many evaluations more, then so many
+#: seconds without an evaluation.
+MOMENTS = [
+    {"label": "mode search", "after": None, "more": 3000, "idle": 0.0},
+    {"label": "pilot", "after": "pilot stage 1", "more": 1000, "idle": 0.0},
+    {"label": "new coordinates", "after": "pilot", "more": 0, "idle": 0.3},
+    {"label": "proof", "after": "pilot", "more": 20_000, "idle": 0.0},
+    {"label": "after the proof: its diagnostics", "after": "tuned-covariance", "more": 0, "idle": 0.3},
+    {"label": "after the proof: geometry checks", "after": "tuned-covariance", "more": 0, "idle": 6.0},
+]
+
+
+def interrupt_latencies(dim: int, budget) -> list:
+    """SIGINT at each of :data:`MOMENTS` in a fresh `walktune tune` run of the d-dimensional model."""
     results = []
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         (folder / "model.py").write_text(MODEL.format(dim=dim))
-        for label, at, idle in moments:
-            results.append({"moment": label, **_interrupt_once(folder, dim, at, idle, budget)})
+        for moment in MOMENTS:
+            results.append({"moment": moment["label"], **_interrupt_once(folder, dim, moment, budget)})
             print(json.dumps(results[-1]), flush=True)
     return results
-
-
-def moments_from_stages(by_stage: dict) -> list:
-    """(label, evaluation count, seconds without evaluations) at which to send SIGINT, from a library run's
-    evaluations by stage (``run_case``): in the mode search, the pilot, just after the pilot (new coordinates;
-    no evaluations), in a proof run, and after the last proof run (its diagnostics, then the geometry checks)."""
-    order = list(by_stage)
-    ends = dict(zip(order, (int(x) for x in np.cumsum([by_stage[k] for k in order]))))
-    starts = {k: ends[k] - by_stage[k] for k in order}
-    pilot_end = ends.get("pilot in new coordinates", ends["pilot"])
-    return [
-        ("mode search", (starts["mode"] + ends["mode"]) // 2, 0.0),
-        ("pilot", (starts["pilot"] + ends["pilot"]) // 2, 0.0),
-        ("new coordinates", pilot_end, 0.5),
-        ("proof", (starts["single-step"] + ends["single-step"]) // 2, 0.0),
-        ("after the proof: diagnostics", ends["tuned-covariance"], 0.5),
-        ("after the proof: geometry checks", ends["tuned-covariance"], 8.0),
-    ]
 
 
 def main() -> None:
@@ -237,7 +244,6 @@ def main() -> None:
     parser.add_argument("--interrupt", action="store_true")
     parser.add_argument("--dim", type=int, default=300)
     parser.add_argument("--budget", type=int, default=None)
-    parser.add_argument("--reference", help="a JSON line of this script's output for the same d and budget")
     args = parser.parse_args()
     if args.child:
         if args.child not in CASES:
@@ -247,13 +253,7 @@ def main() -> None:
         print(json.dumps(run_case(dim, budget)))
         return
     if args.interrupt:
-        # The stage boundaries of the same job, from a library run (same seed, options and model).
-        name = f"{args.dim}-{args.budget}"
-        CASES.setdefault(name, (args.dim, args.budget))
-        reference = json.loads(Path(args.reference).read_text().strip().splitlines()[-1]) if args.reference \
-            else in_child(name)
-        print(json.dumps({"reference": reference}), flush=True)
-        interrupt_latencies(args.dim, args.budget, moments_from_stages(reference["evaluations_by_stage"]))
+        interrupt_latencies(args.dim, args.budget)
         return
     for name in args.cases.split(","):
         print(json.dumps(in_child(name)), flush=True)
