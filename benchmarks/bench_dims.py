@@ -164,6 +164,12 @@ def log_density(x):
 '''
 
 
+def _cpu_seconds(pid: int) -> float:
+    """User and system CPU seconds of a running process so far (/proc/PID/stat)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
 def _checkpoint_stage(out: Path):
     """The last stage the run's checkpoint recorded as ended (None before the first)."""
     try:
@@ -202,14 +208,19 @@ def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
             time.sleep(0.005)
         if process.poll() is not None:
             return {"error": "finished before the signal"}
+        cpu_before = _cpu_seconds(process.pid)
         sent = time.perf_counter()
         process.send_signal(signal.SIGINT)
-        process.wait()
+        _, status, usage = os.wait4(process.pid, 0)
         latency = time.perf_counter() - sent
+        process.returncode = os.waitstatus_to_exitcode(status)
+        # CPU seconds from the signal to the exit: the latency on an idle machine, whatever the load here.
+        cpu_after = usage.ru_utime + usage.ru_stime
         count = int(counter[0])
     partial = out / "partial-advice.json"
     stage = json.loads(partial.read_text()).get("stopped_in_stage") if partial.exists() else None
     return {"evaluations_at_signal": seen, "evaluations_at_exit": count, "latency_s": round(latency, 3),
+            "cpu_s_after_signal": round(cpu_after - cpu_before, 3),
             "exit_code": process.returncode, "stopped_in_stage": stage}
 
 
