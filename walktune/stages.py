@@ -224,10 +224,10 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     """Mode search (a third of the pilot's budget, less the Hessian's), then 4 climbs for other modes and the starts."""
     bounds, start, dim = posterior.bounds, posterior.start, posterior.dim
     counted = posterior.counted
-    tracker("mode", 0, 1)
     scales = np.where(np.isfinite(bounds).all(axis=1), (bounds[:, 1] - bounds[:, 0]) / 10, 1.0)
     scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
     check_parameters_used(posterior, scales)
+    tracker("mode", 0, 1)  # after the checks of the model, which end in a one-line error
     mode_budget = max(20 * (dim + 1), budget.pilot // 3 - 2 * dim * dim)
     fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names)
     tracker("mode", 1, 1)
