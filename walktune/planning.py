@@ -108,7 +108,7 @@ class BudgetStatement:
             return text
         return (text + f" Too small for trustworthy figures: even an optimally tuned proposal needs about "
                 f"{optimal_iact(self.dim):,.0f} steps per autocorrelation time in {self.dim} dimensions, so each proof "
-                f"run would hold {self.iacts:.2g} of the {IACTS_FOR_PRECISE_ESS} its ESS needs; the ESS, speed-ups, "
+                f"run would hold {self.iacts:.3g} of the {IACTS_FOR_PRECISE_ESS} its ESS needs; the ESS, speed-ups, "
                 f"posterior means and sds it reports will not be trustworthy. A budget of at least {self.needed:,} "
                 "would give them enough.")
 
