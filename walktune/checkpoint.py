@@ -30,11 +30,13 @@ model, another seed, a changed function) leaves it as it was.
 
 from __future__ import annotations
 
+import contextvars
 import hashlib
 import io
 import json
 import time
 import zipfile
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -74,6 +76,34 @@ class Interrupted(BaseException):
         self.signum = signum
         self.partial = None
         self.checkpoint = None
+
+
+#: The checkpoint of the tuning job running in this context (see :func:`stop_point`).
+_ACTIVE: contextvars.ContextVar = contextvars.ContextVar("walktune_active_checkpoint", default=None)
+
+
+@contextmanager
+def active(checkpoint):
+    """Make ``checkpoint`` the one :func:`stop_point` consults while the block runs (None: none)."""
+    token = _ACTIVE.set(checkpoint)
+    try:
+        yield
+    finally:
+        _ACTIVE.reset(token)
+
+
+def stop_point() -> None:
+    """Raise :class:`Interrupted` if a stop was requested on the running job's checkpoint.
+
+    A stop request is honoured before each evaluation batch; a long computation
+    between evaluations (diagnostics of a long run, transform scoring, the
+    geometry checks) calls this between its pieces, so that Ctrl-C acts within
+    a piece's time rather than the whole computation's. It never changes a
+    result: without a request it does nothing.
+    """
+    checkpoint = _ACTIVE.get()
+    if checkpoint is not None and checkpoint.stop_signal is not None:
+        checkpoint.raise_stop()
 
 
 def fingerprint(points: np.ndarray) -> int:
@@ -257,15 +287,19 @@ class Checkpoint:
         """Ask the job to stop before its next live evaluation (safe to call from a signal handler)."""
         self.stop_signal = int(signum)
 
+    def raise_stop(self) -> None:
+        """Save and raise :class:`Interrupted` for the stop requested."""
+        stop = Interrupted(self.stop_signal or 0)
+        stop.checkpoint = self.save()  # while replaying, the checkpoint on disk is already complete
+        raise stop
+
     def evaluate(self, points: np.ndarray, evaluator) -> tuple[BatchResult, float, float]:
         """Answer a batch from the record, or evaluate it live and record it.
 
         Returns the result, the wall seconds and the worker-busy seconds.
         """
         if self.stop_signal is not None:
-            stop = Interrupted(self.stop_signal)
-            stop.checkpoint = self.save()  # while replaying, the checkpoint on disk is already complete
-            raise stop
+            self.raise_stop()
         if self._cursor < self._replay:
             i = self._cursor
             n = points.shape[0]

@@ -409,14 +409,46 @@ def _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask,
                 f"resuming from {out / FILE_NAME}: replaying {checkpoint.resumed_evaluations} recorded evaluations "
                 "without calling the model, then going on", highlight=False,
             )
+        note = None if as_json else _budget_note(arguments, options["chains"], quiet)  # --json: in the findings
         with _stop_on_signals(checkpoint), StageProgress(_console(stderr=True), enabled=not (quiet or as_json)) as progress:
             return tune(None if evaluator is not None else spec.function, chains=options["chains"],
-                        evaluator=evaluator, checkpoint=checkpoint, progress=progress, **arguments)
+                        evaluator=evaluator, checkpoint=checkpoint, progress=_saying_first(note, progress),
+                        **arguments)
     except Interrupted as stop:
         _interrupted(stop, out, _console(), emit, as_json, quiet)
     finally:
         if evaluator is not None and hasattr(evaluator, "close"):
             evaluator.close()
+
+
+def _budget_note(arguments: dict, chains: int, quiet: bool) -> str | None:
+    """What the job will spend (:func:`walktune.planning.budget_statement`), to say before the progress bar;
+    a budget too small for trustworthy figures is said even with --quiet. None when there is nothing to say
+    (a budget below the minimum is left to tune()'s error)."""
+    from .planning import budget_statement
+    from .stages import Budget, minimum_budget
+
+    dim, budget = len(arguments["start"]), arguments["budget"]
+    if budget is not None and budget < minimum_budget(dim, chains):
+        return None
+    statement = budget_statement(Budget.plan(budget, dim, chains))
+    if statement.trustworthy and quiet:
+        return None
+    return ("budget: " if statement.trustworthy else "warning: ") + statement.message
+
+
+def _saying_first(note: str | None, progress):
+    """The progress callback, saying ``note`` on stderr at its first call: once the job has checked its inputs
+    and the model's start, before its first stage spends anything (bad input stays a one-line error)."""
+    said = []
+
+    def call(stage, done, total):
+        if note and not said:
+            said.append(True)
+            _console(stderr=True).print(note, highlight=False, markup=False, soft_wrap=True)
+        progress(stage, done, total)
+
+    return call
 
 
 @app.command("tune")

@@ -32,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import fft, special
 
+from .checkpoint import stop_point
 from .errors import WalktuneError
 
 #: Window of the IACT estimate below, in autocorrelation times: Geyer's initial
@@ -432,6 +433,7 @@ def measure_chain_blocks(blocks, n_chains: int, n_draws: int) -> ChainMeasures:
         raise WalktuneError(f"each chain needs at least 4 draws for diagnostics; got {n_draws}.")
     parts = []
     for chunk in blocks:
+        stop_point()
         if not np.all(np.isfinite(chunk)):
             raise WalktuneError("draws contain NaN or infinity; remove those draws first.")
         parts.append(_measure_block(chunk))

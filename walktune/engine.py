@@ -37,9 +37,10 @@ class Chains:
 
     Attributes
     ----------
-    draws : ndarray of shape (chains, steps, d)
-        The state after each step (the start point is not included).
-    log_density : ndarray of shape (chains, steps)
+    draws : ndarray of shape (chains, ceil(steps / thin), d)
+        The state after each step (the start point is not included), or with
+        ``thin`` > 1 after every ``thin``-th step, the last step always kept.
+    log_density : ndarray of shape (chains, ceil(steps / thin))
         The log-density at each stored state.
     accepted : ndarray of shape (chains, steps), bool
         Whether the proposal at each step was accepted.
@@ -55,6 +56,8 @@ class Chains:
         Evaluations that returned NaN or raised; both were rejected.
     first_error : str or None
         The traceback of the first evaluation that raised.
+    thin : int
+        Steps per stored draw (1: every state is kept).
     """
 
     draws: np.ndarray
@@ -67,6 +70,7 @@ class Chains:
     nan_count: int = 0
     error_count: int = 0
     first_error: str | None = field(default=None, repr=False)
+    thin: int = 1
 
     @cached_property
     def acceptance_rate(self) -> float:
@@ -79,7 +83,8 @@ class Chains:
 
     @property
     def n_steps(self) -> int:
-        return self.draws.shape[1]
+        """Steps per chain (the stored draws are fewer when ``thin`` > 1)."""
+        return self.accepted.shape[1]
 
     @property
     def dim(self) -> int:
@@ -176,6 +181,7 @@ def sample(
     max_failure_share: float = MAX_FAILURE_SHARE,
     start_log_density=None,
     independent=None,
+    thin: int = 1,
 ) -> Chains:
     """Run random-walk Metropolis chains with a fixed Gaussian proposal.
 
@@ -214,6 +220,10 @@ def sample(
         (an independence proposal) instead of by a random-walk step; the
         Metropolis-Hastings ratio then includes the proposal densities. The
         proposal covariance must not couple them with the other coordinates.
+    thin : int, default=1
+        Keep the state after every ``thin``-th step only (the last step always
+        kept), to bound the memory of long runs in many dimensions. The chain
+        itself, its random numbers and its acceptances are those of ``thin=1``.
 
     Returns
     -------
@@ -222,6 +232,7 @@ def sample(
     points, n_chains = _start_points(start, chains)
     check_positive_int(n_chains, "chains")
     steps = check_positive_int(steps, "steps", minimum=0)
+    thin = check_positive_int(thin, "thin", minimum=1)
     check_finite(points, "start")
     dim = points.shape[1]
     cov = as_covariance(proposal_cov, dim, "proposal_cov")
@@ -260,8 +271,11 @@ def sample(
             raise WalktuneError("`proposal_cov` must not couple independent coordinates with random-walk ones.")
         fresh_precision = np.linalg.inv(cov[np.ix_(fresh, fresh)])
     streams = [np.random.Generator(np.random.PCG64(s)) for s in seed_seq.spawn(n_chains)]
-    draws = np.empty((n_chains, steps, dim))
-    lp_out = np.empty((n_chains, steps))
+    # The states kept: steps t (0-based) with (steps - 1 - t) % thin == 0, so that the last is among them.
+    offset = (steps - 1) % thin if steps else 0
+    kept = -(-steps // thin)
+    draws = np.empty((n_chains, kept, dim))
+    lp_out = np.empty((n_chains, kept))
     accepted = np.empty((n_chains, steps), dtype=bool)
     current = points.copy()
     start_points = points.copy()
@@ -293,9 +307,14 @@ def sample(
             accept = log_u[t] < values - current_lp + correction
             current[accept] = proposal[accept]
             current_lp[accept] = values[accept]
-            draws[:, done + t] = current
-            lp_out[:, done + t] = current_lp
-            accepted[:, done + t] = accept
+            step = done + t
+            if thin == 1:
+                draws[:, step] = current
+                lp_out[:, step] = current_lp
+            elif (step - offset) % thin == 0:
+                draws[:, (step - offset) // thin] = current
+                lp_out[:, (step - offset) // thin] = current_lp
+            accepted[:, step] = accept
         evaluations += block * n_chains
         done += block
         if failures.nan_count or failures.error_count:
@@ -314,4 +333,5 @@ def sample(
         nan_count=failures.nan_count,
         error_count=failures.error_count,
         first_error=failures.first_error,
+        thin=thin,
     )

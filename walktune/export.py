@@ -10,7 +10,9 @@ Output folder of a tuning run:
   covariance, per-parameter steps as a diagonal covariance, one step size, your
   current proposal, or, for the runs in new coordinates, the covariance in the
   sampler coordinates of ``sampling_map.json`` (headed ``z[i]``);
-* ``draws.npz``: the proof runs' draws, one array per proposal shaped (chains, steps, d),
+* ``draws.npz``: the proof runs' draws, one array per proposal shaped (chains, steps, d)
+  (every ``proof_draws_kept_every``-th state of advice.json when a run would
+  keep more than 128 MiB of draws: :func:`walktune.stages.proof_thinning`),
   the pilot's stages one after another (``pilot``), plus ``parameter_names``.
 """
 

@@ -43,6 +43,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
+from .checkpoint import stop_point
 from .diagnostics import rhat
 from .findings import Finding
 from .funnel_advice import draws_finding, fix_text, listed, narrow_end, positive_type, severity, times, wider
@@ -178,6 +179,7 @@ def varying_scale_findings(draws: np.ndarray, tau: float, names: list, threshold
     bounds = np.tile([-np.inf, np.inf], (d, 1)) if bounds is None else np.asarray(bounds, dtype=float)
     found = []
     for j in range(d):
+        stop_point()
         if n_independent[j] < MIN_DRAWS_FOR_SPREAD:
             continue
         n_fifth = n_independent[j] / 5

@@ -40,6 +40,7 @@ import numpy as np
 from scipy import optimize, stats
 from sklearn.mixture import GaussianMixture
 
+from .checkpoint import stop_point
 from .diagnostics import iact
 from .findings import Finding
 from .mode import finite_difference_hessian
@@ -101,13 +102,23 @@ def _number(x: float):
     return float(x) if np.isfinite(x) else None
 
 
-def within_chain_iact(draws: np.ndarray, over_parameters=np.max) -> float:
+def chain_iacts(draws: np.ndarray) -> np.ndarray:
+    """Each chain's own IACT per parameter, shape (chains, d), from (chains, n, d) draws."""
+    per_chain = []
+    for chain in draws:
+        stop_point()
+        per_chain.append(np.asarray(iact(chain)))
+    return np.array(per_chain)
+
+
+def within_chain_iact(draws: np.ndarray, over_parameters=np.max, per_chain: np.ndarray | None = None) -> float:
     """The largest (or ``over_parameters``) over parameters of the median over chains of each chain's own IACT.
 
     Unlike the IACT combined over chains, this stays small when chains sit
     in different regions, which is what thinning for the detectors needs.
+    ``per_chain`` (:func:`chain_iacts` of ``draws``) saves computing them again.
     """
-    per_chain = np.array([np.asarray(iact(chain)) for chain in draws])
+    per_chain = chain_iacts(draws) if per_chain is None else per_chain
     # A chain that never moved has no autocorrelation time (NaN): it says nothing about thinning.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
@@ -240,7 +251,8 @@ def _regions_from_modes(modes: list, draws: np.ndarray, scale: np.ndarray, chain
     m, n, d = draws.shape
     all_draws = draws.reshape(-1, d)
     points = np.array([mode[0] for mode in modes])
-    labels = np.argmin((((all_draws[:, None, :] - points[None]) / scale) ** 2).sum(axis=2), axis=1)
+    # One mode at a time: an (n, modes, d) array would hold every proof draw once per mode.
+    labels = np.argmin(np.stack([(((all_draws - point) / scale) ** 2).sum(axis=1) for point in points], axis=1), axis=1)
     for _ in range(2):
         covs = []
         for r in range(len(modes)):

@@ -79,6 +79,7 @@ class Option:
     start_log_density: np.ndarray | None
     independent: np.ndarray | None = None
     to_user: object = None
+    thin: int = 1
     parts: list = field(default_factory=list)
     run: Chains | None = None
     stats: object = None
@@ -96,13 +97,14 @@ class Option:
         """Continue the chains to ``steps`` per chain with the same fixed proposal, and measure the whole run."""
         seed = self.seed if not self.parts else self.seed.spawn(1)[0]
         part = sample(None, self.start, self.covariance, steps - self.steps, seed=seed, evaluator=self.evaluator,
-                      start_log_density=self.start_log_density, independent=self.independent, progress=progress)
+                      start_log_density=self.start_log_density, independent=self.independent, progress=progress,
+                      thin=self.thin)
         self.parts.append(part)
         self.start, self.start_log_density = part.last, part.log_density[:, -1].copy()
         whole = _joined(self.parts)
         if self.to_user is not None:
             whole = replace(whole, draws=self.to_user(whole.draws))  # measured in the user's own parameters
-        self.run, self.stats = whole, measure_chains(whole.draws)
+        self.run, self.stats = whole, in_steps(measure_chains(whole.draws), self.thin)
 
 
 def _joined(parts: list) -> Chains:
@@ -121,7 +123,20 @@ def _joined(parts: list) -> Chains:
         nan_count=sum(p.nan_count for p in parts),
         error_count=sum(p.error_count for p in parts),
         first_error=next((p.first_error for p in parts if p.first_error), None),
+        thin=first.thin,
     )
+
+
+def in_steps(stats, thin: int):
+    """Diagnostics of draws kept every ``thin`` steps, with the IACT and the draws per chain counted in steps.
+
+    Parts of a run each keep their own last state, so at a part's end two kept
+    states may lie fewer than ``thin`` steps apart; the IACT in steps is then
+    overstated by at most a part's share of one stored interval.
+    """
+    if thin == 1:
+        return stats
+    return replace(stats, iact=stats.iact * thin, n_draws=stats.n_draws * thin)
 
 
 def measured_rows(options: list, ends: dict | None = None) -> list:

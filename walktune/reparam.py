@@ -52,6 +52,7 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
+from .checkpoint import stop_point
 from .errors import WalktuneError
 from .informed import PRIOR_DOMINATED, informed_split, informed_threshold  # noqa: F401 (re-exported)
 
@@ -164,6 +165,11 @@ def choose_transforms(draws: np.ndarray, names: list, bounds: np.ndarray, force=
     until no change helps. ``force`` maps names to a kind; ``forbid`` is a list
     of kinds (or ``{name: [kinds]}``) never to use. The scores reported per
     candidate are joint scores with the other parameters at their final choice.
+
+    Only parameters with a choice are scored: an unbounded parameter (the
+    identity is its only candidate) gets no scores (an empty dict), and when no
+    parameter has a choice nothing is scored at all. A joint score costs
+    ``O(n d^2)``; scoring every parameter would cost ``O(n d^3)`` for nothing.
     """
     force = dict(force or {})
     unknown = [k for k in force if k not in names]
@@ -187,23 +193,30 @@ def choose_transforms(draws: np.ndarray, names: list, bounds: np.ndarray, force=
             continue
         banned = forbid.get(name, []) if isinstance(forbid, dict) else list(forbid or [])
         options.append([k for k in allowed if k not in banned] or ["identity"])
-    kinds = [max(opts, key=lambda k: transform_score(k, draws[:, i], bounds[i, 0], bounds[i, 1])) for i, opts in enumerate(options)]
-    best = joint_score(kinds, draws, bounds)
-    for _ in range(3):
+    kinds = [opts[0] if len(opts) == 1 else
+             max(opts, key=lambda k: transform_score(k, draws[:, i], bounds[i, 0], bounds[i, 1]))
+             for i, opts in enumerate(options)]
+    choosing = [i for i, opts in enumerate(options) if len(opts) > 1]
+    scored = [i for i in range(len(names)) if len(candidates(bounds[i, 0], bounds[i, 1])) > 1]
+    best = joint_score(kinds, draws, bounds) if choosing else -np.inf
+    for _ in range(3 if choosing else 0):
         changed = False
-        for i, opts in enumerate(options):
-            for kind in opts:
+        for i in choosing:
+            for kind in options[i]:
+                stop_point()
                 trial = kinds[:i] + [kind] + kinds[i + 1 :]
                 score = joint_score(trial, draws, bounds)
                 if score > best + 1e-9:
                     kinds, best, changed = trial, score, True
         if not changed:
             break
-    out = []
-    for i, name in enumerate(names):
-        scores = {kind: joint_score(kinds[:i] + [kind] + kinds[i + 1 :], draws, bounds) for kind in candidates(bounds[i, 0], bounds[i, 1])}
-        out.append(TransformChoice(name, kinds[i], float(bounds[i, 0]), float(bounds[i, 1]), scores))
-    return out
+    scores = {}
+    for i in scored:
+        stop_point()
+        scores[i] = {kind: joint_score(kinds[:i] + [kind] + kinds[i + 1 :], draws, bounds)
+                     for kind in candidates(bounds[i, 0], bounds[i, 1])}
+    return [TransformChoice(name, kinds[i], float(bounds[i, 0]), float(bounds[i, 1]), scores.get(i, {}))
+            for i, name in enumerate(names)]
 
 
 # --------------------------------------------------------------------------- the map
@@ -436,9 +449,10 @@ def build_reparam(
     u = np.column_stack([forward(k, draws[:, i], low[i], high[i]) for i, k in enumerate(kinds)])
     if not np.all(np.isfinite(u)):
         raise WalktuneError("pilot draws lie on a bound, where a transform is infinite; move the start off the bound.")
-    cov_u = np.atleast_2d(np.cov(u.T))
     if covariance is not None and all(k == "identity" for k in kinds):
         cov_u = np.asarray(covariance, dtype=float)
+    else:
+        cov_u = np.atleast_2d(np.cov(u.T))
     return fit_map(list(names), choices, u.mean(axis=0), cov_u, prior_covariance, n_independent)
 
 
@@ -488,6 +502,7 @@ def curvature_measure(draws: np.ndarray, limit: int = 3000, seed: int = 0) -> np
     corr = np.nan_to_num(np.atleast_2d(np.corrcoef(rows.T)))
     out = np.zeros(d)
     for j in range(d):
+        stop_point()
         # Predict from the (at most 5) most correlated others: a ridge bends between a few parameters,
         # and the quadratic features of all d - 1 would cost O(d^2) columns.
         others = [k for k in np.argsort(-np.abs(corr[j])) if k != j][:5]

@@ -39,6 +39,7 @@ from .geometry import (
     MIN_DRAWS_TO_DECIDE,
     assign_draws,
     boundary_findings,
+    chain_iacts,
     climb,
     curvature_probe_cost,
     find_regions,
@@ -130,6 +131,22 @@ class Budget:
     def pilot_extension(self) -> int:
         """Evaluations a pilot with a poor start may add: the default pilot budget again, none under a cap."""
         return self.pilot if self.total is None else 0
+
+
+#: Bytes of draws one proof run keeps at most: a longer run keeps every k-th state (:func:`proof_thinning`).
+PROOF_DRAWS_MEMORY = 2**27
+
+
+def proof_thinning(chains: int, steps: int, dim: int) -> int:
+    """Steps per stored draw of a proof run: 1, or the least ``k`` keeping its draws near :data:`PROOF_DRAWS_MEMORY`.
+
+    A thinned chain's ESS is the full chain's when ``k`` is well below its
+    IACT; an optimally tuned random walk has an IACT of about ``d / 0.33``
+    (Roberts, Gelman and Gilks 1997), and with the default run length
+    ``k ~ d^2 / 10^4`` (d = 300: 9 against an IACT near 900).
+    """
+    return max(1, -(-(8 * chains * dim * steps) // PROOF_DRAWS_MEMORY))
+
 
 
 # --------------------------------------------------------------------------- mode and starts
@@ -251,10 +268,10 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     """
     bounds, start, dim = posterior.bounds, posterior.start, posterior.dim
     counted = posterior.counted
-    tracker("mode", 0, 1)
     scales = np.where(np.isfinite(bounds).all(axis=1), (bounds[:, 1] - bounds[:, 0]) / 10, 1.0)
     scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
     check_parameters_used(posterior, scales)
+    tracker("mode", 0, 1)  # after the checks of the model, which end in a one-line error
     mode_budget = max(20 * (dim + 1), budget.pilot // 3 - 2 * dim * dim)
     fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names)
     tracker("mode", 1, 1)
@@ -569,6 +586,10 @@ def run_proofs(posterior: Posterior, pilot: PilotResult, advice: Advice, coords:
                            independent=p.independent, to_user=coords.reparam.from_sampler)
                     for p, child in zip(coords.plan, seed.spawn(len(coords.plan)))]
     cap = proof_budget(dim, budget, counted.count, len(options))
+    # A run's draws beyond PROOF_DRAWS_BYTES are kept every k-th state (the longest any run could become).
+    thin = proof_thinning(chains, cap // chains, dim)
+    for option in options:
+        option.thin = thin
     first = min(first_round_steps(dim), max(50, cap // (len(options) * chains)))
     rows: list = []
     tracker.proof_rows(rows)
@@ -632,7 +653,8 @@ def check_geometry(posterior: Posterior, proof: Proof, start: StartingPoints, pi
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
     detection_budget = None if budget.total is None else max(0, budget.total - counted.count)
     proof_draws, _, chain_ids = proof.pooled()
-    tau_within = within_chain_iact(proof_draws)
+    per_chain = chain_iacts(proof_draws)
+    tau_within = within_chain_iact(proof_draws, per_chain=per_chain)
     regions, undecided_modes = find_regions(
         counted.scalar, proof_draws, tau_within, extra_centres=start.centres[1:], seed=0, budget=detection_budget,
         chain_ids=[int(c) for c in chain_ids],

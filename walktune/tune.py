@@ -36,7 +36,7 @@ from . import theory
 from ._validation import as_float_array, check_finite, check_positive_int, check_positive_number, check_seed
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse
-from .checkpoint import Interrupted
+from .checkpoint import Interrupted, active
 from .constants import ADVICE_SCHEMA as SCHEMA
 from .constants import CAUTION, DEFAULT_TARGET_ESS
 from .errors import NumericalFailure, SamplingError, WalktuneError
@@ -53,6 +53,7 @@ from .posterior import (
     worker_busy_share,
 )
 from .recommend import ComparisonRow, Recommendation, recommend
+from .planning import budget_statement
 from .stages import (
     Budget,
     check_geometry,
@@ -216,6 +217,7 @@ class TuneResult:
             "recommended": self._recommended_payload(),
             "posterior_table": self._posterior_table_payload(),
             "comparison": [row.to_dict() for row in self.comparison],
+            "proof_draws_kept_every": max((getattr(run, "thin", 1) for run in self.runs.values()), default=1),
             "regions": [
                 {
                     "mode": r.mode.tolist(),
@@ -296,6 +298,11 @@ class _JobTracker:
         self.scale_factor = 1.0
         self.basis = None
         self.rows: list = []
+        self.budget = None
+
+    def statement(self, statement) -> None:
+        """The job's budget statement (:func:`walktune.stages.budget_statement`), kept for the partial advice."""
+        self.budget = statement.finding().to_dict()
 
     def __call__(self, stage: str, done: float, total: float) -> None:
         self.stage = stage
@@ -331,6 +338,7 @@ class _JobTracker:
             "proposal_covariance": None,
             "step_sizes": None,
             "comparison": [row.to_dict() for row in self.rows],
+            "budget": self.budget,
             "caution": "Partial advice from an interrupted run: not yet checked by fixed-proposal runs. " + CAUTION,
         }
         if self.covariance is not None:
@@ -384,26 +392,33 @@ def _check_inputs(log_density, start, names, bounds, current_proposal, budget, c
                 f"a budget of {budget} evaluations is too small for {dim} parameters and {n_chains} chains; "
                 f"give at least {low}."
             )
-        _check_budget_fits(budget, dim)
+        _check_budget_fits(budget, dim, n_chains)
     check_positive_number(target_ess, "target_ess")
     if not callable(log_density) and evaluator is None:
         raise WalktuneError("`log_density` must be a callable taking a parameter vector.")
     return _Inputs(start, names, bound_array, current, n_chains, check_seed(seed))
 
 
-def _check_budget_fits(budget: int, dim: int) -> None:
-    """Refuse, before any work, a budget whose draws cannot be held: the job keeps up to one point of
-    ``dim`` float64 numbers per evaluation (pilot stages and proof runs), so ``8 budget dim`` bytes
+def _check_budget_fits(budget: int, dim: int, chains: int) -> None:
+    """Refuse, before any work, a budget whose draws cannot be held: the pilot stages keep every draw and
+    the proof runs at most about 128 MiB each (:func:`walktune.planning.budget_statement`, ``memory``), which
     must fit in the machine's physical memory."""
+    from .planning import budget_statement
+
     try:
         memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (AttributeError, ValueError, OSError):  # not on POSIX: no check
         return
-    needed = 8 * budget * dim
+    needed = budget_statement(Budget.plan(budget, dim, chains)).memory
     if needed > memory:
+        low, high = minimum_budget(dim, chains), budget  # the draws kept grow with the budget
+        while high - low > max(1, low // 1000):
+            middle = (low + high) // 2
+            low, high = (middle, high) if budget_statement(Budget.plan(middle, dim, chains)).memory <= memory \
+                else (low, middle)
         raise WalktuneError(
             f"a budget of {budget:.3g} evaluations keeps up to {needed / 1e9:.3g} GB of draws of {dim} parameters "
-            f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {memory // (8 * dim)}."
+            f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {low}."
         )
 
 
@@ -528,7 +543,7 @@ def tune(
     TuneResult
     """
     tracker = _JobTracker(checkpoint, progress)
-    with _guarded(checkpoint, tracker):
+    with _guarded(checkpoint, tracker), active(checkpoint):
         inputs = _check_inputs(log_density, start, names, bounds, current_proposal, budget, chains, seed, evaluator,
                                target_ess)
         posterior = prepare_posterior(log_density, inputs.start, inputs.names, inputs.bounds, vectorized=vectorized,
@@ -537,6 +552,8 @@ def tune(
         tracker.names, tracker.counted = posterior.names, posterior.counted
         check_start(posterior)
         plan = Budget.plan(budget, posterior.dim, inputs.chains)
+        statement = budget_statement(plan)  # what the job will spend, said before it spends it
+        tracker.statement(statement)
         mode_seed, pilot_seed, proof_seed = inputs.seed.spawn(3)
 
         start_points = find_start(posterior, plan, np.random.default_rng(mode_seed), tracker)
@@ -553,6 +570,7 @@ def tune(
         table_stats = checks.table_stats
         findings = collect_findings(posterior, structure, pilot, pilot_evaluations, coords, proof, checks,
                                     recommended=chosen, expected_acceptance=advice.expected_acceptance)
+        findings.append(statement.finding())
 
         tau_max = next(row for row in proof.rows if row.proposal == chosen).iact_max
         warmup, thinning = warmup_and_thinning(tau_max)

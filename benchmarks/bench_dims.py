@@ -1,0 +1,274 @@
+"""Hundreds of parameters: time, memory, evaluations by stage, tuning quality and Ctrl-C latency.
+
+    python benchmarks/bench_dims.py                 # d = 100, 300 (defaults), 300 at the smallest budget, 1000 capped
+    python benchmarks/bench_dims.py --cases 100,300 # some of them (see CASES)
+    python benchmarks/bench_dims.py --interrupt     # Ctrl-C latency of `walktune tune` at d = 300
+
+The target is a Gaussian with a random rotation (scipy.stats.ortho_group,
+seeded) and variances spread log-evenly over four decades (condition 1e4),
+evaluated in batches (``vectorized=True``). Each case runs
+``walktune.tune(..., seed=1)`` in a child process of its own, so that the peak
+resident memory (``ru_maxrss``) is the job's; the child reports the wall time,
+the evaluations and seconds of each stage (from the ``progress`` callback),
+the predicted slow-down of the tuned proposal covariance against the true
+covariance (:func:`walktune.theory.slowdown`: slowest parameter and slowest
+direction, rescaled), and the reported posterior sds over the true ones.
+
+Targets (issue #15): d = 300 within 10x the time of d = 100 at the default
+budget; peak memory under 2 GB; predicted slow-down <= 1.1; d = 1000 to the
+end with the budget stated up front.
+
+``--interrupt [--dim 300] [--budget N]`` writes the model to a temporary
+folder, runs ``walktune tune`` on it as a real process and sends SIGINT at
+moments found from the stages its checkpoint records and the model's own
+evaluation count (shared through a memory-mapped counter): during the mode
+search, the pilot, just after the pilot (new coordinates; no evaluations), in a
+proof run, and after the last proof run (its diagnostics; the geometry checks).
+It times the signal to the process's exit and reads the stage the partial
+advice names. Target: under 2 s everywhere.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import mmap
+import os
+import resource
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from scipy import stats
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+
+#: name: (d, budget or None for the default, or "smallest")
+CASES = {
+    "100": (100, None),
+    "300": (300, None),
+    "300-smallest": (300, "smallest"),
+    "1000": (1000, "trustworthy"),
+}
+
+
+def gaussian(dim: int, condition: float = 1e4, seed: int = 0):
+    """A vectorised log-density of N(0, S), S = R diag(logspace(0, log10 condition)) R^T, and S."""
+    rng = np.random.default_rng(seed)
+    rotation = stats.ortho_group.rvs(dim, random_state=rng)
+    variances = np.logspace(0, np.log10(condition), dim)
+    cov = (rotation * variances) @ rotation.T
+    precision = (rotation / variances) @ rotation.T
+
+    def log_density(x):
+        x = np.atleast_2d(x)
+        return -0.5 * np.einsum("ij,ij->i", x @ precision, x)
+
+    return log_density, 0.5 * (cov + cov.T)
+
+
+def run_case(dim: int, budget) -> dict:
+    """One tuning job (in this process); what it cost and how good its answer is."""
+    import walktune
+    from walktune import theory
+    from walktune.planning import trustworthy_budget
+    from walktune.stages import minimum_budget
+
+    if budget == "smallest":
+        budget = minimum_budget(dim, 4)
+    elif budget == "trustworthy":  # the least budget the up-front statement calls enough
+        budget = trustworthy_budget(dim, 4)
+    log_density, cov = gaussian(dim)
+    stage = {"name": "setup"}
+    evaluations: dict = {}
+    seconds: dict = {}
+    last = [time.perf_counter()]
+
+    def counted(x):
+        x = np.atleast_2d(x)
+        evaluations[stage["name"]] = evaluations.get(stage["name"], 0) + x.shape[0]
+        return log_density(x)
+
+    def progress(name, done, total):
+        now = time.perf_counter()
+        seconds[stage["name"]] = seconds.get(stage["name"], 0.0) + now - last[0]
+        last[0] = now
+        # What follows a stage's end (other-mode climbs after the mode search, geometry checks after the
+        # last proof run) is counted apart.
+        stage["name"] = name if done < total else f"after {name}"
+
+    t0, cpu0 = time.perf_counter(), time.process_time()
+    result = walktune.tune(counted, np.ones(dim), seed=1, vectorized=True, budget=budget, progress=progress)
+    wall, cpu = time.perf_counter() - t0, time.process_time() - cpu0
+    seconds[stage["name"]] = seconds.get(stage["name"], 0.0) + time.perf_counter() - last[0]
+    slow = theory.slowdown(result.proposal_covariance, cov)
+    sd_ratio = result.posterior_sd / np.sqrt(np.diag(cov))
+    statement = [f.message for f in result.findings if f.kind == "budget"]
+    return {
+        "dim": dim,
+        "budget": budget,
+        "seconds": wall,
+        "cpu_seconds": cpu,
+        "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+        "evaluations": int(result.total_evaluations),
+        "evaluations_by_stage": evaluations,
+        "seconds_by_stage": {k: round(v, 2) for k, v in seconds.items()},
+        "slowdown_parameter": slow.slowest_parameter,
+        "slowdown_direction": slow.slowest_direction,
+        "sd_ratio_min": float(sd_ratio.min()),
+        "sd_ratio_max": float(sd_ratio.max()),
+        "pilot_sd_ratio_max_error": float(np.max(np.abs(np.sqrt(np.diag(result.posterior_covariance) / np.diag(cov)) - 1))),
+        "recommended": result.posterior_run,
+        "expected_acceptance": result.expected_acceptance,
+        "pilot_converged": result.pilot_converged,
+        "proof_steps": int(result.runs["tuned-covariance"].n_steps),
+        "findings": [f"{f.kind}:{f.severity}" for f in result.findings],
+        "budget_statement": statement,
+    }
+
+
+def in_child(name: str) -> dict:
+    output = subprocess.run([sys.executable, __file__, "--child", name], capture_output=True, text=True,
+                            env={**os.environ, "PYTHONPATH": str(ROOT)})
+    if output.returncode != 0:
+        return {"case": name, "error": output.stderr.strip().splitlines()[-1:]}
+    return {"case": name, **json.loads(output.stdout.strip().splitlines()[-1])}
+
+
+# --------------------------------------------------------------------------- Ctrl-C latency
+
+MODEL = '''
+import mmap, os
+import numpy as np
+from scipy import stats
+
+_rng = np.random.default_rng(0)
+_rotation = stats.ortho_group.rvs({dim}, random_state=_rng)
+_variances = np.logspace(0, 4, {dim})
+_precision = (_rotation / _variances) @ _rotation.T
+VECTORIZED = True
+PARAMETERS = {{f"x{{i}}": 1.0 for i in range({dim})}}
+_file = open(os.environ["BENCH_COUNTER"], "r+b")
+_counter = np.frombuffer(mmap.mmap(_file.fileno(), 8), dtype=np.int64)
+
+
+def log_density(x):
+    x = np.atleast_2d(x)
+    _counter[0] += x.shape[0]
+    return -0.5 * np.einsum("ij,ij->i", x @ _precision, x)
+'''
+
+
+def _cpu_seconds(pid: int) -> float:
+    """User and system CPU seconds of a running process so far (/proc/PID/stat)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def _checkpoint_stage(out: Path):
+    """The last stage the run's checkpoint recorded as ended (None before the first)."""
+    try:
+        with np.load(out / "checkpoint.npz", allow_pickle=False) as archive:
+            return json.loads(str(archive["meta"][()])).get("stage")
+    except (OSError, KeyError, ValueError):
+        return None
+
+
+def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
+    """Run ``walktune tune`` and send SIGINT at ``moment``: once the checkpoint records stage ``after`` as ended
+    (None: from the start), the model has made ``more`` evaluations since, and then ``idle`` seconds passed
+    without one."""
+    counter_path = folder / "counter"
+    counter_path.write_bytes(np.zeros(1, dtype=np.int64).tobytes())
+    out = folder / f"out-{moment['label'].replace(' ', '-').replace(':', '')}"
+    command = [sys.executable, "-m", "walktune", "tune", f"{folder / 'model.py'}:log_density", "--seed", "1",
+               "--out", str(out), "--quiet", "--checkpoint-every", "0"]
+    if budget is not None:
+        command += ["--budget", str(budget)]
+    with open(counter_path, "r+b") as handle:
+        counter = np.frombuffer(mmap.mmap(handle.fileno(), 8), dtype=np.int64)
+        process = subprocess.Popen(command, env={**os.environ, "PYTHONPATH": str(ROOT), "BENCH_COUNTER": str(counter_path)},
+                                   stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+        seen, still_since, base, last_poll = -1, time.perf_counter(), None, 0.0
+        while process.poll() is None:
+            count, now = int(counter[0]), time.perf_counter()
+            if count != seen:
+                seen, still_since = count, now
+            if base is None and now - last_poll > 0.2:
+                last_poll = now
+                if moment["after"] is None or _checkpoint_stage(out) == moment["after"]:
+                    base = count
+            if base is not None and count >= base + moment["more"] and now - still_since >= moment["idle"]:
+                break
+            time.sleep(0.005)
+        if process.poll() is not None:
+            return {"error": "finished before the signal"}
+        cpu_before = _cpu_seconds(process.pid)
+        sent = time.perf_counter()
+        process.send_signal(signal.SIGINT)
+        _, status, usage = os.wait4(process.pid, 0)
+        latency = time.perf_counter() - sent
+        process.returncode = os.waitstatus_to_exitcode(status)
+        # CPU seconds from the signal to the exit: the latency on an idle machine, whatever the load here.
+        cpu_after = usage.ru_utime + usage.ru_stime
+        count = int(counter[0])
+    partial = out / "partial-advice.json"
+    stage = json.loads(partial.read_text()).get("stopped_in_stage") if partial.exists() else None
+    return {"evaluations_at_signal": seen, "evaluations_at_exit": count, "latency_s": round(latency, 3),
+            "cpu_s_after_signal": round(cpu_after - cpu_before, 3),
+            "exit_code": process.returncode, "stopped_in_stage": stage}
+
+
+#: When to send SIGINT: after the checkpoint records a stage's end, so many evaluations more, then so many
+#: seconds without an evaluation.
+MOMENTS = [
+    {"label": "mode search", "after": None, "more": 3000, "idle": 0.0},
+    {"label": "pilot", "after": "pilot stage 1", "more": 1000, "idle": 0.0},
+    {"label": "new coordinates", "after": "pilot", "more": 0, "idle": 0.3},
+    {"label": "proof", "after": "pilot", "more": 20_000, "idle": 0.0},
+    {"label": "after the proof: its diagnostics", "after": "tuned-covariance", "more": 0, "idle": 0.3},
+    {"label": "after the proof: geometry checks", "after": "tuned-covariance", "more": 0, "idle": 6.0},
+]
+
+
+def interrupt_latencies(dim: int, budget) -> list:
+    """SIGINT at each of :data:`MOMENTS` in a fresh `walktune tune` run of the d-dimensional model."""
+    results = []
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        (folder / "model.py").write_text(MODEL.format(dim=dim))
+        for moment in MOMENTS:
+            results.append({"moment": moment["label"], **_interrupt_once(folder, dim, moment, budget)})
+            print(json.dumps(results[-1]), flush=True)
+    return results
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--child")
+    parser.add_argument("--cases", default=",".join(CASES))
+    parser.add_argument("--interrupt", action="store_true")
+    parser.add_argument("--dim", type=int, default=300)
+    parser.add_argument("--budget", type=int, default=None)
+    args = parser.parse_args()
+    if args.child:
+        if args.child not in CASES:
+            dim, _, budget = args.child.partition("-")
+            CASES[args.child] = (int(dim), None if budget in ("", "None") else int(budget))
+        dim, budget = CASES[args.child]
+        print(json.dumps(run_case(dim, budget)))
+        return
+    if args.interrupt:
+        interrupt_latencies(args.dim, args.budget)
+        return
+    for name in args.cases.split(","):
+        print(json.dumps(in_child(name)), flush=True)
+
+
+if __name__ == "__main__":
+    main()
