@@ -162,3 +162,24 @@ def test_mirror_demo_is_multimodal():
     assert "multimodal" in kinds(result)
     offsets = sorted(region.mode[0] for region in result.regions)
     assert offsets[0] == pytest.approx(-offsets[1], abs=0.01)
+
+
+def test_r_squared_on_others_agrees_with_scikit_learn_regressions():
+    # Reference: scikit-learn's LinearRegression of each parameter on the others, in-sample R^2
+    # (sklearn.metrics.r2_score); the closed form 1 - 1 / (S_ii (S^-1)_ii) is the same quantity.
+    from sklearn.linear_model import LinearRegression
+
+    from walktune.analysis import r_squared_on_others
+
+    rng = np.random.default_rng(5)
+    a = rng.standard_normal((4, 4))
+    draws = rng.multivariate_normal(np.zeros(4), a @ a.T + 0.1 * np.eye(4), size=3000)
+    ours = r_squared_on_others(draws.reshape(3, 1000, 4))
+    for i in range(4):
+        others = np.delete(draws, i, axis=1)
+        expected = LinearRegression().fit(others, draws[:, i]).score(others, draws[:, i])
+        assert ours[i] == pytest.approx(expected, abs=1e-10)
+    # A parameter that never moved has no R^2.
+    still = draws.copy()
+    still[:, 2] = 1.0
+    assert np.isnan(r_squared_on_others(still)[2])

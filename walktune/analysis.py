@@ -115,3 +115,23 @@ def analyse(covariance: np.ndarray, max_pairs: int = 10) -> Structure:
     order = np.argsort(-np.abs(corr[iu]))[:max_pairs]
     pairs = [(int(iu[0][o]), int(iu[1][o]), float(corr[iu][o])) for o in order]
     return Structure(cov, corr, sd, eigenvalues, directions, decades, effective_dimension, vif, pairs)
+
+
+def r_squared_on_others(draws: np.ndarray) -> np.ndarray:
+    """Each parameter's ``R^2`` regressed on all the others, from the sample covariance of ``draws`` (..., d).
+
+    ``R^2_i = 1 - 1 / (S_ii (S^-1)_ii)`` (the same ``1 - 1 / VIF_i`` as :class:`Structure`, from draws instead of a
+    shrunk estimate); NaN where the covariance is singular or a parameter did not move.
+    """
+    flat = draws.reshape(-1, draws.shape[-1])
+    dim = flat.shape[1]
+    if flat.shape[0] <= dim + 1:
+        return np.full(dim, np.nan)
+    cov = np.atleast_2d(np.cov(flat, rowvar=False))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        try:
+            precision_diag = np.diag(np.linalg.inv(cov))
+        except np.linalg.LinAlgError:
+            return np.full(dim, np.nan)
+        r2 = 1.0 - 1.0 / (np.diag(cov) * precision_diag)
+    return np.where(np.isfinite(r2) & (np.diag(cov) > 0), np.clip(r2, 0.0, 1.0), np.nan)

@@ -153,7 +153,7 @@ def posterior_table(result: TuneResult, width: int | None = None) -> Table:
     run = result.posterior_run
     rows = {row.proposal: row for row in result.comparison}
     shape = f", {rows[run].evaluations} evaluations" if run in rows else ""
-    title = f"Posterior (mean, MCSE, sd and R-hat from the {run} fixed-proposal run{shape})"
+    title = f"Posterior (mean, MCSE, sd, R-hat and R^2 from the {run} fixed-proposal run{shape})"
     scope = result.posterior_scope.describe() if result.posterior_scope is not None else ""
     if scope:
         title += f"\n{scope[0].upper()}{scope[1:]}"
@@ -164,6 +164,8 @@ def posterior_table(result: TuneResult, width: int | None = None) -> Table:
     columns = [("parameter", "left"), ("mean", "right"), ("+/- MCSE", "right"), ("sd", "right"), ("R-hat", "right"),
                ("step", "right"), ("R^2 others", "right")]
     sd = result.posterior_sd if result.posterior_sd is not None else result.structure.sd
+    r_squared = (result.posterior_r_squared if result.posterior_r_squared is not None
+                 else result.structure.determined_by_others)
     table_rows = []
     for i, name in enumerate(result.parameter_names):
         rhat = result.posterior_rhat[i] if result.posterior_rhat is not None else float("nan")
@@ -171,10 +173,10 @@ def posterior_table(result: TuneResult, width: int | None = None) -> Table:
         table_rows.append([
             name, _fmt(result.posterior_mean[i], 5), _fmt(result.posterior_mean_mcse[i], 2), _fmt(sd[i]),
             Text(f"{rhat:.3f}{flag}", style="bold red" if flag else ""),
-            _fmt(result.step_sizes[i]), f"{result.structure.determined_by_others[i]:.3f}",
+            _fmt(result.step_sizes[i]), f"{r_squared[i]:.3f}",
         ])
-    caption = ("step: tuned per-parameter proposal sd; R^2 others: how well the other parameters predict it (pilot's "
-               "covariance).")
+    caption = ("step: tuned per-parameter proposal sd; R^2 others: how well the other parameters predict it "
+               "(linearly, in the same draws).")
     if any(len(row[4].plain) and row[4].plain.endswith("!") for row in table_rows):
         caption += " ! R-hat above 1.01: the chains disagree."
     return fitted_table(title, columns, table_rows, width, caption)

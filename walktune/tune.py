@@ -35,7 +35,7 @@ import numpy as np
 from . import theory
 from ._validation import as_float_array, check_finite, check_positive_int, check_positive_number, check_seed
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
-from .analysis import Structure, analyse
+from .analysis import Structure, analyse, r_squared_on_others
 from .checkpoint import Interrupted, active
 from .constants import ADVICE_SCHEMA as SCHEMA
 from .constants import CAUTION, DEFAULT_TARGET_ESS
@@ -85,7 +85,8 @@ class TuneResult:
         Its proposal covariance, in the coordinates it runs in (``recommended.coordinates``).
     posterior_mean : ndarray of shape (d,)
         From the recommended fixed-proposal run (``posterior_run``), with
-        ``posterior_mean_mcse``, ``posterior_sd`` and ``posterior_rhat`` from the same draws:
+        ``posterior_mean_mcse``, ``posterior_sd``, ``posterior_rhat`` and
+        ``posterior_r_squared`` (each parameter's R^2 on the others) from the same draws:
         the chains named by ``posterior_scope`` (all of them unless chains sat in
         separated regions without moving between them; see :mod:`walktune.modes`).
     posterior_covariance : ndarray of shape (d, d)
@@ -136,6 +137,7 @@ class TuneResult:
     posterior_sd: np.ndarray | None = None
     posterior_rhat: np.ndarray | None = None
     posterior_scope: TableScope | None = None
+    posterior_r_squared: np.ndarray | None = None
 
     @property
     def whole_posterior(self) -> bool:
@@ -257,6 +259,8 @@ class TuneResult:
             "mcse": [_json_float(x) for x in self.posterior_mean_mcse],
             "sd": None if self.posterior_sd is None else self.posterior_sd.tolist(),
             "rhat": None if self.posterior_rhat is None else [_json_float(x) for x in self.posterior_rhat],
+            "r_squared_others": None if self.posterior_r_squared is None else
+            [_json_float(x) for x in self.posterior_r_squared],
             "converged": self.converged,
             **(self.posterior_scope.to_dict() if self.posterior_scope is not None else {}),
         }
@@ -584,6 +588,7 @@ def tune(
             posterior_mean_mcse=table_stats.mcse,
             posterior_sd=table_stats.sd,
             posterior_rhat=table_stats.rhat,
+            posterior_r_squared=r_squared_on_others(proof.runs[chosen].draws[checks.table.chains]),
             posterior_run=chosen,
             posterior_scope=checks.table,
             recommended=recommended,
