@@ -37,6 +37,7 @@ from ._validation import as_float_array, check_finite, check_positive_int, check
 from .advice import Advice, advice_payload, advise, warmup_and_thinning
 from .analysis import Structure, analyse, r_squared_on_others
 from .checkpoint import Interrupted, active
+from .checks import check_geometry
 from .constants import ADVICE_SCHEMA as SCHEMA
 from .constants import CAUTION, DEFAULT_TARGET_ESS
 from .errors import NumericalFailure, SamplingError, WalktuneError
@@ -52,11 +53,10 @@ from .posterior import (
     prepare_posterior,
     worker_busy_share,
 )
-from .recommend import ComparisonRow, Recommendation, recommend
 from .planning import budget_statement
+from .recommend import ComparisonRow, Recommendation, recommend
 from .stages import (
     Budget,
-    check_geometry,
     find_start,
     minimum_budget,
     new_coordinates,
