@@ -161,15 +161,12 @@ def _next_steps(chosen, steps: int, chains: int) -> int:
 
 
 def _to_extend(options: list, rows: list, chosen, steps: int, chains: int, others_left: int) -> list:
-    """The recommended run, the runs in contention measured faster than it (within the error), and the others
-    its longer run alone would not be expected to resolve, as far as ``others_left`` evaluations (their share of
-    the budget) reach."""
+    """The recommended run, and the runs in contention its longer run alone would not be expected to resolve,
+    as far as ``others_left`` evaluations (their share of the budget) reach."""
     by_name = {row.proposal: row for row in rows}
     out = []
     for option in options:
-        if option.name == chosen.proposal or by_name[option.name].ess_per_1000 > chosen.ess_per_1000:
-            # A run measured faster than the recommended one (within the error) goes along whatever its share:
-            # only its own longer run can show whether it is faster.
+        if option.name == chosen.proposal:
             out.append(option)
         elif not resolved_by_extending(chosen, by_name[option.name], steps * chains):
             if option.cost(steps, chains) <= others_left:
@@ -222,14 +219,7 @@ def run_rounds(options: list, budget: int, chains: int, first_steps: int, tracke
         others_left = int(OTHERS_SHARE * budget) - sum(o.run.evaluations for o in options if o.name != chosen.proposal)
         active = _to_extend([o for o in options if o.name in in_play], rows, chosen, wanted, chains, others_left)
         affordable = _affordable_steps(active, budget - spent, chains)
-        behind = [o for o in active if o.steps + MIN_ROUND_STEPS <= chosen.steps]
-        if not settled(chosen) and affordable - chosen.steps < MIN_ROUND_STEPS and behind:
-            # No room to take every run further together: bring the runs in contention that are behind the
-            # recommended one up towards its length, so that the comparison rests on like-for-like runs.
-            catch_up = min(chosen.steps, _affordable_steps(behind, budget - spent, chains))
-            if catch_up - min(o.steps for o in behind) >= MIN_ROUND_STEPS:
-                active, affordable, wanted = behind, catch_up, catch_up
-        if settled(chosen) or (affordable - chosen.steps < MIN_ROUND_STEPS and active is not behind):
+        if settled(chosen) or affordable - chosen.steps < MIN_ROUND_STEPS:
             end = "settled" if settled(chosen) else "budget"
             rows_out[:] = measured_rows(options, {o.name: end if o.name in in_play else "slower" for o in options})
             tracker("proof", spent, spent)
