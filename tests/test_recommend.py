@@ -268,3 +268,14 @@ def test_poor_acceptance_is_one_finding_that_explains_the_recommended_run():
     assert "step-sizes is still recommended" in found[0].message and "scaled by 0.5" in found[0].message
     # A recommended run with a good rate is not explained away in a finding about the others.
     assert "still recommended" not in acceptance_findings(rows, recommended="tuned-covariance")[0].message
+
+
+def test_a_lower_bound_over_a_stuck_baseline_is_stated_as_such():
+    # Issue 12 item 3: where the baseline's chains have not mixed at all its ESS is too high, so the speed-up over
+    # it is a lower bound and is said as one (not withheld as between two unmixed runs).
+    baseline = SimpleNamespace(proposal="single-step", speedup=1.0, speedup_kind="baseline", max_rhat=3.5,
+                               ess_per_1000=5.5)
+    tuned = SimpleNamespace(proposal="tuned-covariance", speedup=19.6, speedup_kind="lower-bound", max_rhat=1.006,
+                            ess_per_1000=108.0)
+    text = R._message(tuned, [], baseline, None, None)
+    assert "at least 19.6x that of single-step (a lower bound" in text and "no speed-up" not in text

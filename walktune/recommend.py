@@ -289,8 +289,10 @@ def _disagreeing_text(rows: list) -> str:
 
 
 def _message(chosen, close, baseline, contender, to_resolve) -> str:
-    # A speed-up between runs whose chains disagree compares numbers that do not measure speed yet.
-    unmixed = _disagree(chosen, baseline) if chosen is not baseline else []
+    # A speed-up between runs whose chains disagree compares numbers that do not measure speed yet, except a
+    # lower bound: the baseline's chains have not mixed at all, so its ESS is too high and the ratio too low.
+    lower_bound = chosen.speedup_kind == "lower-bound" and chosen.max_rhat <= DISAGREEING_RHAT
+    unmixed = _disagree(chosen, baseline) if chosen is not baseline and not lower_bound else []
     if chosen.proposal == "current":
         text = "Keep your current proposal: no option was measured faster beyond the measurement's error"
     elif chosen is baseline or unmixed:
@@ -298,6 +300,8 @@ def _message(chosen, close, baseline, contender, to_resolve) -> str:
     else:
         text = (f"Use {chosen.proposal}: its ESS per evaluation was measured at "
                 f"{speedup_text(chosen.speedup, chosen.speedup_kind)} that of {baseline.proposal}")
+        if lower_bound:
+            text += f" (a lower bound: the chains of {baseline.proposal} have not mixed, so its ESS is too high)"
     if unmixed:
         text += "; " + _disagreeing_text(unmixed)
     if contender is None:
