@@ -1,5 +1,6 @@
 import numpy as np
 import pytest
+from scipy import stats
 from scipy.signal import lfilter
 
 
@@ -50,3 +51,18 @@ def load_demo(name: str):
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     return module
+
+
+def rotated_gaussian(dim, condition, seed):
+    """A Gaussian with a random rotation, variances log-spaced up to ``condition``: (log_density, cov, mean)."""
+    rng = np.random.default_rng(seed)
+    rotation = stats.ortho_group.rvs(dim, random_state=rng)
+    cov = rotation @ np.diag(np.logspace(0, np.log10(condition), dim)) @ rotation.T
+    mean = rng.normal(size=dim) * np.sqrt(np.diag(cov))
+    precision = np.linalg.inv(cov)
+
+    def log_density(x):
+        z = np.atleast_2d(x) - mean
+        return -0.5 * np.einsum("ij,jk,ik->i", z, precision, z)
+
+    return log_density, cov, mean

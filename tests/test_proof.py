@@ -15,7 +15,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from scipy import stats
 
 import walktune
 from walktune import diagnostics as D
@@ -24,20 +23,7 @@ from walktune.diagnostics import IACTS_FOR_PRECISE_ESS
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
 from plain_rwm import run_chains  # noqa: E402
-
-
-def rotated_gaussian(dim, condition, seed):
-    rng = np.random.default_rng(seed)
-    rotation = stats.ortho_group.rvs(dim, random_state=rng)
-    cov = rotation @ np.diag(np.logspace(0, np.log10(condition), dim)) @ rotation.T
-    mean = rng.normal(size=dim) * np.sqrt(np.diag(cov))
-    precision = np.linalg.inv(cov)
-
-    def log_density(x):
-        z = np.atleast_2d(x) - mean
-        return -0.5 * np.einsum("ij,jk,ik->i", z, precision, z)
-
-    return log_density, cov, mean
+from conftest import rotated_gaussian  # noqa: E402
 
 
 @pytest.fixture(scope="module")

@@ -16,7 +16,6 @@ Sources:
 
 import numpy as np
 import pytest
-from scipy import stats
 from sklearn.datasets import load_breast_cancer, load_diabetes
 from sklearn.linear_model import LogisticRegression
 
@@ -24,20 +23,7 @@ import walktune
 from walktune import diagnostics as D
 from walktune import theory as T
 from walktune.errors import WalktuneError
-
-
-def rotated_gaussian(dim, condition, seed):
-    rng = np.random.default_rng(seed)
-    rotation = stats.ortho_group.rvs(dim, random_state=rng)
-    cov = rotation @ np.diag(np.logspace(0, np.log10(condition), dim)) @ rotation.T
-    mean = rng.normal(size=dim) * np.sqrt(np.diag(cov))
-    precision = np.linalg.inv(cov)
-
-    def log_density(x):
-        z = np.atleast_2d(x) - mean
-        return -0.5 * np.einsum("ij,jk,ik->i", z, precision, z)
-
-    return log_density, cov, mean
+from conftest import rotated_gaussian  # noqa: E402
 
 
 @pytest.mark.slow

@@ -167,6 +167,38 @@ class _FailureLog:
             )
 
 
+def _start_values(evaluate, points: np.ndarray, start_log_density, n_chains: int) -> tuple[np.ndarray, int]:
+    """The log-density at the start points (given, or evaluated and checked finite) and the evaluations spent."""
+    if start_log_density is not None:
+        current_lp = np.array(start_log_density, dtype=float).reshape(-1)
+        if current_lp.shape[0] != n_chains or not np.all(np.isfinite(current_lp)):
+            raise WalktuneError(f"`start_log_density` must hold {n_chains} finite values, one per chain.")
+        return current_lp, 0
+    first = evaluate(points)
+    current_lp = np.asarray(first.values, dtype=float)
+    if first.errors or not np.all(np.isfinite(current_lp)):
+        i = min(first.errors) if first.errors else int(np.flatnonzero(~np.isfinite(current_lp))[0])
+        detail = first.errors[i].strip().splitlines()[-1] if i in first.errors else f"value {current_lp[i]}"
+        raise TargetError(
+            f"the log-density at start point {np.array2string(points[i], precision=6)} is not finite ({detail}); "
+            "choose a start inside the support."
+        )
+    return current_lp, n_chains
+
+
+def _independent_part(independent, cov: np.ndarray, dim: int):
+    """The coordinates proposed independently (sorted, checked) and the precision of their proposal; (None, None)."""
+    if independent is None:
+        return None, None
+    fresh = np.unique(np.asarray(independent, dtype=int))
+    others = np.setdiff1d(np.arange(dim), fresh)
+    if fresh.size and (fresh.min() < 0 or fresh.max() >= dim):
+        raise WalktuneError(f"`independent` indices must lie in 0..{dim - 1}.")
+    if np.any(cov[np.ix_(fresh, others)] != 0):
+        raise WalktuneError("`proposal_cov` must not couple independent coordinates with random-walk ones.")
+    return fresh, np.linalg.inv(cov[np.ix_(fresh, fresh)])
+
+
 def sample(
     log_density: Callable,
     start,
@@ -242,34 +274,10 @@ def sample(
     evaluate = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
     failures = _FailureLog(max_failure_share)
 
-    if start_log_density is not None:
-        current_lp = np.array(start_log_density, dtype=float).reshape(-1)
-        if current_lp.shape[0] != n_chains or not np.all(np.isfinite(current_lp)):
-            raise WalktuneError(f"`start_log_density` must hold {n_chains} finite values, one per chain.")
-        first = None
-        evaluations = 0
-    else:
-        first = evaluate(points)
-        current_lp = np.asarray(first.values, dtype=float)
-        evaluations = n_chains
-    if first is not None and (first.errors or not np.all(np.isfinite(current_lp))):
-        i = min(first.errors) if first.errors else int(np.flatnonzero(~np.isfinite(current_lp))[0])
-        detail = first.errors[i].strip().splitlines()[-1] if i in first.errors else f"value {current_lp[i]}"
-        raise TargetError(
-            f"the log-density at start point {np.array2string(points[i], precision=6)} is not finite ({detail}); "
-            "choose a start inside the support."
-        )
+    current_lp, evaluations = _start_values(evaluate, points, start_log_density, n_chains)
 
     chol = np.linalg.cholesky(cov)
-    fresh = None
-    if independent is not None:
-        fresh = np.unique(np.asarray(independent, dtype=int))
-        others = np.setdiff1d(np.arange(dim), fresh)
-        if fresh.size and (fresh.min() < 0 or fresh.max() >= dim):
-            raise WalktuneError(f"`independent` indices must lie in 0..{dim - 1}.")
-        if np.any(cov[np.ix_(fresh, others)] != 0):
-            raise WalktuneError("`proposal_cov` must not couple independent coordinates with random-walk ones.")
-        fresh_precision = np.linalg.inv(cov[np.ix_(fresh, fresh)])
+    fresh, fresh_precision = _independent_part(independent, cov, dim)
     streams = [np.random.Generator(np.random.PCG64(s)) for s in seed_seq.spawn(n_chains)]
     # The states kept: steps t (0-based) with (steps - 1 - t) % thin == 0, so that the last is among them.
     offset = (steps - 1) % thin if steps else 0
