@@ -14,6 +14,7 @@ import typer
 from rich.console import Console
 
 from . import __version__
+from .cli_options import parse_count, read_proposal, split_list, tune_arguments
 from .errors import WalktuneError
 
 app = typer.Typer(
@@ -90,19 +91,6 @@ def _json_channel(enabled: bool):
             os.close(saved)
 
 
-def _parse_count(text: Optional[str], flag: str) -> Optional[int]:
-    """A whole number given as 20000, 2e4 or 20_000."""
-    if text is None:
-        return None
-    try:
-        value = float(text)
-    except ValueError:
-        raise WalktuneError(f"{flag} {text!r} must be a whole number, e.g. 20000 or 2e4.") from None
-    if not np.isfinite(value) or not value.is_integer() or value < 1:
-        raise WalktuneError(f"{flag} {text!r} must be a whole number >= 1.")
-    return int(text) if text.strip().lstrip("+").replace("_", "").isdigit() else int(value)
-
-
 def _version(value: bool):
     if value:
         typer.echo(f"walktune {__version__}")
@@ -114,58 +102,6 @@ def main_callback(
     version: bool = typer.Option(False, "--version", callback=_version, is_eager=True, help="Print the version and exit."),
 ):
     """walktune: tune random-walk Metropolis samplers and diagnose their chains."""
-
-
-def _split_list(text: Optional[str], what: str) -> Optional[list]:
-    if text is None:
-        return None
-    parts = [p.strip() for p in text.replace(";", ",").split(",") if p.strip()]
-    if not parts:
-        raise WalktuneError(f"--{what} is empty; give comma-separated values.")
-    return parts
-
-
-def _parse_bound(text: str) -> tuple:
-    name, sep, rng = text.partition("=")
-    low, colon, high = rng.partition(":")
-    if not sep or not colon or not name.strip():
-        raise WalktuneError(f"--bound {text!r} must look like NAME=LOW:HIGH (use -inf or inf for an open side).")
-    try:
-        lo = float(low) if low.strip() else -np.inf
-        hi = float(high) if high.strip() else np.inf
-    except ValueError:
-        raise WalktuneError(f"--bound {text!r}: LOW and HIGH must be numbers, -inf or inf.") from None
-    return name.strip(), (lo, hi)
-
-
-def _read_proposal(path: Path) -> np.ndarray:
-    if not path.exists():
-        raise WalktuneError(f"current proposal file {path} does not exist.")
-    try:
-        if path.suffix == ".npy":
-            return np.load(path, allow_pickle=False)
-        if path.suffix == ".json":
-            payload = json.loads(path.read_text())
-            if isinstance(payload, dict):
-                for key in ("proposal_covariance", "covariance", "step_sizes"):
-                    if key in payload:
-                        return np.asarray(payload[key], dtype=float)
-                raise WalktuneError(
-                    f"{path} must hold a list, or an object with 'proposal_covariance', 'covariance' or 'step_sizes'."
-                )
-            return np.asarray(payload, dtype=float)
-        if path.suffix in (".csv", ".txt", ".tsv"):
-            delimiter = "\t" if path.suffix == ".tsv" else ","
-            lines = path.read_text().strip().splitlines()
-            try:
-                [float(v) for v in lines[0].split(delimiter)]
-                skip = 0
-            except ValueError:
-                skip = 1  # a header row of names
-            return np.loadtxt(path, delimiter=delimiter, skiprows=skip, ndmin=1)
-    except (ValueError, OSError) as error:
-        raise WalktuneError(f"cannot read the current proposal from {path}: {error}") from None
-    raise WalktuneError(f"current proposal {path} must be a .npy, .csv or .json file.")
 
 
 @contextmanager
@@ -192,56 +128,6 @@ def _stop_on_signals(checkpoint):
     finally:
         for sig, old in previous.items():
             signal.signal(sig, old)
-
-
-def _tune_arguments(options: dict, spec) -> dict:
-    """The library's tune() arguments from the command line's options and the model file's settings."""
-    names_list = _split_list(options["names"], "names") or spec.names
-    if options["start"] is not None:
-        try:
-            start_values = np.asarray([float(v) for v in _split_list(options["start"], "start")])
-        except ValueError:
-            raise WalktuneError(f"--start {options['start']!r} must be comma-separated numbers.") from None
-    else:
-        start_values = spec.start
-    if start_values is None:
-        raise WalktuneError(
-            "no start values: give --start 1.0,2.0,... or declare PARAMETERS/START in the model file (see docs/models.md)."
-        )
-    if names_list is not None and len(names_list) != len(start_values):
-        raise WalktuneError(
-            f"{len(start_values)} start values for {len(names_list)} parameters ({', '.join(names_list)}); "
-            "give one start value per parameter."
-        )
-    # Bounds declared in the model file follow the model's own names; key them by
-    # position so that --names can rename the parameters.
-    bound_map = {}
-    for key, pair in spec.bounds.items():
-        if spec.names is not None and key in spec.names:
-            key = spec.names.index(key)
-        bound_map[key] = pair
-    for text in options["bound"]:
-        key, pair = _parse_bound(text)
-        bound_map[key] = pair
-    if names_list is not None:
-        unknown = [k for k in bound_map if isinstance(k, str) and k not in names_list]
-        if unknown:
-            raise WalktuneError(f"bounds name unknown parameter {unknown[0]!r}; known: {', '.join(names_list)}.")
-    forced = dict(spec.transforms)
-    for text in options["transform"]:
-        key, sep, kind = text.partition("=")
-        if not sep or not key.strip() or not kind.strip():
-            raise WalktuneError(f"--transform {text!r} must look like NAME=KIND (identity, log, neglog or logit).")
-        forced[key.strip()] = kind.strip()
-    proposal = options["current_proposal"]
-    return dict(
-        start=start_values, names=names_list, bounds=bound_map or None,
-        current_proposal=np.asarray(proposal, dtype=float) if proposal is not None else None,
-        budget=options["budget"], seed=options["seed"], vectorized=spec.vectorized,
-        target_ess=400 if options["target_ess"] is None else options["target_ess"],
-        log_prior=spec.log_prior, prior=spec.prior, transforms=forced or None,
-        forbid_transforms=list(options["no_transform"]) or None,
-    )
 
 
 def _output_folder(given: dict, out: Optional[Path], resume: Optional[Path], restart: bool) -> Path:
@@ -354,13 +240,13 @@ def _run_tune(
             "target": target, "names": names, "start": start, "bound": list(bounds or []), "budget": budget,
             "chains": chains, "seed": seed, "target_ess": target_ess, "transform": list(transform or []),
             "no_transform": list(no_transform or []),
-            "current_proposal": _read_proposal(current_proposal).tolist() if current_proposal is not None else None,
+            "current_proposal": read_proposal(current_proposal).tolist() if current_proposal is not None else None,
         }
         out = _output_folder(given, out, resume, restart)
         lock = FolderLock(out).acquire()  # before anything is read from or written to the folder
         try:
             options, spec = _run_options(given, out, resume, restart)
-            arguments = _tune_arguments(options, spec)
+            arguments = tune_arguments(options, spec)
             _make_room(out, resume=resume is not None, restart=restart, overwrite=overwrite)
             result = _tune_in(out, options, spec, arguments, emit, as_json, quiet, workers, dask, resume,
                               checkpoint_every, time_limit, threads)
@@ -501,7 +387,7 @@ def tune_command(
     partial advice, and --resume FOLDER continues it.
     """
     with _user_errors("write outputs"):
-        _run_tune(target, names, start, bound, _parse_count(budget, "--budget"), chains, seed, out, current_proposal,
+        _run_tune(target, names, start, bound, parse_count(budget, "--budget"), chains, seed, out, current_proposal,
                   target_ess, as_json, quiet, report, transform, no_transform, workers, dask, resume, checkpoint_every,
                   time_limit, threads, overwrite=overwrite, restart=restart)
 
@@ -547,8 +433,8 @@ def inspect_command(
             raise WalktuneError("--run picks a run of a folder written by walktune tune; give that folder or its draws.npz.")
         else:
             data = read_chains(files, chain_column=chain_column, layout=layout)
-        chosen = _split_list(params, "params")
-        current = _read_proposal(proposal) if proposal is not None else None
+        chosen = split_list(params, "params")
+        current = read_proposal(proposal) if proposal is not None else None
         if out is not None and out.exists() and not out.is_dir():
             raise WalktuneError(f"output path {out} exists and is not a folder; choose another --out.")
         if report and out is None:
