@@ -236,6 +236,7 @@ class TuneResult:
             ],
             "reparameterisation": None if self.reparam is None else {
                 "transforms": {t.name: t.kind for t in self.reparam.transforms},
+                "bends": [bend.to_dict() for bend in self.reparam.bends],
                 "informed_dimension": self.reparam.informed,
                 "file": "sampling_map.json",
             },
