@@ -601,7 +601,9 @@ def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, 
             [names[k] for k in partners],
             f"the posterior bends: a quadratic predicts {', '.join(names[i] for i in involved)} from the others much "
             f"better than a straight line ({details}). Chosen transforms{' and bends' if reparam.bends else ''} ({chosen}) "
-            + ("straighten it: sample in the coordinates of sampling_map.json." if straightened else
+            + (("straighten it: sample in the coordinates of sampling_map.json." if not reparam.bends else
+                "take its quadratic part out: the transformed-rotated run is a random walk in the coordinates of "
+                "sampling_map.json.") if straightened else
                "do not straighten it: a fixed Gaussian proposal still mixes, but slowly along the bend (its steps "
                "must stay short across the ridge while the ridge is long), and its covariance must come from "
                "draws that have reached the ends of the bend."),
