@@ -119,3 +119,20 @@ def test_no_bend_on_a_gaussian():
     draws = rng.multivariate_normal(np.zeros(3), cov, size=5000)
     reparam = identity_map(draws)
     assert bend_ridges(reparam, draws, curvature_measure(draws)) is reparam
+
+
+def test_forbidding_bends_leaves_the_twisted_gaussian_unbent():
+    """``forbid_transforms=["bend"]``: the ridge is reported and not straightened (no other map can: unbounded)."""
+    import walktune
+
+    def twisted(theta):
+        y2 = theta[..., 1] - B * (theta[..., 0] ** 2 - 100.0)
+        return -0.5 * (theta[..., 0] ** 2 / 100.0 + y2**2)
+
+    result = walktune.tune(twisted, np.zeros(2), seed=1, budget=12_000, forbid_transforms=["bend"])
+    ridge = [f for f in result.findings if f.kind == "curved-ridge"]
+    assert ridge and not ridge[0].evidence["straightened"] and not ridge[0].evidence["bends"]
+    assert "still mixes, but slowly along the bend" in ridge[0].message
+    # "Slowly" as measured: the tuned run's largest IACT above the diffusion-limit prediction for a Gaussian.
+    assert ridge[0].evidence["iact_measured"] > ridge[0].evidence["iact_gaussian"]
+    assert result.reparam.bends == []

@@ -413,7 +413,8 @@ def new_coordinates(posterior: Posterior, pilot: PilotResult, start: StartingPoi
     if reparam is None:
         return NewCoordinates(None, findings, prior_cov)
     curvature = curvature_measure(pooled)
-    reparam = bend_ridges(reparam, pooled, curvature, prior_cov, n_independent)
+    if "bend" not in (forbid_transforms if isinstance(forbid_transforms, (list, tuple)) else ()):
+        reparam = bend_ridges(reparam, pooled, curvature, prior_cov, n_independent)
     findings += curved_ridge_findings(pooled, reparam, names, before=curvature)
     transformed = any(t.kind != "identity" for t in reparam.transforms) or bool(reparam.bends)
     reduced = prior_terms is not None and 0 < reparam.informed < dim
