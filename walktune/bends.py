@@ -76,6 +76,17 @@ def bend_back(v: np.ndarray, bends: list) -> np.ndarray:
     return u
 
 
+def read_bends(entries: list, names: list) -> list:
+    """Bends from their JSON entries; a parameter bent along must not itself be bent (ValueError otherwise)."""
+    bends = [Bend(e["parameter"], e["along"], names.index(e["parameter"]), names.index(e["along"]),
+                  float(e["coefficient"]), float(e["centre"])) for e in entries]
+    if {b.index for b in bends} & {b.along for b in bends} or len({b.index for b in bends}) < len(bends):
+        raise ValueError("a parameter is bent twice, or bent and bent along")
+    if not all(np.isfinite([b.coefficient for b in bends] + [b.centre for b in bends])):
+        raise ValueError("a bend's coefficient or centre is not finite")
+    return bends
+
+
 def _partner(u: np.ndarray, j: int, excluded: set) -> int | None:
     """The coordinate ``u_j`` is most correlated with through its centred square (None: no candidate)."""
     centred = u - u.mean(axis=0)

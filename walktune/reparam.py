@@ -53,7 +53,7 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
-from .bends import Bend, bend_back, straighten
+from .bends import bend_back, read_bends, straighten
 from .checkpoint import stop_point
 from .errors import WalktuneError
 from .informed import PRIOR_DOMINATED, informed_split, informed_threshold  # noqa: F401 (re-exported)
@@ -419,7 +419,7 @@ def load_sampling_map(path, names=None) -> SamplingMap:
         chol = np.asarray(payload["W"], dtype=float)
         rotation = np.asarray(payload["Q"], dtype=float)
         informed = int(payload["informed_dimension"])
-        bends = _read_bends(payload.get("bends", []), file_names)
+        bends = read_bends(payload.get("bends", []), file_names)
     except (KeyError, TypeError, ValueError) as error:
         raise WalktuneError(f"{path} is incomplete or malformed ({error}).") from None
     d = len(file_names)
@@ -434,17 +434,6 @@ def load_sampling_map(path, names=None) -> SamplingMap:
     ratio = payload.get("posterior_over_prior_variance")
     return SamplingMap(file_names, transforms, mean, chol, rotation, informed,
                    None if ratio is None else np.asarray(ratio, dtype=float), list(payload.get("notes", [])), bends)
-
-
-def _read_bends(entries: list, names: list) -> list:
-    """Bends from their JSON entries; a parameter bent along must not itself be bent (ValueError otherwise)."""
-    bends = [Bend(e["parameter"], e["along"], names.index(e["parameter"]), names.index(e["along"]),
-                  float(e["coefficient"]), float(e["centre"])) for e in entries]
-    if {b.index for b in bends} & {b.along for b in bends} or len({b.index for b in bends}) < len(bends):
-        raise ValueError("a parameter is bent twice, or bent and bent along")
-    if not all(np.isfinite([b.coefficient for b in bends] + [b.centre for b in bends])):
-        raise ValueError("a bend's coefficient or centre is not finite")
-    return bends
 
 
 def build_reparam(
