@@ -359,7 +359,7 @@ def tune_command(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No tables or progress; write the output folder only."),
     report: bool = typer.Option(False, "--report", help="Also write figures and report.html into the output folder."),
     transform: List[str] = typer.Option([], "--transform", help="NAME=KIND forces a transform (identity, log, neglog, logit); repeatable."),
-    no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose; repeatable."),
+    no_transform: List[str] = typer.Option([], "--no-transform", help="A transform kind never to choose (or `bend`: no bends); repeatable."),
     workers: Optional[int] = typer.Option(None, "--workers", help="Evaluate on N local worker processes (default: in this process)."),
     dask: Optional[str] = typer.Option(None, "--dask", help="Evaluate on a Dask cluster: a scheduler address, or local:N."),
     threads: Optional[int] = typer.Option(

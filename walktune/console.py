@@ -245,7 +245,12 @@ def advice_table(result: TuneResult, output_folder: str | None) -> Table:
             f"as it is, {_predicted(cur)}; {format_factor(res['slowest_parameter'], 2)} if only its overall scale were tuned",
         )
     reparam = result.reparam
-    if reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
+    if reparam is not None and reparam.bends:
+        chosen = ", ".join([f"{t.kind}({t.name})" for t in reparam.transforms if t.kind != "identity"]
+                           + [f"{b.name} -> {b.describe()}" for b in reparam.bends])
+        table.add_row("new coordinates", f"sample z = Q^T W^-1 (B(T(theta)) - m) with T, B: {chosen}; the map is in "
+                      "sampling_map.json (walktune.load_sampling_map); see the transformed-rotated row below")
+    elif reparam is not None and any(t.kind != "identity" for t in reparam.transforms):
         chosen = ", ".join(f"{t.kind}({t.name})" for t in reparam.transforms if t.kind != "identity")
         table.add_row("new coordinates", f"sample z = Q^T W^-1 (T(theta) - m) with T: {chosen}; the map is in sampling_map.json "
                       "(walktune.load_sampling_map); see the transformed-rotated row below")

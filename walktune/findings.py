@@ -298,16 +298,26 @@ def acceptance_mismatch_findings(expected: float, row, factor: float = 1.5) -> l
     ]
 
 
-def curved_ridge_measured(findings: list, row, proposal: np.ndarray, covariance: np.ndarray) -> list:
+def curved_ridge_measured(findings: list, row, proposal: np.ndarray, covariance: np.ndarray, rows=()) -> list:
     """``findings`` with the measured slowness added to an unstraightened ``curved-ridge``.
 
     The tuned run's largest IACT (``row.iact_max``) beside the diffusion-limit
     prediction for a Gaussian posterior of ``covariance`` under ``proposal``
     (:func:`walktune.theory.predicted_parameter_iact`): how much slower the bend
-    made the same proposal.
+    made the same proposal. A ridge straightened by bends gets the measured
+    efficiency of the run in the straightened coordinates (``transformed-rotated``
+    among the proof's ``rows``) beside the tuned covariance's.
     """
     out = []
+    straight = next((r for r in rows if r.proposal == "transformed-rotated"), None)
     for finding in findings:
+        if finding.kind == "curved-ridge" and finding.evidence.get("bends") and straight is not None \
+                and finding.evidence.get("straightened"):
+            finding = replace(finding, message=finding.message + (
+                f" Measured: the {straight.proposal} run in those coordinates reached {straight.ess_per_1000:.3g} "
+                f"(min bulk ESS per 1000 evaluations) against {row.ess_per_1000:.3g} for the {row.proposal} run."),
+                evidence={**finding.evidence, "ess_per_1000_straightened": float(straight.ess_per_1000),
+                          "ess_per_1000_tuned": float(row.ess_per_1000)})
         if finding.kind == "curved-ridge" and not finding.evidence.get("straightened", True) \
                 and np.isfinite(row.iact_max):
             predicted = float(np.max(predicted_parameter_iact(proposal, covariance)))
@@ -421,7 +431,7 @@ def collect_findings(posterior, structure, pilot, pilot_evaluations: int, coords
     findings += [Finding("undecided", "info", [], f"{note}; run longer to let walktune check.", {})
                  for note in checks.undecided]
     tuned = (pilot.scale_factor * optimal_scale(posterior.dim)) ** 2 * pilot.covariance
-    findings += curved_ridge_measured(coords.findings, proof.tuned_row, tuned, pilot.covariance)
+    findings += curved_ridge_measured(coords.findings, proof.tuned_row, tuned, pilot.covariance, proof.rows)
     chosen = next(row for row in proof.rows if row.proposal == recommended)
     # proof-unsettled already says what is missing, with one count that settles both ESS and R-hat.
     findings += proof_length_findings(chosen, proof) or short_chain_findings(chosen, proof.steps[recommended])

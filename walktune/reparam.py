@@ -3,11 +3,12 @@
 The sampler coordinates are
 
     u = T(theta)                      (per-parameter transforms)
-    z = Q^T W^{-1} (u - m)            (whitened, then rotated)
-    theta = T^{-1}(m + W Q z)
+    v = B(u)                          (bends taken out of a curved ridge, :mod:`walktune.bends`; often none)
+    z = Q^T W^{-1} (v - m)            (whitened, then rotated)
+    theta = T^{-1}(B^{-1}(m + W Q z))
 
 with ``m`` the posterior mean and ``W`` the lower Cholesky factor of the
-posterior covariance of ``u``, and ``Q`` an orthogonal matrix (the identity,
+posterior covariance of ``v``, and ``Q`` an orthogonal matrix (the identity,
 or the likelihood-informed basis: its first ``r`` columns span the directions
 the data inform). The density of ``z`` is
 
@@ -52,11 +53,14 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
+from .bends import bend_back, read_bends, straighten
 from .checkpoint import stop_point
 from .errors import WalktuneError
 from .informed import PRIOR_DOMINATED, informed_split, informed_threshold  # noqa: F401 (re-exported)
 
-SCHEMA = "walktune.sampling-map/1"
+SCHEMA = "walktune.sampling-map/2"
+#: Versions this walktune reads: /1 files have no bends.
+READABLE_SCHEMAS = ("walktune.sampling-map/1", SCHEMA)
 KINDS = ("identity", "log", "neglog", "logit")
 
 
@@ -240,6 +244,10 @@ class SamplingMap:
         Number of informed directions (``d`` when no prior was given).
     prior_variance_ratio : ndarray of shape (d,) or None
         ``1 / c``: posterior over prior variance along each column of ``Q``.
+    notes : list of str
+    bends : list of walktune.bends.Bend
+        Quadratic shears taken out of curved ridges before whitening (``mean``
+        and ``chol`` are then those of ``v``, the straightened ``u``).
     """
 
     parameter_names: list
@@ -250,6 +258,7 @@ class SamplingMap:
     informed: int
     prior_variance_ratio: np.ndarray | None = None
     notes: list = field(default_factory=list)
+    bends: list = field(default_factory=list)
 
     def __post_init__(self):
         self._kinds = [t.kind for t in self.transforms]
@@ -279,13 +288,18 @@ class SamplingMap:
         """z for theta, shape (..., d)."""
         theta = np.asarray(theta, dtype=float)
         u = self._apply(forward, theta)
-        return (u - self.mean) @ self._unmap.T
+        return (straighten(u, self.bends) - self.mean) @ self._unmap.T
+
+    def straightened(self, theta) -> np.ndarray:
+        """``v``, the transformed parameters with the bends taken out, for theta of shape (..., d)."""
+        return straighten(self._apply(forward, np.asarray(theta, dtype=float)), self.bends)
 
     def from_sampler_with_jacobian(self, z):
         """theta for z and ``log |det d theta / d z|``, in one pass (the sampler's hot path)."""
         z = np.asarray(z, dtype=float)
         u = z @ self._map_t
         u += self.mean
+        u = bend_back(u, self.bends)  # unit Jacobian: nothing to add
         if self._identity:
             return u, np.full(u.shape[:-1], self._logdet)
         theta = u.copy()
@@ -333,14 +347,15 @@ class SamplingMap:
         return log_density_z
 
     def refit(self, mean_z: np.ndarray, cov_z: np.ndarray, prior_covariance=None, n_independent=None) -> "SamplingMap":
-        """The same transforms with the u-space mean and covariance re-estimated from z draws.
+        """The same transforms and bends with the v-space mean and covariance re-estimated from z draws.
 
-        With z draws of mean ``mean_z`` and covariance ``cov_z``, u has mean
+        With z draws of mean ``mean_z`` and covariance ``cov_z``, v has mean
         ``m + A mean_z`` and covariance ``A cov_z A^T`` (``A = W Q``).
         """
         mean_u = self.mean + self._map @ mean_z
         cov_u = self._map @ cov_z @ self._map.T
-        return fit_map(self.parameter_names, self.transforms, mean_u, cov_u, prior_covariance, n_independent)
+        return fit_map(self.parameter_names, self.transforms, mean_u, cov_u, prior_covariance, n_independent,
+                       bends=self.bends)
 
     def to_dict(self) -> dict:
         return {
@@ -357,6 +372,7 @@ class SamplingMap:
             "informed_dimension": self.informed,
             "posterior_over_prior_variance": None if self.prior_variance_ratio is None else self.prior_variance_ratio.tolist(),
             "notes": self.notes,
+            "bends": [bend.to_dict() for bend in self.bends],
         }
 
 
@@ -388,9 +404,9 @@ def load_sampling_map(path, names=None) -> SamplingMap:
         payload = json.loads(path.read_text())
     except (json.JSONDecodeError, UnicodeDecodeError):
         raise WalktuneError(f"{path} is not valid JSON.") from None
-    if not isinstance(payload, dict) or payload.get("schema") != SCHEMA:
+    if not isinstance(payload, dict) or payload.get("schema") not in READABLE_SCHEMAS:
         found = payload.get("schema") if isinstance(payload, dict) else None
-        raise WalktuneError(f"{path} has schema {found!r}; this walktune reads {SCHEMA}.")
+        raise WalktuneError(f"{path} has schema {found!r}; this walktune reads {', '.join(READABLE_SCHEMAS)}.")
     file_names = list(payload["parameter_names"])
     if names is not None and list(names) != file_names:
         raise WalktuneError(f"{path} is for parameters {file_names}, not the model's {list(names)}.")
@@ -403,6 +419,7 @@ def load_sampling_map(path, names=None) -> SamplingMap:
         chol = np.asarray(payload["W"], dtype=float)
         rotation = np.asarray(payload["Q"], dtype=float)
         informed = int(payload["informed_dimension"])
+        bends = read_bends(payload.get("bends", []), file_names)
     except (KeyError, TypeError, ValueError) as error:
         raise WalktuneError(f"{path} is incomplete or malformed ({error}).") from None
     d = len(file_names)
@@ -416,7 +433,7 @@ def load_sampling_map(path, names=None) -> SamplingMap:
         raise WalktuneError(f"{path}: Q is not orthogonal.")
     ratio = payload.get("posterior_over_prior_variance")
     return SamplingMap(file_names, transforms, mean, chol, rotation, informed,
-                   None if ratio is None else np.asarray(ratio, dtype=float), list(payload.get("notes", [])))
+                   None if ratio is None else np.asarray(ratio, dtype=float), list(payload.get("notes", [])), bends)
 
 
 def build_reparam(
@@ -456,8 +473,14 @@ def build_reparam(
     return fit_map(list(names), choices, u.mean(axis=0), cov_u, prior_covariance, n_independent)
 
 
-def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None) -> SamplingMap:
-    """The map for given transforms, u-space mean and covariance, and (optionally) the prior covariance of theta."""
+def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior_covariance=None, n_independent=None,
+            bends=None) -> SamplingMap:
+    """The map for given transforms (and bends), v-space mean and covariance, and (optionally) the prior covariance of theta.
+
+    The prior covariance is mapped into ``v`` by the transforms' derivatives at
+    the mean; a bend's derivative there is zero up to the offset of ``m`` from
+    its centre, and is left out.
+    """
     kinds = [c.kind for c in choices]
     low = np.array([c.low for c in choices])
     high = np.array([c.high for c in choices])
@@ -475,7 +498,7 @@ def fit_map(names: list, choices: list, mean: np.ndarray, cov: np.ndarray, prior
         notes.append(f"likelihood-informed subspace: {informed} of {d} directions "
                      f"(posterior/prior variance < {split.threshold:.2f}); "
                      f"prior covariance mapped at theta = {np.array2string(theta_mean, precision=4)}")
-    return SamplingMap(list(names), list(choices), mean, chol, rotation, informed, ratio, notes)
+    return SamplingMap(list(names), list(choices), mean, chol, rotation, informed, ratio, notes, list(bends or []))
 
 
 # --------------------------------------------------------------------------- curved ridges
@@ -518,18 +541,25 @@ def curvature_measure(draws: np.ndarray, limit: int = 3000, seed: int = 0) -> np
     return out
 
 
-def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, threshold: float = 0.3) -> list:
+#: Curvature measure above which a parameter is on a curved ridge (common practice: a third of the unexplained
+#: variance explained by the quadratic terms is far beyond a Gaussian's sampling noise on thousands of draws).
+CURVED = 0.3
+
+
+def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, threshold: float = CURVED,
+                          before: np.ndarray | None = None) -> list:
     """``curved-ridge`` where a quadratic regression predicts a parameter much better than a linear one.
 
     Reports the curvature measure and the strongest correlation of the
-    parameters involved before and after the chosen transforms.
+    parameters involved before and after the chosen transforms and bends
+    (``before``: the draws' curvature measure, when already computed).
     """
     from .findings import Finding
 
-    before = curvature_measure(draws)
+    before = curvature_measure(draws) if before is None else before
     if not np.any(before > threshold):
         return []
-    u = np.column_stack([forward(t.kind, draws[:, i], t.low, t.high) for i, t in enumerate(reparam.transforms)])
+    u = reparam.straightened(draws)
     after = curvature_measure(u)
     involved = [i for i in range(len(names)) if before[i] > threshold]
     corr_before = np.corrcoef(draws.T)
@@ -544,7 +574,9 @@ def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, 
         j = max(others, key=lambda k: max(abs(corr_before[i, k]), abs(np.nan_to_num(squares[i, k]))))
         pairs.append((i, j))
     partners = sorted({k for pair in pairs for k in pair})
-    chosen = ", ".join(f"{t.name}: {t.kind}" for t in reparam.transforms if t.kind != "identity") or "none"
+    chosen = ", ".join([f"{t.name}: {t.kind}" for t in reparam.transforms if t.kind != "identity"]
+                       + [f"{b.name} bent along {b.along_name}, {b.name} -> {b.describe()}" for b in reparam.bends])
+    chosen = chosen or "none"
     straightened = bool(np.max(after[involved]) < threshold)
     details = "; ".join(
         f"{names[i]} ~ {names[j]}: curvature {before[i]:.2f} -> {after[i]:.2f}, correlation "
@@ -557,13 +589,15 @@ def curved_ridge_findings(draws: np.ndarray, reparam: SamplingMap, names: list, 
             "warn",
             [names[k] for k in partners],
             f"the posterior bends: a quadratic predicts {', '.join(names[i] for i in involved)} from the others much "
-            f"better than a straight line ({details}). Chosen transforms ({chosen}) "
-            + ("straighten it: sample in the coordinates of sampling_map.json." if straightened else
+            f"better than a straight line ({details}). Chosen transforms{' and bends' if reparam.bends else ''} ({chosen}) "
+            + (("straighten it: sample in the coordinates of sampling_map.json." if not reparam.bends else
+                "take its quadratic part out: the transformed-rotated run is a random walk in the coordinates of "
+                "sampling_map.json.") if straightened else
                "do not straighten it: a fixed Gaussian proposal still mixes, but slowly along the bend (its steps "
                "must stay short across the ridge while the ridge is long), and its covariance must come from "
                "draws that have reached the ends of the bend."),
             {"curvature_before": {names[i]: float(before[i]) for i in involved},
              "curvature_after": {names[i]: float(after[i]) for i in involved},
-             "straightened": straightened},
+             "straightened": straightened, "bends": [bend.to_dict() for bend in reparam.bends]},
         )
     ]

@@ -41,7 +41,8 @@ from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
 from .proof import Option, first_round_steps, run_rounds
 from .recommend import ComparisonRow
-from .reparam import build_reparam, curved_ridge_findings
+from .bends import bend_ridges
+from .reparam import build_reparam, curvature_measure, curved_ridge_findings
 from .unconstrained import UnconstrainedStart, near_bound, pilot_map, run_unconstrained_pilot, unconstrained_mode
 
 #: Up to this dimension the funnel detector also probes the log-density's
@@ -411,8 +412,11 @@ def new_coordinates(posterior: Posterior, pilot: PilotResult, start: StartingPoi
         findings.append(Finding("undecided", "info", [], f"no reparameterisation: {error}", {}))
     if reparam is None:
         return NewCoordinates(None, findings, prior_cov)
-    findings += curved_ridge_findings(pooled, reparam, names)
-    transformed = any(t.kind != "identity" for t in reparam.transforms)
+    curvature = curvature_measure(pooled)
+    if "bend" not in (forbid_transforms if isinstance(forbid_transforms, (list, tuple)) else ()):
+        reparam = bend_ridges(reparam, pooled, curvature, prior_cov, n_independent)
+    findings += curved_ridge_findings(pooled, reparam, names, before=curvature)
+    transformed = any(t.kind != "identity" for t in reparam.transforms) or bool(reparam.bends)
     reduced = prior_terms is not None and 0 < reparam.informed < dim
     if not (transformed or reduced):
         return NewCoordinates(reparam, findings, prior_cov)
@@ -432,7 +436,8 @@ def new_coordinates(posterior: Posterior, pilot: PilotResult, start: StartingPoi
     states = reparam.to_sampler(old_map.from_sampler(z_pilot.states))
     plan = []
     if transformed:
-        plan.append(PlannedRun("transformed-rotated", "random walk in the transformed, whitened coordinates",
+        bent = f", {', '.join(b.name for b in reparam.bends)} straightened" if reparam.bends else ""
+        plan.append(PlannedRun("transformed-rotated", f"random walk in the transformed, whitened coordinates{bent}",
                                (z_pilot.scale_factor * theory.optimal_scale(dim)) ** 2 * np.eye(dim)))
     if reduced:
         r = reparam.informed

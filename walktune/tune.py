@@ -236,6 +236,7 @@ class TuneResult:
             ],
             "reparameterisation": None if self.reparam is None else {
                 "transforms": {t.name: t.kind for t in self.reparam.transforms},
+                "bends": [bend.to_dict() for bend in self.reparam.bends],
                 "informed_dimension": self.reparam.informed,
                 "file": "sampling_map.json",
             },
@@ -533,7 +534,7 @@ def tune(
     transforms : dict, optional
         ``{name: kind}`` forcing a transform (identity, log, neglog, logit).
     forbid_transforms : list of str, optional
-        Transform kinds never to choose.
+        Transform kinds never to choose; ``"bend"`` among them: no bends of a curved ridge (walktune.bends).
     checkpoint : walktune.checkpoint.Checkpoint, optional
         Records every evaluation and saves it at stage ends and intervals;
         when it was opened with ``resume=True`` the job replays its record and
