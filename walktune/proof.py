@@ -205,6 +205,25 @@ def _affordable_steps(options: list, left: int, chains: int) -> int:
     return low
 
 
+def _within_budget(active: list, chosen, wanted: int, left: int, chains: int) -> tuple:
+    """The runs of the next round, the common length they can reach within ``left`` evaluations, and the target.
+
+    When the budget cannot take every active run past the recommended one's length, contenders behind it are
+    brought up towards its length (a comparison of like-for-like runs), or, when even that is out of reach, the
+    recommended run goes on alone.
+    """
+    affordable = _affordable_steps(active, left, chains)
+    if affordable - chosen.steps >= MIN_ROUND_STEPS:
+        return active, affordable, wanted
+    behind = [o for o in active if o.steps + MIN_ROUND_STEPS <= chosen.steps]
+    if behind:
+        catch_up = min(chosen.steps, _affordable_steps(behind, left, chains))
+        if catch_up - min(o.steps for o in behind) >= MIN_ROUND_STEPS:
+            return behind, catch_up, catch_up
+    alone = [o for o in active if o.name == chosen.proposal]
+    return alone, _affordable_steps(alone, left, chains), wanted
+
+
 @dataclass(frozen=True)
 class Rounds:
     """What the rounds did: the final rows, how many rounds, the budget, and whether the proof settled."""
@@ -239,8 +258,8 @@ def run_rounds(options: list, budget: int, chains: int, first_steps: int, tracke
         wanted = _next_steps(chosen, chosen.steps, chains)
         others_left = int(OTHERS_SHARE * budget) - sum(o.run.evaluations for o in options if o.name != chosen.proposal)
         active = _to_extend([o for o in options if o.name in in_play], rows, chosen, wanted, chains, others_left)
-        affordable = _affordable_steps(active, budget - spent, chains)
-        if settled(chosen) or affordable - chosen.steps < MIN_ROUND_STEPS:
+        active, affordable, wanted = _within_budget(active, chosen, wanted, budget - spent, chains)
+        if settled(chosen) or affordable - min(o.steps for o in active) < MIN_ROUND_STEPS:
             end = "settled" if settled(chosen) else "budget"
             rows_out[:] = measured_rows(options, {o.name: end if o.name in in_play else "slower" for o in options})
             tracker("proof", spent, spent)
