@@ -22,8 +22,17 @@ speed-up over it a lower bound. Everywhere else a short run's ESS is as
 likely under- as over-estimated, and a speed-up resting on one is imprecise.
 
 The same comparison sizes the proof (:mod:`walktune.proof`): a run measured
-slower than another beyond the error is stopped (:func:`in_contention`), and
-the recommended run is extended until :func:`settled`.
+slower than another beyond the error is stopped (:func:`in_contention`), the
+recommended run is extended until :func:`settled`, and a run that could still
+beat it (:func:`could_beat`) goes along with it. Among the runs within the
+error of each other, one with a reliable ESS measured faster than the simpler
+one is recommended (:func:`_by_measurement`), and the message says the
+difference is not resolved.
+
+A short run can still overstate a run's efficiency where its chain is not
+geometrically ergodic: a random walk in the user's parameters beside a density
+unbounded at a bound holds still ever longer as it nears the bound, and its ESS
+per evaluation falls as the run grows (docs/benchmarks.md, inspection_line).
 
 References
 ----------
