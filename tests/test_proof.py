@@ -118,3 +118,24 @@ def test_rounds_are_deterministic_given_the_seed():
     assert a.to_dict()["comparison"] == b.to_dict()["comparison"]
     for name in a.runs:
         np.testing.assert_array_equal(a.runs[name].draws, b.runs[name].draws)
+
+
+def test_runs_in_new_coordinates_carry_the_users_log_density_at_their_draws():
+    """Every run's log-densities are the user's at its draws, whatever coordinates it ran in.
+
+    Reference: the closed-form Beta and Gamma log-densities of benchmarks/awkward_targets.py's inspection_line
+    (scipy.stats.beta, scipy.stats.gamma). The detectors pool runs and compare their log-densities
+    (walktune.funnels.chains_apart); a run in new coordinates evaluates log p(theta(z)) + log |det d theta / d z|.
+    """
+    import awkward_targets as A
+
+    target = A.build("inspection_line")
+    result = walktune.tune(target.log_density, target.start, names=target.names, bounds=target.bounds, seed=1,
+                           vectorized=True)
+    run = result.runs["transformed-rotated"]
+    expected = target.log_density(run.draws.reshape(-1, target.dim)).reshape(run.log_density.shape)
+    assert np.allclose(run.log_density, expected, rtol=1e-9, atol=1e-6)
+    # The run in the user's parameters too, for comparison (the engine stores the evaluator's values).
+    tuned = result.runs["tuned-covariance"]
+    user = target.log_density(tuned.draws.reshape(-1, target.dim)).reshape(tuned.log_density.shape)
+    assert np.allclose(tuned.log_density, user, rtol=1e-9, atol=1e-6)

@@ -279,3 +279,34 @@ def test_a_lower_bound_over_a_stuck_baseline_is_stated_as_such():
                             ess_per_1000=108.0)
     text = R._message(tuned, [], baseline, None, None)
     assert "at least 19.6x that of single-step (a lower bound" in text and "no speed-up" not in text
+
+
+def test_within_error_a_row_measured_faster_with_a_reliable_ess_is_recommended_and_said_unresolved():
+    # Issue 12, item 2: never recommend a row that a measured row shows slower. inspection_line's proof (seed 1)
+    # ended with both runs at 2,799 steps, reliable: tuned-covariance 29.96, transformed-rotated 31.10 per 1000.
+    rows = [_row("single-step", 5.45, iact=199, steps=200, rhat=3.6, reliable=False),
+            _row("tuned-covariance", 29.96, iact=37.1, steps=2799, rhat=1.015, speedup=5.5),
+            _row("transformed-rotated", 31.10, iact=18.5, steps=2799, rhat=1.011, speedup=5.7)]
+    chosen = R.recommend(rows)
+    assert chosen.proposal == "transformed-rotated" and not chosen.resolved and chosen.close == ["tuned-covariance"]
+    assert "Not resolved: tuned-covariance measured within the error of it" in chosen.message
+    # An imprecise figure above the preferred row's is what the proof extends, not what it recommends.
+    imprecise = rows[:2] + [_row("transformed-rotated", 40.0, iact=31.7, steps=200, rhat=1.12, reliable=False)]
+    assert R.recommend(imprecise).proposal == "tuned-covariance"
+    # The user's current proposal is kept while nothing is measured faster beyond the error.
+    assert R.recommend([_row("current", 29.96), rows[2]]).proposal == "current"
+
+
+def test_a_contender_goes_along_while_its_upper_end_lies_above_the_leader():
+    # Relative errors from Sokal (1997) through ess_relative_error: IACT 31.7 over 4 x 200 draws gives 0.63.
+    leader = _row("tuned-covariance", 35.99, iact=42, steps=200, rhat=1.10, reliable=False)
+    close = _row("transformed-rotated", 33.91, iact=31.7, steps=200, rhat=1.12, reliable=False)
+    assert abs(close.ess_relative_error - 0.63) < 0.01
+    assert R.could_beat(close, leader)  # 33.91 exp(0.63) is above 35.99
+    # A run measured ten times slower after a first round is not taken along: 3.6 exp(0.63) is far below.
+    assert not R.could_beat(_row("step-sizes", 3.6, iact=31.7, steps=200, reliable=False), leader)
+    # Nor while the leader's chains disagree (its figure cannot be compared yet), nor a run that has not mixed.
+    assert not R.could_beat(close, _row("tuned-covariance", 35.99, iact=42, steps=200, rhat=1.6, reliable=False))
+    stuck = _row("single-step", 90.0, iact=3000, steps=200, rhat=3.5, reliable=False)
+    assert not stuck.mixed and not R.could_beat(stuck, leader)
+    assert not R.could_beat(leader, leader)

@@ -31,6 +31,7 @@ from .geometry import (
 from .modes import TableScope, minor_mode_finding, table_scope
 from .pilot import PilotResult
 from .posterior import Posterior
+from .recommend import NEW_COORDINATE_RUNS
 from .stages import MAX_CURVATURE_PROBE_DIM, Budget, Proof, StartingPoints
 
 
@@ -111,8 +112,11 @@ def _funnel_checks(posterior: Posterior, proof: Proof, pilot: PilotResult, budge
     """Varying scale in the draws of the full-length proof runs; the model's curvature when they show none and the
     budget allows."""
     counted, names, dim = posterior.counted, posterior.names, posterior.dim
-    # The funnel detectors compare whole chains (fifths filled by several chains): the runs of full length.
-    full = proof.full_length_runs.values()
+    # The funnel detectors compare whole chains (fifths filled by several chains): the runs of full length, those
+    # in the user's parameters when there are any (the geometry a fixed step in these parameters meets; a run in new
+    # coordinates moves along the scale by other steps, and its chains beside theirs hide where those get stuck).
+    full = proof.full_length_runs
+    full = [run for name, run in full.items() if name not in NEW_COORDINATE_RUNS] or list(full.values())
     proof_draws = np.concatenate([run.draws for run in full], axis=0)
     proof_log_density = np.concatenate([run.log_density for run in full], axis=0)
     tau_median = within_chain_iact(proof_draws, np.median)

@@ -10,11 +10,14 @@ from its first proof step (:func:`walktune.recommend.row_from_run`), and
   its too-high ESS below the other's lower end) is stopped: it is plainly
   slower, and the speed-up over it is what it is at that length (a lower bound
   when it has not mixed);
-* the runs still in contention (:func:`walktune.recommend.in_contention`) are
-  continued with the same fixed proposal to a common length, until the run
-  that would be recommended (:func:`walktune.recommend.recommend`) has a
-  reliable ESS and R-hat below 1.01 (:func:`walktune.recommend.settled`), or
-  the proof's budget is spent.
+* the run that would be recommended (:func:`walktune.recommend.recommend`) is
+  continued with the same fixed proposal, and with it to a common length every
+  run whose upper confidence bound lies above its efficiency once its chains
+  agree (:func:`walktune.recommend.could_beat`: only the contender's own longer
+  run can settle that), until the recommended run has a reliable ESS and R-hat below
+  1.01 (:func:`walktune.recommend.settled`) or the proof's budget is spent;
+  the other runs still in contention (:func:`walktune.recommend.in_contention`)
+  go along only within :data:`OTHERS_SHARE` of the budget.
 
 The next length is what the recommended run's measures say it needs
 (:func:`walktune.recommend.evaluations_still_needed`: ``IACTS_FOR_PRECISE_ESS``
@@ -34,6 +37,7 @@ import numpy as np
 from .diagnostics import measure_chains
 from .engine import Chains, sample
 from .recommend import (
+    could_beat,
     evaluations_still_needed,
     in_contention,
     recommend,
@@ -103,8 +107,23 @@ class Option:
         self.start, self.start_log_density = part.last, part.log_density[:, -1].copy()
         whole = _joined(self.parts)
         if self.to_user is not None:
-            whole = replace(whole, draws=self.to_user(whole.draws))  # measured in the user's own parameters
+            whole = in_user_parameters(whole, self.to_user)  # measured in the user's own parameters
         self.run, self.stats = whole, in_steps(measure_chains(whole.draws), self.thin)
+
+
+def in_user_parameters(run: Chains, to_user) -> Chains:
+    """A run in new coordinates with its draws and log-densities in the user's parameters.
+
+    ``to_user`` is the map's ``from_sampler``; where the map is a
+    :class:`walktune.reparam.SamplingMap`, ``log p(theta) = log p_z(z) - log |det d theta / d z|``
+    so that every run's log-densities compare with every other's (the detectors pool runs: the funnel checks
+    set aside chains whose log-densities lie apart, :func:`walktune.funnels.chains_apart`).
+    """
+    with_jacobian = getattr(getattr(to_user, "__self__", None), "from_sampler_with_jacobian", None)
+    if with_jacobian is None:
+        return replace(run, draws=to_user(run.draws))
+    theta, log_jacobian = with_jacobian(run.draws)
+    return replace(run, draws=theta, log_density=run.log_density - log_jacobian)
 
 
 def _joined(parts: list) -> Chains:
@@ -161,12 +180,14 @@ def _next_steps(chosen, steps: int, chains: int) -> int:
 
 
 def _to_extend(options: list, rows: list, chosen, steps: int, chains: int, others_left: int) -> list:
-    """The recommended run, and the runs in contention its longer run alone would not be expected to resolve,
-    as far as ``others_left`` evaluations (their share of the budget) reach."""
+    """The recommended run; the runs whose upper confidence bound lies above its efficiency (:func:`could_beat`),
+    whatever the others' share; and the other runs in contention its longer run alone would not be expected to
+    resolve, as far as ``others_left`` evaluations (their share of the budget) reach."""
     by_name = {row.proposal: row for row in rows}
     out = []
     for option in options:
-        if option.name == chosen.proposal:
+        if option.name == chosen.proposal or could_beat(by_name[option.name], chosen):
+            # Only its own longer run can show whether it is faster: the leader's longer run cannot.
             out.append(option)
         elif not resolved_by_extending(chosen, by_name[option.name], steps * chains):
             if option.cost(steps, chains) <= others_left:
@@ -182,6 +203,25 @@ def _affordable_steps(options: list, left: int, chains: int) -> int:
         mid = (low + high) // 2
         low, high = (mid, high) if sum(o.cost(mid, chains) for o in options) <= left else (low, mid)
     return low
+
+
+def _within_budget(active: list, chosen, wanted: int, left: int, chains: int) -> tuple:
+    """The runs of the next round, the common length they can reach within ``left`` evaluations, and the target.
+
+    When the budget cannot take every active run past the recommended one's length, contenders behind it are
+    brought up towards its length (a comparison of like-for-like runs), or, when even that is out of reach, the
+    recommended run goes on alone.
+    """
+    affordable = _affordable_steps(active, left, chains)
+    if affordable - chosen.steps >= MIN_ROUND_STEPS:
+        return active, affordable, wanted
+    behind = [o for o in active if o.steps + MIN_ROUND_STEPS <= chosen.steps]
+    if behind:
+        catch_up = min(chosen.steps, _affordable_steps(behind, left, chains))
+        if catch_up - min(o.steps for o in behind) >= MIN_ROUND_STEPS:
+            return behind, catch_up, catch_up
+    alone = [o for o in active if o.name == chosen.proposal]
+    return alone, _affordable_steps(alone, left, chains), wanted
 
 
 @dataclass(frozen=True)
@@ -218,8 +258,8 @@ def run_rounds(options: list, budget: int, chains: int, first_steps: int, tracke
         wanted = _next_steps(chosen, chosen.steps, chains)
         others_left = int(OTHERS_SHARE * budget) - sum(o.run.evaluations for o in options if o.name != chosen.proposal)
         active = _to_extend([o for o in options if o.name in in_play], rows, chosen, wanted, chains, others_left)
-        affordable = _affordable_steps(active, budget - spent, chains)
-        if settled(chosen) or affordable - chosen.steps < MIN_ROUND_STEPS:
+        active, affordable, wanted = _within_budget(active, chosen, wanted, budget - spent, chains)
+        if settled(chosen) or affordable - min(o.steps for o in active) < MIN_ROUND_STEPS:
             end = "settled" if settled(chosen) else "budget"
             rows_out[:] = measured_rows(options, {o.name: end if o.name in in_play else "slower" for o in options})
             tracker("proof", spent, spent)

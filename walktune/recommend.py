@@ -22,8 +22,17 @@ speed-up over it a lower bound. Everywhere else a short run's ESS is as
 likely under- as over-estimated, and a speed-up resting on one is imprecise.
 
 The same comparison sizes the proof (:mod:`walktune.proof`): a run measured
-slower than another beyond the error is stopped (:func:`in_contention`), and
-the recommended run is extended until :func:`settled`.
+slower than another beyond the error is stopped (:func:`in_contention`), the
+recommended run is extended until :func:`settled`, and a run that could still
+beat it (:func:`could_beat`) goes along with it. Among the runs within the
+error of each other, one with a reliable ESS measured faster than the simpler
+one is recommended (:func:`_by_measurement`), and the message says the
+difference is not resolved.
+
+A short run can still overstate a run's efficiency where its chain is not
+geometrically ergodic: a random walk in the user's parameters beside a density
+unbounded at a bound holds still ever longer as it nears the bound, and its ESS
+per evaluation falls as the run grows (docs/benchmarks.md, inspection_line).
 
 References
 ----------
@@ -43,6 +52,10 @@ import numpy as np
 from .diagnostics import IACTS_FOR_PRECISE_ESS, WINDOW_PER_IACT
 #: Normal quantile for a resolved difference (two-sided, about 95%).
 Z_RESOLVED = 2.0
+#: Standard errors of a contender's own figure within which it may still lie above the leader's (one-sided, about
+#: 16%): a plausible winner, which goes along with the leader (:func:`could_beat`). Two, as for a resolved difference,
+#: would take along first-round runs measured ten times slower (their relative error is above 1 after 200 steps).
+Z_CONTENDER = 1.0
 #: R-hat far above 1: together with half-chains no longer than one estimated IACT, chains that have not mixed at all.
 STUCK_RHAT = 2.0
 #: R-hat above which a run's chains disagree too much for its ESS to be compared with another run's
@@ -58,6 +71,8 @@ RHAT_SETTLED = 1.01
 #: no change over a change, then the tuned covariance (theory predicts it at least as fast as
 #: per-parameter or single steps), then the new coordinates (a map to carry along).
 PREFERENCE = ("current", "tuned-covariance", "step-sizes", "single-step", "transformed-rotated", "reduced-basis")
+#: The rows whose proposal runs in the new coordinates of sampling_map.json.
+NEW_COORDINATE_RUNS = ("transformed-rotated", "reduced-basis")
 
 
 def format_factor(value, digits: int = 3) -> str:
@@ -193,26 +208,60 @@ def recommend(rows: list) -> Recommendation:
     """Choose the row to recommend from the proof's comparison ``rows`` (the baseline first).
 
     The candidates are the runs no other run was measured faster than
-    (:func:`measured_faster`), among those that mixed when any did; the first
-    candidate in :data:`PREFERENCE` is recommended.
+    (:func:`measured_faster`), among those that mixed when any did; the one
+    recommended is chosen by :func:`_by_measurement`.
     """
     usable = [row for row in rows if np.isfinite(row.ess_per_1000) and row.ess_per_1000 > 0] or list(rows)
     candidates = [row for row in usable if not any(measured_faster(other, row) for other in usable)]
     if any(row.mixed for row in candidates):
         candidates = [row for row in candidates if row.mixed]
-    rank = {name: k for k, name in enumerate(PREFERENCE)}
-    chosen = min(candidates, key=lambda row: (rank.get(row.proposal, len(PREFERENCE)), -row.ess_per_1000))
+    chosen = _by_measurement(candidates)
     close = [row for row in candidates if row is not chosen]
     baseline = rows[0]
     contender = max(close, key=lambda row: row.ess_per_1000) if close else None
     to_resolve = _evaluations_to_resolve(chosen, contender) if contender is not None else None
-    coordinates = "sampling_map.json" if chosen.proposal in ("transformed-rotated", "reduced-basis") else "parameters"
+    coordinates = "sampling_map.json" if chosen.proposal in NEW_COORDINATE_RUNS else "parameters"
     message = _message(chosen, close, baseline, contender, to_resolve)
     return Recommendation(
         proposal=chosen.proposal, keep_current=chosen.proposal == "current", resolved=not close,
         close=[row.proposal for row in close], speedup=float(chosen.speedup), speedup_kind=chosen.speedup_kind,
         baseline=baseline.proposal, evaluations_to_resolve=to_resolve, coordinates=coordinates, message=message,
     )
+
+
+def _by_measurement(candidates: list):
+    """The candidate to recommend: the first in :data:`PREFERENCE`, unless a candidate with a reliable ESS was
+    measured faster than it (within the error; issue 12: never recommend a row a measured row shows slower).
+
+    The measurement supports a candidate over the preferred one only when its own ESS is reliable: an imprecise
+    figure above the preferred one's is what the proof extends (:func:`could_beat`), not what it recommends. The
+    user's current proposal keeps its place: keeping it costs nothing, and no row was measured faster beyond the error.
+    """
+    rank = {name: k for k, name in enumerate(PREFERENCE)}
+    chosen = min(candidates, key=lambda row: (rank.get(row.proposal, len(PREFERENCE)), -row.ess_per_1000))
+    measured = [row for row in candidates if row.mixed and row.ess_reliable]
+    if chosen.proposal == "current" or not measured:
+        return chosen
+    best = max(measured, key=lambda row: (row.ess_per_1000, -rank.get(row.proposal, len(PREFERENCE))))
+    return best if best.ess_per_1000 > chosen.ess_per_1000 else chosen
+
+
+def could_beat(row, leader) -> bool:
+    """Whether ``row`` could be faster than ``leader``: its upper confidence bound lies above the leader's efficiency,
+    so only its own longer run can settle the comparison (the leader's longer run alone cannot show it slower).
+
+    The upper end is ``e exp(Z_CONTENDER se)`` (:data:`Z_CONTENDER`; ``se`` Sokal's relative error,
+    :func:`ess_relative_error`). Only a run that mixed counts (the ESS of one that has not is too high), and only
+    beside a leader whose chains agree (R-hat at most :data:`DISAGREEING_RHAT`): while they disagree its figure
+    cannot be compared with another run's, and its own longer run is what the proof needs first.
+    """
+    if row.proposal == leader.proposal or not row.mixed or not leader.max_rhat <= DISAGREEING_RHAT:
+        return False
+    er, el = _efficiency(row), _efficiency(leader)
+    if not (er > 0 and np.isfinite(er)) or not (el > 0 and np.isfinite(el)):
+        return False
+    error = row.ess_relative_error if np.isfinite(row.ess_relative_error) else np.inf
+    return bool(np.log(er / el) + Z_CONTENDER * error > 0)
 
 
 def in_contention(rows: list) -> list:
