@@ -35,7 +35,7 @@ from .errors import TargetError, WalktuneError
 from .findings import Finding
 from .geometry import climb, separated, within_chain_iact
 from .improper import find_spread_runaway, runaway_message
-from .mode import ModeFit, find_mode
+from .mode import ModeFit, find_mode, hessians_affordable
 from .modes import ModeMass, weigh_start_modes
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
@@ -257,14 +257,18 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
     check_parameters_used(posterior, scales)
     tracker("mode", 0, 1)  # after the checks of the model, which end in a one-line error
-    mode_budget = max(20 * (dim + 1), budget.pilot // 3 - 2 * dim * dim)
-    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names)
+    # Hessians that leave the pilot its two shortest stages (docs/method.md, The mode search at large d).
+    hessians = hessians_affordable(dim, budget.pilot - _minimum_pilot(dim, budget.chains))
+    mode_budget = max(20 * (dim + 1), budget.pilot // 3 - (2 * dim * dim if hessians else 0))
+    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names,
+                    evaluate_batch=counted.finite_values, hessians=hessians)
     tracker("mode", 1, 1)
     initial = _initial_covariance(fit, bounds, start)
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     optimizer_fit = fit
-    fit, main, centres, minor = weigh_start_modes(counted.scalar, fit, other_modes, initial, bounds)
+    fit, main, centres, minor = weigh_start_modes(counted.scalar, fit, other_modes, initial, bounds,
+                                                  counted.finite_values)
     if fit is not optimizer_fit:
         initial = _initial_covariance(fit, bounds, start)
         tracker.estimate(initial, 1.0, "the Laplace approximation at the heaviest mode")
