@@ -119,7 +119,7 @@ def test_batched_gradient_of_lbfgsb_gives_the_same_search_bit_for_bit():
     np.testing.assert_array_equal(fit_one.mode, fit_many.mode)
     np.testing.assert_array_equal(fit_one.hessian, fit_many.hessian)
     assert fit_one.message == fit_many.message and one.points == many.points
-    if mode._LBFGSB_WORKERS:
+    if mode.LBFGSB_WORKERS:
         assert d in many.batches  # whole gradients in one batch
 
 

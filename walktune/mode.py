@@ -36,7 +36,7 @@ FD_BLOCK_BYTES = 2**26
 
 #: L-BFGS-B takes a ``workers`` map for its finite-difference gradient from scipy 1.16 on; before, it
 #: evaluates the gradient's points one at a time (the same points and values, only slower).
-_LBFGSB_WORKERS = tuple(int(part) for part in scipy.__version__.split(".")[:2]) >= (1, 16)
+LBFGSB_WORKERS = tuple(int(part) for part in scipy.__version__.split(".")[:2]) >= (1, 16)
 
 
 @dataclass(frozen=True)
@@ -344,7 +344,7 @@ def _optimize(objective, start, start_value, bounds, scales, max_evaluations):
         (None if lo is None else lo / s, None if hi is None else hi / s) for (lo, hi), s in zip(finite_bounds, scales)
     ]
     lbfgsb = {"maxfun": max_evaluations, "eps": 1e-7}
-    if _LBFGSB_WORKERS:
+    if LBFGSB_WORKERS:
         lbfgsb["workers"] = objective.gradient_map(scales)
     attempts = [
         ("L-BFGS-B", lbfgsb),

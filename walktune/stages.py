@@ -236,7 +236,8 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     for point in points:
         if not np.isfinite(counted.scalar(point)):
             continue
-        end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
+        end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1),
+                                      log_density_batch=counted.finite_values)
         if not (converged and np.isfinite(value)):
             continue
         if all(separated(counted.scalar, end, mode, value, lp) for mode, lp in known):
