@@ -163,3 +163,25 @@ def test_stop_request_during_the_hessian_is_honoured_between_blocks(tmp_path, sm
         frames.append(tb.tb_frame.f_code.co_name)
         tb = tb.tb_next
     assert "stop_point" in frames and "evaluate" not in frames
+
+
+def test_a_vectorised_log_prior_gives_its_covariance_from_a_batched_hessian():
+    # Closed form: log pi(theta) = -theta' Q theta / 2 has covariance Q^-1; one-point and batched Hessians agree.
+    from walktune.posterior import PriorTerms
+
+    d = 6
+    q = _spd(d, 6)
+    names, bounds = [f"w{i}" for i in range(d)], np.tile([-np.inf, np.inf], (d, 1))
+    calls = []
+
+    def batched(theta):
+        theta = np.atleast_2d(theta)
+        calls.append(theta.shape[0])
+        return -0.5 * np.array([t @ q @ t for t in theta])  # row by row: the same values either way
+
+    vectorised = PriorTerms(batched, None, names, bounds, vectorized=True).covariance(np.full(d, 0.2), np.ones(d))
+    one_point = PriorTerms(lambda t: -0.5 * t @ q @ t, None, names, bounds, vectorized=False).covariance(
+        np.full(d, 0.2), np.ones(d))
+    assert max(calls) > 1  # the shifted points went in batches
+    np.testing.assert_array_equal(vectorised, one_point)
+    np.testing.assert_allclose(vectorised, np.linalg.inv(q), rtol=1e-5)

@@ -281,7 +281,10 @@ class PriorTerms:
                 out = np.asarray(self.log_prior(theta[None, :] if self.vectorized else theta), dtype=float).reshape(-1)[0]
                 return float(out)
 
-            hessian = finite_difference_hessian(value, centre, np.maximum(posterior_sd, 1e-12))
+            batch = None
+            if self.vectorized:  # the Hessian's 2 d^2 points in blocks, each one call
+                batch = lambda points: np.asarray(self.log_prior(points), dtype=float).reshape(-1)  # noqa: E731
+            hessian = finite_difference_hessian(value, centre, np.maximum(posterior_sd, 1e-12), evaluate_batch=batch)
             laplace = laplace_covariance(hessian)
             if laplace is not None:
                 return laplace
