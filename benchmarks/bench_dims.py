@@ -200,7 +200,7 @@ def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
             count, now = int(counter[0]), time.perf_counter()
             if count != seen:
                 seen, still_since = count, now
-            if base is None and now - last_poll > 0.2:
+            if base is None and now - last_poll > 0.05:
                 last_poll = now
                 if moment["after"] is None or _checkpoint_stage(out) == moment["after"]:
                     base = count
@@ -208,7 +208,9 @@ def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
                 break
             time.sleep(0.005)
         if process.poll() is not None:
-            return {"error": "finished before the signal"}
+            tail = process.stderr.read().strip().splitlines()[-1:]
+            return {"error": "finished before the signal", "exit_code": process.returncode, "stderr": tail,
+                    "last_stage": _checkpoint_stage(out)}
         cpu_before = _cpu_seconds(process.pid)
         sent = time.perf_counter()
         process.send_signal(signal.SIGINT)
