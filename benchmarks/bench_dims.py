@@ -4,6 +4,7 @@
     python benchmarks/bench_dims.py --cases 100,300 # some of them (see CASES)
     python benchmarks/bench_dims.py --interrupt     # Ctrl-C latency of `walktune tune` at d = 300
     python benchmarks/bench_dims.py --interrupt --moments "mode search: Hessian"  # some of the moments
+    python benchmarks/bench_dims.py --hessian 300,1000  # the Hessian's points batched against one at a time
 
 The target is a Gaussian with a random rotation (scipy.stats.ortho_group,
 seeded) and variances spread log-evenly over four decades (condition 1e4),
@@ -141,6 +142,36 @@ def in_child(name: str) -> dict:
     return {"case": name, **json.loads(output.stdout.strip().splitlines()[-1])}
 
 
+# --------------------------------------------------------------------------- the mode search's Hessian
+
+
+def hessian_cost(dim: int, blocks: int = 4, one_point: int = 2000) -> dict:
+    """CPU seconds per evaluation of the Hessian's points through the counted posterior: one point at a time
+    (as before batching) against blocks of the batched Hessian (walktune.mode), and the whole Hessian's
+    ``2 d^2 + 1`` evaluations projected from each (the same process, the same model)."""
+    from walktune import mode
+    from walktune.evaluators import InProcessEvaluator
+    from walktune.posterior import CountedEvaluator
+
+    log_density, _ = gaussian(dim)
+    counted = CountedEvaluator(InProcessEvaluator(log_density, True), np.tile([-np.inf, np.inf], (dim, 1)))
+    point, h = np.ones(dim), mode.FD_STEP * np.ones(dim)
+    first, second = np.tril_indices(dim, -1)
+    rows = min(max(1, mode.FD_BLOCK_BYTES // (8 * dim)), 4 * first.size // blocks)
+    cpu = time.process_time()
+    for k in range(blocks):
+        counted.finite_values(mode._pair_points(point, h, first, second, k * rows, (k + 1) * rows))
+    batched = (time.process_time() - cpu) / (blocks * rows)
+    cpu = time.process_time()
+    for x in mode._pair_points(point, h, first, second, 0, one_point):
+        counted.scalar(x)
+    single = (time.process_time() - cpu) / one_point
+    total = 2 * dim * dim + 1
+    return {"dim": dim, "block_points": rows, "cpu_us_per_evaluation_batched": round(1e6 * batched, 2),
+            "cpu_us_per_evaluation_one_point": round(1e6 * single, 2), "ratio": round(single / batched, 1),
+            "hessian_cpu_s_batched": round(total * batched, 1), "hessian_cpu_s_one_point": round(total * single, 1)}
+
+
 # --------------------------------------------------------------------------- Ctrl-C latency
 
 MODEL = '''
@@ -264,7 +295,12 @@ def main() -> None:
     parser.add_argument("--dim", type=int, default=300)
     parser.add_argument("--budget", type=int, default=None)
     parser.add_argument("--moments", default=None, help="with --interrupt: labels of MOMENTS, comma-separated")
+    parser.add_argument("--hessian", default=None, help="dimensions, comma-separated: the Hessian's cost per evaluation")
     args = parser.parse_args()
+    if args.hessian:
+        for dim in args.hessian.split(","):
+            print(json.dumps(hessian_cost(int(dim))), flush=True)
+        return
     if args.child:
         if args.child not in CASES:
             dim, _, budget = args.child.partition("-")
