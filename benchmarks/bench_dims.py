@@ -272,8 +272,8 @@ MOMENTS = [
     # the pilot ending at about 249,200 evaluations.
     {"label": "new coordinates", "after": None, "more": 249_000, "idle": 0.3},
     {"label": "proof", "after": None, "more": 270_000, "idle": 0.0},
-    {"label": "after the proof: its diagnostics", "after": "tuned-covariance", "more": 0, "idle": 0.3},
-    {"label": "after the proof: geometry checks", "after": "tuned-covariance", "more": 0, "idle": 6.0},
+    {"label": "after the proof: its diagnostics", "after": "proof", "more": 0, "idle": 0.3},
+    {"label": "after the proof: geometry checks", "after": "proof", "more": 0, "idle": 6.0},
 ]
 
 
