@@ -5,6 +5,7 @@
     python benchmarks/bench_dims.py --interrupt     # Ctrl-C latency of `walktune tune` at d = 300
     python benchmarks/bench_dims.py --interrupt --moments "mode search: Hessian"  # some of the moments
     python benchmarks/bench_dims.py --hessian 300,1000  # the Hessian's points batched against one at a time
+    python benchmarks/bench_dims.py --mode-search 1000  # the job's mode search alone, at the trustworthy budget
 
 The target is a Gaussian with a random rotation (scipy.stats.ortho_group,
 seeded) and variances spread log-evenly over four decades (condition 1e4),
@@ -172,6 +173,34 @@ def hessian_cost(dim: int, blocks: int = 4, one_point: int = 2000) -> dict:
             "hessian_cpu_s_batched": round(total * batched, 1), "hessian_cpu_s_one_point": round(total * single, 1)}
 
 
+def mode_search_cost(dim: int) -> dict:
+    """The job's mode search alone at the least budget the statement calls trustworthy, as
+    :func:`walktune.stages.find_start` runs it (through the counted posterior): evaluations, time, memory,
+    and the Laplace covariance's predicted slow-down against the true covariance."""
+    from walktune import theory
+    from walktune.evaluators import InProcessEvaluator
+    from walktune.mode import find_mode, hessians_affordable
+    from walktune.planning import budget_statement, trustworthy_budget
+    from walktune.posterior import CountedEvaluator
+    from walktune.stages import Budget, _minimum_pilot
+
+    budget = Budget.plan(trustworthy_budget(dim, 4), dim, 4)
+    log_density, cov = gaussian(dim)
+    counted = CountedEvaluator(InProcessEvaluator(log_density, True), np.tile([-np.inf, np.inf], (dim, 1)))
+    hessians = hessians_affordable(dim, budget.pilot - _minimum_pilot(dim, 4))
+    share = max(20 * (dim + 1), budget.pilot // 3 - (2 * dim * dim if hessians else 0))
+    t0, cpu0 = time.perf_counter(), time.process_time()
+    fit = find_mode(counted.scalar, np.ones(dim), counted.bounds, np.ones(dim), share,
+                    evaluate_batch=counted.finite_values, hessians=hessians)
+    wall, cpu = time.perf_counter() - t0, time.process_time() - cpu0
+    slow = theory.slowdown(fit.laplace_covariance, cov) if fit.laplace_covariance is not None else None
+    return {"dim": dim, "budget": budget.total, "statement": budget_statement(budget).message, "hessians": hessians,
+            "optimizer_share": share, "evaluations": counted.count, "seconds": round(wall, 1),
+            "cpu_seconds": round(cpu, 1), "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            "message": fit.message, "max_abs_mode": float(np.abs(fit.mode).max()),
+            "laplace_slowdown": None if slow is None else [slow.slowest_parameter, slow.slowest_direction]}
+
+
 # --------------------------------------------------------------------------- Ctrl-C latency
 
 MODEL = '''
@@ -301,7 +330,12 @@ def main() -> None:
     parser.add_argument("--budget", type=int, default=None)
     parser.add_argument("--moments", default=None, help="with --interrupt: labels of MOMENTS, comma-separated")
     parser.add_argument("--hessian", default=None, help="dimensions, comma-separated: the Hessian's cost per evaluation")
+    parser.add_argument("--mode-search", default=None, help="dimensions, comma-separated: the job's mode search alone")
     args = parser.parse_args()
+    if args.mode_search:
+        for dim in args.mode_search.split(","):
+            print(json.dumps(mode_search_cost(int(dim))), flush=True)
+        return
     if args.hessian:
         for dim in args.hessian.split(","):
             print(json.dumps(hessian_cost(int(dim))), flush=True)
