@@ -3,6 +3,9 @@
     python benchmarks/bench_dims.py                 # d = 100, 300 (defaults), 300 at the smallest budget, 1000 capped
     python benchmarks/bench_dims.py --cases 100,300 # some of them (see CASES)
     python benchmarks/bench_dims.py --interrupt     # Ctrl-C latency of `walktune tune` at d = 300
+    python benchmarks/bench_dims.py --interrupt --moments "mode search: Hessian"  # some of the moments
+    python benchmarks/bench_dims.py --hessian 300,1000  # the Hessian's points batched against one at a time
+    python benchmarks/bench_dims.py --mode-search 1000  # the job's mode search alone, at the trustworthy budget
 
 The target is a Gaussian with a random rotation (scipy.stats.ortho_group,
 seeded) and variances spread log-evenly over four decades (condition 1e4),
@@ -140,6 +143,64 @@ def in_child(name: str) -> dict:
     return {"case": name, **json.loads(output.stdout.strip().splitlines()[-1])}
 
 
+# --------------------------------------------------------------------------- the mode search's Hessian
+
+
+def hessian_cost(dim: int, blocks: int = 4, one_point: int = 2000) -> dict:
+    """CPU seconds per evaluation of the Hessian's points through the counted posterior: one point at a time
+    (as before batching) against blocks of the batched Hessian (walktune.mode), and the whole Hessian's
+    ``2 d^2 + 1`` evaluations projected from each (the same process, the same model)."""
+    from walktune import mode
+    from walktune.evaluators import InProcessEvaluator
+    from walktune.posterior import CountedEvaluator
+
+    log_density, _ = gaussian(dim)
+    counted = CountedEvaluator(InProcessEvaluator(log_density, True), np.tile([-np.inf, np.inf], (dim, 1)))
+    point, h = np.ones(dim), mode.FD_STEP * np.ones(dim)
+    first, second = np.tril_indices(dim, -1)
+    rows = min(max(1, mode.FD_BLOCK_BYTES // (8 * dim)), 4 * first.size // blocks)
+    cpu = time.process_time()
+    for k in range(blocks):
+        counted.finite_values(mode._pair_points(point, h, first, second, k * rows, (k + 1) * rows))
+    batched = (time.process_time() - cpu) / (blocks * rows)
+    cpu = time.process_time()
+    for x in mode._pair_points(point, h, first, second, 0, one_point):
+        counted.scalar(x)
+    single = (time.process_time() - cpu) / one_point
+    total = 2 * dim * dim + 1
+    return {"dim": dim, "block_points": rows, "cpu_us_per_evaluation_batched": round(1e6 * batched, 2),
+            "cpu_us_per_evaluation_one_point": round(1e6 * single, 2), "ratio": round(single / batched, 1),
+            "hessian_cpu_s_batched": round(total * batched, 1), "hessian_cpu_s_one_point": round(total * single, 1)}
+
+
+def mode_search_cost(dim: int) -> dict:
+    """The job's mode search alone at the least budget the statement calls trustworthy, as
+    :func:`walktune.stages.find_start` runs it (through the counted posterior): evaluations, time, memory,
+    and the Laplace covariance's predicted slow-down against the true covariance."""
+    from walktune import theory
+    from walktune.evaluators import InProcessEvaluator
+    from walktune.mode import find_mode, hessians_affordable
+    from walktune.planning import budget_statement, trustworthy_budget
+    from walktune.posterior import CountedEvaluator
+    from walktune.stages import Budget, _minimum_pilot
+
+    budget = Budget.plan(trustworthy_budget(dim, 4), dim, 4)
+    log_density, cov = gaussian(dim)
+    counted = CountedEvaluator(InProcessEvaluator(log_density, True), np.tile([-np.inf, np.inf], (dim, 1)))
+    hessians = hessians_affordable(dim, budget.pilot - _minimum_pilot(dim, 4))
+    share = max(20 * (dim + 1), budget.pilot // 3 - (2 * dim * dim if hessians else 0))
+    t0, cpu0 = time.perf_counter(), time.process_time()
+    fit = find_mode(counted.scalar, np.ones(dim), counted.bounds, np.ones(dim), share,
+                    evaluate_batch=counted.finite_values, hessians=hessians)
+    wall, cpu = time.perf_counter() - t0, time.process_time() - cpu0
+    slow = theory.slowdown(fit.laplace_covariance, cov) if fit.laplace_covariance is not None else None
+    return {"dim": dim, "budget": budget.total, "statement": budget_statement(budget).message, "hessians": hessians,
+            "optimizer_share": share, "evaluations": counted.count, "seconds": round(wall, 1),
+            "cpu_seconds": round(cpu, 1), "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            "message": fit.message, "max_abs_mode": float(np.abs(fit.mode).max()),
+            "laplace_slowdown": None if slow is None else [slow.slowest_parameter, slow.slowest_direction]}
+
+
 # --------------------------------------------------------------------------- Ctrl-C latency
 
 MODEL = '''
@@ -199,7 +260,7 @@ def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
             count, now = int(counter[0]), time.perf_counter()
             if count != seen:
                 seen, still_since = count, now
-            if base is None and now - last_poll > 0.2:
+            if base is None and now - last_poll > 0.05:
                 last_poll = now
                 if moment["after"] is None or _checkpoint_stage(out) == moment["after"]:
                     base = count
@@ -207,7 +268,9 @@ def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
                 break
             time.sleep(0.005)
         if process.poll() is not None:
-            return {"error": "finished before the signal"}
+            tail = process.stderr.read().strip().splitlines()[-1:]
+            return {"error": "finished before the signal", "exit_code": process.returncode, "stderr": tail,
+                    "last_stage": _checkpoint_stage(out)}
         cpu_before = _cpu_seconds(process.pid)
         sent = time.perf_counter()
         process.send_signal(signal.SIGINT)
@@ -228,21 +291,31 @@ def _interrupt_once(folder: Path, dim: int, moment: dict, budget) -> dict:
 #: seconds without an evaluation.
 MOMENTS = [
     {"label": "mode search", "after": None, "more": 3000, "idle": 0.0},
-    {"label": "pilot", "after": "pilot stage 1", "more": 1000, "idle": 0.0},
-    {"label": "new coordinates", "after": "pilot", "more": 0, "idle": 0.3},
-    {"label": "proof", "after": "pilot", "more": 20_000, "idle": 0.0},
-    {"label": "after the proof: its diagnostics", "after": "tuned-covariance", "more": 0, "idle": 0.3},
-    {"label": "after the proof: geometry checks", "after": "tuned-covariance", "more": 0, "idle": 6.0},
+    # At d = 300 the optimizer's share of a 600,000 budget is 6,020 evaluations: the Hessian's blocks follow.
+    {"label": "mode search: Hessian", "after": None, "more": 60_000, "idle": 0.0},
+    # The pilot's stages: the checkpoint names the first "mode stage 1" (the tracker's stage is still the mode's
+    # when it ends), and a capped job may run one stage only; at d = 300 and a 600,000 budget the mode search
+    # and the climbs spend about 237,000 evaluations, the pilot the next 12,000.
+    {"label": "pilot", "after": None, "more": 241_000, "idle": 0.0},
+    # The pilot's end is not always in the checkpoint (no write without new evaluations): counts again,
+    # the pilot ending at about 249,200 evaluations.
+    {"label": "new coordinates", "after": None, "more": 249_000, "idle": 0.3},
+    {"label": "proof", "after": None, "more": 270_000, "idle": 0.0},
+    {"label": "after the proof: its diagnostics", "after": "proof", "more": 0, "idle": 0.3},
+    {"label": "after the proof: geometry checks", "after": "proof", "more": 0, "idle": 6.0},
 ]
 
 
-def interrupt_latencies(dim: int, budget) -> list:
-    """SIGINT at each of :data:`MOMENTS` in a fresh `walktune tune` run of the d-dimensional model."""
+def interrupt_latencies(dim: int, budget, labels=None) -> list:
+    """SIGINT at each of :data:`MOMENTS` (those named in ``labels``, if given) in a fresh `walktune tune` run of
+    the d-dimensional model."""
     results = []
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         (folder / "model.py").write_text(MODEL.format(dim=dim))
         for moment in MOMENTS:
+            if labels is not None and moment["label"] not in labels:
+                continue
             results.append({"moment": moment["label"], **_interrupt_once(folder, dim, moment, budget)})
             print(json.dumps(results[-1]), flush=True)
     return results
@@ -255,7 +328,18 @@ def main() -> None:
     parser.add_argument("--interrupt", action="store_true")
     parser.add_argument("--dim", type=int, default=300)
     parser.add_argument("--budget", type=int, default=None)
+    parser.add_argument("--moments", default=None, help="with --interrupt: labels of MOMENTS, comma-separated")
+    parser.add_argument("--hessian", default=None, help="dimensions, comma-separated: the Hessian's cost per evaluation")
+    parser.add_argument("--mode-search", default=None, help="dimensions, comma-separated: the job's mode search alone")
     args = parser.parse_args()
+    if args.mode_search:
+        for dim in args.mode_search.split(","):
+            print(json.dumps(mode_search_cost(int(dim))), flush=True)
+        return
+    if args.hessian:
+        for dim in args.hessian.split(","):
+            print(json.dumps(hessian_cost(int(dim))), flush=True)
+        return
     if args.child:
         if args.child not in CASES:
             dim, _, budget = args.child.partition("-")
@@ -264,7 +348,7 @@ def main() -> None:
         print(json.dumps(run_case(dim, budget)))
         return
     if args.interrupt:
-        interrupt_latencies(args.dim, args.budget)
+        interrupt_latencies(args.dim, args.budget, None if args.moments is None else args.moments.split(","))
         return
     for name in args.cases.split(","):
         print(json.dumps(in_child(name)), flush=True)

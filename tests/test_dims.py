@@ -192,3 +192,20 @@ def test_thinning_well_below_the_iact_keeps_the_ess():
 def test_proof_thinning_only_beyond_the_memory_bound():
     assert proof_thinning(4, 40_000, 100) == 1  # d = 100 at the default length: every state kept
     assert proof_thinning(4, 120_000, 300) == 9
+
+
+def test_proof_pools_runs_thinned_differently_in_pieces_of_draws_kept():
+    # A run stopped early keeps every state, a long one every k-th: the pool cuts both into pieces of the
+    # shorter run's draws (before, pieces were counted in steps and the reshape failed at d = 300).
+    from walktune.stages import Proof
+
+    log_density, cov = gaussian(3)
+    proposal = theory.optimal_proposal(cov)
+    short = sample(log_density, np.zeros((4, 3)), proposal, 200, seed=1, vectorized=True)
+    long = sample(log_density, np.zeros((4, 3)), proposal, 1200, seed=2, vectorized=True, thin=3)
+    proof = Proof(rows=[], runs={"short": short, "long": long}, stats={}, steps={})
+    draws, log_density_pool, chain_ids = proof.pooled()
+    assert draws.shape == (4 + 8, 200, 3) and log_density_pool.shape == (12, 200)
+    np.testing.assert_array_equal(draws[:4], short.draws)
+    np.testing.assert_array_equal(draws[4:].reshape(4, 400, 3), long.draws)  # its last 2 whole pieces per chain
+    np.testing.assert_array_equal(chain_ids, [0, 1, 2, 3, 0, 0, 1, 1, 2, 2, 3, 3])

@@ -43,7 +43,7 @@ from sklearn.mixture import GaussianMixture
 from .checkpoint import stop_point
 from .diagnostics import iact
 from .findings import Finding
-from .mode import finite_difference_hessian
+from .mode import LBFGSB_WORKERS, finite_difference_hessian, in_blocks
 from .modes import MINOR_MODE_MASS, chain_visits, is_minor, moved_between, weigh
 from .funnels import (  # noqa: F401  (the funnel detectors live in walktune.funnels)
     MIN_DRAWS_FOR_SPREAD,
@@ -135,19 +135,33 @@ def _thin_to_independent(draws: np.ndarray, tau: float, limit: int = 4000) -> np
     return draws[:, ::step].reshape(-1, d)
 
 
-def climb(log_density, x0: np.ndarray, scale: np.ndarray, budget: int) -> tuple[np.ndarray, float, bool]:
+def climb(log_density, x0: np.ndarray, scale: np.ndarray, budget: int,
+          log_density_batch=None) -> tuple[np.ndarray, float, bool]:
     """Local maximisation from ``x0`` (L-BFGS-B on x / scale).
 
     Returns the point, its log-density, and whether the optimizer converged:
     a climb that ran out of budget on a long ridge (as in a funnel's neck) has
-    not found a mode and must not be taken for one.
+    not found a mode and must not be taken for one. With ``log_density_batch``
+    (the same log-density for points of shape (n, d)) each finite-difference
+    gradient is evaluated in one batch (:mod:`walktune.mode`), the same points
+    and values as one at a time.
     """
 
     def negative(z):
         value = log_density(z * scale)
         return -value if np.isfinite(value) else 1e300
 
-    result = optimize.minimize(negative, x0 / scale, method="L-BFGS-B", options={"maxfun": budget})
+    options = {"maxfun": budget}
+    if log_density_batch is not None and LBFGSB_WORKERS:
+        def all_points(fun, iterable):  # scipy's workers map; ``fun`` is ``negative`` wrapped, not called
+            z = np.array([np.asarray(p, dtype=float) for p in iterable])
+            if not z.size:
+                return []
+            values = in_blocks(log_density_batch, z.shape[0], z.shape[1], lambda lo, hi: z[lo:hi] * scale)
+            return [np.atleast_1d(-value if np.isfinite(value) else 1e300) for value in values]
+
+        options["workers"] = all_points
+    result = optimize.minimize(negative, x0 / scale, method="L-BFGS-B", options=options)
     return result.x * scale, -float(result.fun), bool(result.success)
 
 

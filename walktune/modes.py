@@ -146,11 +146,12 @@ def weigh_modes(modes: list, log_densities: list, hessians: list) -> list:
     return weighed
 
 
-def weigh_start_modes(log_density, fit: ModeFit, others: list, cov: np.ndarray, bounds: np.ndarray) -> tuple:
+def weigh_start_modes(log_density, fit: ModeFit, others: list, cov: np.ndarray, bounds: np.ndarray,
+                      log_density_batch=None) -> tuple:
     """Laplace masses of the optimizer's mode and the other modes: the fit to start from, seeds and minor modes.
 
-    A Hessian (2 d^2 + 1 evaluations) is taken at each other mode, only when
-    there are any. When another mode outweighs the optimizer's by more than
+    A Hessian (2 d^2 + 1 evaluations, in batches through ``log_density_batch``
+    when given) is taken at each other mode, only when there are any. When another mode outweighs the optimizer's by more than
     1 / MINOR_MODE_MASS, it becomes the mode the pilot starts from.
     Returns ``(fit, main, seeds, minor)``: the fit to start from, its
     :class:`~walktune.modes.ModeMass`, the modes to start chains in (heaviest
@@ -159,7 +160,8 @@ def weigh_start_modes(log_density, fit: ModeFit, others: list, cov: np.ndarray, 
     if not others:
         return fit, None, [fit.mode], []
     scales = np.maximum(np.sqrt(np.diag(cov)), 1e-12)
-    hessians = [fit.hessian] + [finite_difference_hessian(log_density, mode, scales, bounds) for mode, _ in others]
+    hessians = [fit.hessian] + [finite_difference_hessian(log_density, mode, scales, bounds,
+                                                          evaluate_batch=log_density_batch) for mode, _ in others]
     weighed = weigh_modes([fit.mode] + [m for m, _ in others], [fit.log_density] + [lp for _, lp in others], hessians)
     main, seeds, minor = weighed[0], [m for m in weighed if not m.minor], [m for m in weighed if m.minor]
     is_fit = lambda m: np.array_equal(m.mode, fit.mode)  # noqa: E731

@@ -91,6 +91,12 @@ def current_proposal_covariance(value, dim: int) -> np.ndarray | None:
 
 
 
+def _finite_or_minus_inf(values) -> np.ndarray:
+    """Values as floats, with NaN and +inf (a failed evaluation) as -inf."""
+    values = np.array(values, dtype=float)
+    return np.where(np.isfinite(values) | (values == -np.inf), values, -np.inf)
+
+
 class CountedEvaluator:
     """Wraps an evaluator: enforces bounds, counts evaluations, times them, records them in a checkpoint."""
 
@@ -146,6 +152,10 @@ class CountedEvaluator:
         value = float(result.values[0])
         return value if np.isfinite(value) or value == -np.inf else -np.inf
 
+    def finite_values(self, points: np.ndarray) -> np.ndarray:
+        """Many points (n, d) in one batch, for the optimizer's finite differences: as :meth:`scalar` for each."""
+        return _finite_or_minus_inf(self(np.asarray(points, dtype=float)).values)
+
 
 class SamplerSpaceEvaluator:
     """Evaluates the posterior of z = sampler coordinates through the user's evaluator."""
@@ -173,6 +183,10 @@ class SamplerSpaceEvaluator:
         """One point, for the optimizer: exceptions and NaN become -inf."""
         value = float(self(np.asarray(z, dtype=float)[None, :]).values[0])
         return value if np.isfinite(value) or value == -np.inf else -np.inf
+
+    def finite_values(self, points: np.ndarray) -> np.ndarray:
+        """Many points (n, d) in one batch, for the optimizer's finite differences: as :meth:`scalar` for each."""
+        return _finite_or_minus_inf(self(np.asarray(points, dtype=float)).values)
 
 
 class PriorAddedEvaluator:
@@ -267,7 +281,10 @@ class PriorTerms:
                 out = np.asarray(self.log_prior(theta[None, :] if self.vectorized else theta), dtype=float).reshape(-1)[0]
                 return float(out)
 
-            hessian = finite_difference_hessian(value, centre, np.maximum(posterior_sd, 1e-12))
+            batch = None
+            if self.vectorized:  # the Hessian's 2 d^2 points in blocks, each one call
+                batch = lambda points: np.asarray(self.log_prior(points), dtype=float).reshape(-1)  # noqa: E731
+            hessian = finite_difference_hessian(value, centre, np.maximum(posterior_sd, 1e-12), evaluate_batch=batch)
             laplace = laplace_covariance(hessian)
             if laplace is not None:
                 return laplace

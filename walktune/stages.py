@@ -35,7 +35,7 @@ from .errors import TargetError, WalktuneError
 from .findings import Finding
 from .geometry import climb, separated, within_chain_iact
 from .improper import find_spread_runaway, runaway_message
-from .mode import ModeFit, find_mode
+from .mode import ModeFit, find_mode, hessians_affordable
 from .modes import ModeMass, weigh_start_modes
 from .pilot import PilotResult, run_pilot
 from .posterior import Posterior, SamplerSpaceEvaluator, check_parameters_used
@@ -237,7 +237,8 @@ def _other_modes(counted, start, fit, cov, bounds, count: int, rng) -> list:
     for point in points:
         if not np.isfinite(counted.scalar(point)):
             continue
-        end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1))
+        end, value, converged = climb(counted.scalar, point, np.maximum(sd, 1e-12), budget=30 * (dim + 1),
+                                      log_density_batch=counted.finite_values)
         if not (converged and np.isfinite(value)):
             continue
         if all(separated(counted.scalar, end, mode, value, lp) for mode, lp in known):
@@ -258,14 +259,18 @@ def find_start(posterior: Posterior, budget: Budget, rng: np.random.Generator, t
     scales = np.maximum(np.minimum(scales, np.maximum(np.abs(start), 1.0)), 1e-8)
     check_parameters_used(posterior, scales)
     tracker("mode", 0, 1)  # after the checks of the model, which end in a one-line error
-    mode_budget = max(20 * (dim + 1), budget.pilot // 3 - 2 * dim * dim)
-    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names)
+    # Hessians that leave the pilot its two shortest stages (docs/method.md, The mode search at large d).
+    hessians = hessians_affordable(dim, budget.pilot - _minimum_pilot(dim, budget.chains))
+    mode_budget = max(20 * (dim + 1), budget.pilot // 3 - (2 * dim * dim if hessians else 0))
+    fit = find_mode(counted.scalar, start, bounds, scales, mode_budget, names=posterior.names,
+                    evaluate_batch=counted.finite_values, hessians=hessians)
     tracker("mode", 1, 1)
     initial = _initial_covariance(fit, bounds, start)
     tracker.estimate(initial, 1.0, "the Laplace approximation at the mode")
     other_modes = _other_modes(counted, start, fit, initial, bounds, 4, rng)
     optimizer_fit = fit
-    fit, main, centres, minor = weigh_start_modes(counted.scalar, fit, other_modes, initial, bounds)
+    fit, main, centres, minor = weigh_start_modes(counted.scalar, fit, other_modes, initial, bounds,
+                                                  counted.finite_values)
     if fit is not optimizer_fit:
         initial = _initial_covariance(fit, bounds, start)
         tracker.estimate(initial, 1.0, "the Laplace approximation at the heaviest mode")
@@ -493,15 +498,17 @@ class Proof:
         """Every run's draws as chains of one length, for the detectors: (draws, log_density, chain_ids).
 
         Runs stopped early are shorter; each longer run is cut into consecutive
-        pieces of the shortest run's length (its last whole pieces), each piece
-        a chain of the pool, with the index of the chain it comes from.
+        pieces of the shortest run's length in draws kept (its last whole
+        pieces; a long run keeps every k-th state, :func:`proof_thinning`),
+        each piece a chain of the pool, with the index of the chain it comes from.
         Shapes (pieces, length, d), (pieces, length) and (pieces,).
         """
-        length = min(run.n_steps for run in self.runs.values())
+        length = min(run.draws.shape[1] for run in self.runs.values())
         draws, log_density, chain_ids = [], [], []
         for run in self.runs.values():
-            pieces = run.n_steps // length
-            kept = slice(run.n_steps - pieces * length, run.n_steps)
+            stored = run.draws.shape[1]
+            pieces = stored // length
+            kept = slice(stored - pieces * length, stored)
             draws.append(run.draws[:, kept].reshape(run.n_chains * pieces, length, run.dim))
             log_density.append(run.log_density[:, kept].reshape(run.n_chains * pieces, length))
             chain_ids.append(np.repeat(np.arange(run.n_chains), pieces))
