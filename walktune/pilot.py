@@ -180,20 +180,28 @@ def shrunk_covariance(draws: np.ndarray, reference: np.ndarray, within_chains: b
     stages): the autocorrelation time is then measured in stored draws, and the
     count of roughly independent draws, stored draws over it, is the same.
 
-    Memory: one whitened copy of ``draws`` (none with ``overwrite``: the
-    caller's array is whitened in place), worked through in blocks of rows and
-    of parameters; no other copy of that size.
+    Memory: draws up to :data:`_WHOLE_BYTES` are worked on whole (numpy's
+    ``np.cov``, one solve, one IACT call: a few copies of them); larger ones
+    make one whitened copy (none with ``overwrite``: the caller's array is
+    whitened in place), worked through in blocks of rows and of parameters. The
+    two ways agree to rounding (tests/test_pilot_memory.py).
 
     Returns the covariance, the shrinkage intensity ``s`` and the number of
     thinned (about independent) draws it rests on.
     """
     m, n, d = draws.shape
     chol = np.linalg.cholesky(reference)
-    centre = draws.mean(axis=1, keepdims=True) if within_chains else _pooled_mean(draws)
-    white = draws if overwrite else np.array(draws, dtype=float)
-    _whiten_in_place(white, centre, chol)
-    sample_cov = _blocked_covariance(white)
-    tau = _blocked_iact(white) if n >= 20 else np.ones(1)
+    if draws.nbytes <= _WHOLE_BYTES:
+        centre = draws.mean(axis=1, keepdims=True) if within_chains else draws.reshape(-1, d).mean(axis=0)
+        white = np.linalg.solve(chol, (draws - centre).reshape(-1, d).T).T.reshape(m, n, d)
+        sample_cov = np.atleast_2d(np.cov(white.reshape(-1, d), rowvar=False))
+        tau = np.asarray(iact(white)) if n >= 20 else np.ones(1)
+    else:
+        centre = draws.mean(axis=1, keepdims=True) if within_chains else _pooled_mean(draws)
+        white = draws if overwrite else np.array(draws, dtype=float)
+        _whiten_in_place(white, centre, chol)
+        sample_cov = _blocked_covariance(white)
+        tau = _blocked_iact(white) if n >= 20 else np.ones(1)
     # A direction in which no chain moved has no autocorrelation time (NaN); with none
     # known, keep one draw per chain.
     tau = float(np.max(tau[np.isfinite(tau)])) if np.any(np.isfinite(tau)) else float(n)
@@ -209,6 +217,9 @@ def shrunk_covariance(draws: np.ndarray, reference: np.ndarray, within_chains: b
 
 #: Bytes of one block of rows or parameters that :func:`shrunk_covariance` works on at a time.
 _BLOCK_BYTES = 2**23
+#: Draws up to this many bytes :func:`shrunk_covariance` estimates from whole, as numpy does (and as walktune did
+#: before the blocks: the same figures to the last bit); larger ones in blocks.
+_WHOLE_BYTES = 2**25
 
 
 def _pooled_mean(draws: np.ndarray) -> np.ndarray:
