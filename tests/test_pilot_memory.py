@@ -10,10 +10,15 @@ import json
 import numpy as np
 import pytest
 
+from typer.testing import CliRunner
+
 import walktune
-from walktune import diagnostics, pilot
+from walktune import diagnostics, pilot, shrinkage
 from walktune.engine import thinning_for
+from walktune.cli import app
 from walktune.stages import minimum_budget
+
+from conftest import assert_one_line_error
 
 
 def correlated_gaussian(dim, seed=0):
@@ -42,22 +47,29 @@ def run(log_density, dim, budget, seed=5, **options):
 
 def test_blocked_covariance_and_iact_are_numpy_and_the_unblocked_ones(monkeypatch):
     # Reference: numpy.cov of the pooled rows, and diagnostics.iact of all parameters at once.
-    monkeypatch.setattr(pilot, "_BLOCK_BYTES", 8 * 7 * 3)  # blocks of 3 rows (d = 7), of 1 parameter in the IACT
+    monkeypatch.setattr(shrinkage, "_BLOCK_BYTES", 8 * 7 * 3)  # blocks of 3 rows (d = 7), of 1 parameter in the IACT
     x = np.random.default_rng(1).standard_normal((3, 50, 7)).cumsum(axis=1)  # autocorrelated, as chains are
-    np.testing.assert_allclose(pilot._blocked_covariance(x), np.cov(x.reshape(-1, 7), rowvar=False), rtol=1e-12)
-    np.testing.assert_allclose(pilot._blocked_iact(x), np.asarray(diagnostics.iact(x)), rtol=1e-12)
+    np.testing.assert_allclose(shrinkage._blocked_covariance(x), np.cov(x.reshape(-1, 7), rowvar=False), rtol=1e-12)
+    np.testing.assert_allclose(shrinkage._blocked_iact(x), np.asarray(diagnostics.iact(x)), rtol=1e-12)
     # Whitening in blocks of rows in place: L^{-1} (x - centre), as one solve of all rows gives.
     reference = np.cov(x.reshape(-1, 7), rowvar=False)
     chol = np.linalg.cholesky(reference)
     centre = x.reshape(-1, 7).mean(axis=0)
     white = x.copy()
-    pilot._whiten_in_place(white, centre, chol)
+    shrinkage._whiten_in_place(white, centre, chol)
     np.testing.assert_allclose(white.reshape(-1, 7), np.linalg.solve(chol, (x.reshape(-1, 7) - centre).T).T,
                                rtol=1e-10, atol=1e-12)
-    # Without overwrite, the caller's draws are left as they were.
-    before = x.copy()
-    pilot.shrunk_covariance(x, reference)
-    np.testing.assert_array_equal(x, before)
+    # The whole estimate in blocks (as draws beyond _WHOLE_BYTES are) is the one in one piece, to rounding; without
+    # overwrite, the caller's draws are left as they were.
+    for within in (False, True):
+        monkeypatch.setattr(shrinkage, "_WHOLE_BYTES", 0)
+        before = x.copy()
+        blocked = shrinkage.shrunk_covariance(x, reference, within_chains=within)
+        np.testing.assert_array_equal(x, before)
+        monkeypatch.setattr(shrinkage, "_WHOLE_BYTES", 2**25)
+        whole = shrinkage.shrunk_covariance(x, reference, within_chains=within)
+        np.testing.assert_allclose(blocked[0], whole[0], rtol=1e-10)
+        assert blocked[1] == pytest.approx(whole[1], rel=1e-10) and blocked[2] == whole[2]
 
 
 def test_pilot_keeps_at_most_the_bound_and_still_finds_the_covariance(monkeypatch):
@@ -117,3 +129,6 @@ def test_export_says_which_states_the_pilot_kept(monkeypatch, tmp_path):
         stored = archive["pilot"]
     assert stored.shape[1] == sum(-(-stage.steps // k) for stage, k in zip(result.pilot.stages, kept))
     np.testing.assert_array_equal(stored, np.concatenate(result.pilot.all_draws, axis=1))
+    # Inspecting those draws would give an IACT in stored states of differing thinning: refused in one line.
+    refused = CliRunner().invoke(app, ["inspect", str(tmp_path), "--run", "pilot"])
+    assert_one_line_error(refused, "pilot_draws_kept_every", "--run tuned-covariance")
