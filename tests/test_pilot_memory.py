@@ -132,3 +132,17 @@ def test_export_says_which_states_the_pilot_kept(monkeypatch, tmp_path):
     # Inspecting those draws would give an IACT in stored states of differing thinning: refused in one line.
     refused = CliRunner().invoke(app, ["inspect", str(tmp_path), "--run", "pilot"])
     assert_one_line_error(refused, "pilot_draws_kept_every", "--run tuned-covariance")
+
+
+def test_budget_statement_counts_the_pilot_within_its_bound():
+    from walktune.planning import budget_statement
+    from walktune.stages import PROOF_DRAWS_MEMORY, Budget
+
+    # d = 300 at the default budget: 3.6 million pilot evaluations would be 8.6 GB of draws; the pilot keeps at most
+    # its bound, and the proof's three runs about PROOF_DRAWS_MEMORY each.
+    big = budget_statement(Budget.plan(None, 300, 4))
+    assert big.memory <= pilot.PILOT_DRAWS_MEMORY + 3 * PROOF_DRAWS_MEMORY + 8 * 300 * 4 * 3
+    assert f"{big.memory / 1e9:.2g} GB" in big.message
+    # d = 30: far below the bound, every pilot state counted (mode search's 2 d^2 Hessian points aside).
+    small = budget_statement(Budget.plan(None, 30, 4))
+    assert small.memory == 8 * 30 * (small.pilot - 2 * 30 * 30 + small.proof)
