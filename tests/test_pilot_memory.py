@@ -146,3 +146,22 @@ def test_budget_statement_counts_the_pilot_within_its_bound():
     # d = 30: far below the bound, every pilot state counted (mode search's 2 d^2 Hessian points aside).
     small = budget_statement(Budget.plan(None, 30, 4))
     assert small.memory == 8 * 30 * (small.pilot - 2 * 30 * 30 + small.proof)
+
+
+def test_proof_pools_thinned_runs_by_their_stored_draws():
+    # A proof whose runs keep every 9th state (as at d = 300 with the default budget) and stopped at different
+    # lengths: the pool cuts them in pieces of the shortest run's stored draws (it used to take steps for draws).
+    from walktune.engine import sample
+    from walktune.stages import Proof
+
+    log_density, cov = correlated_gaussian(3)
+    runs = {name: sample(log_density, np.zeros(3), cov, steps, seed=i, vectorized=True, chains=4, thin=9)
+            for i, (name, steps) in enumerate([("step-sizes", 5000), ("tuned-covariance", 15000)])}
+    proof = Proof(rows=[], runs=runs, stats={}, steps={})
+    draws, log_density_pool, chains = proof.pooled()
+    assert runs["step-sizes"].draws.shape[1] == 556 and runs["tuned-covariance"].draws.shape[1] == 1667
+    assert draws.shape == (4 + 4 * 2, 556, 3)  # the longer run: its last two whole pieces of 556 stored draws
+    np.testing.assert_array_equal(draws[:4], runs["step-sizes"].draws)
+    np.testing.assert_array_equal(draws[4::2], runs["tuned-covariance"].draws[:, 555:1111])
+    np.testing.assert_array_equal(draws[5::2], runs["tuned-covariance"].draws[:, 1111:])
+    assert log_density_pool.shape == draws.shape[:2] and chains.tolist() == [0, 1, 2, 3, 0, 0, 1, 1, 2, 2, 3, 3]

@@ -490,13 +490,16 @@ class Proof:
         Runs stopped early are shorter; each longer run is cut into consecutive
         pieces of the shortest run's length (its last whole pieces), each piece
         a chain of the pool, with the index of the chain it comes from.
-        Shapes (pieces, length, d), (pieces, length) and (pieces,).
+        Shapes (pieces, length, d), (pieces, length) and (pieces,). Lengths are
+        in stored draws (every ``thin``-th state of a thinned run; all runs of a
+        proof share one thinning).
         """
-        length = min(run.n_steps for run in self.runs.values())
+        length = min(run.draws.shape[1] for run in self.runs.values())
         draws, log_density, chain_ids = [], [], []
         for run in self.runs.values():
-            pieces = run.n_steps // length
-            kept = slice(run.n_steps - pieces * length, run.n_steps)
+            stored = run.draws.shape[1]
+            pieces = stored // length
+            kept = slice(stored - pieces * length, stored)
             draws.append(run.draws[:, kept].reshape(run.n_chains * pieces, length, run.dim))
             log_density.append(run.log_density[:, kept].reshape(run.n_chains * pieces, length))
             chain_ids.append(np.repeat(np.arange(run.n_chains), pieces))
