@@ -96,6 +96,12 @@ class Chains:
         return self.draws[:, -1, :] if self.n_steps else self.start
 
 
+def thinning_for(chains: int, steps: int, dim: int, memory: int) -> int:
+    """Steps per stored draw: 1, or the least ``k`` keeping ``chains`` chains of ``steps`` states of ``dim``
+    float64 parameters near ``memory`` bytes (every ``k``-th state; :func:`sample`'s ``thin``)."""
+    return max(1, -(-(8 * chains * dim * steps) // memory))
+
+
 def _seed_sequence(seed) -> np.random.SeedSequence:
     if isinstance(seed, np.random.SeedSequence):
         return seed

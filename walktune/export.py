@@ -45,7 +45,8 @@ def result_files(result, produced_by: dict | None = None) -> dict:
     names = result.parameter_names
     arrays = {name.replace("-", "_"): run.draws for name, run in result.runs.items()}
     if result.pilot.all_draws:
-        # Every pilot stage in order (stages differ in proposal; see advice.json for the stages).
+        # Every pilot stage in order (stages differ in proposal), each stage's stored draws: every
+        # pilot_draws_kept_every[i]-th state of stage i (advice.json).
         arrays["pilot"] = np.concatenate(result.pilot.all_draws, axis=1)
     arrays["parameter_names"] = np.array(names)
     files = {

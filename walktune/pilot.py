@@ -56,6 +56,13 @@ start does (a start whose shape the draws confirm does not).
 Adaptation happens only between stages; nothing measured after the pilot comes
 from an adapting chain.
 
+The pilot keeps its stages' draws within :data:`PILOT_DRAWS_MEMORY`: when its
+whole budget would keep more, each stage stores every k-th state
+(:func:`pilot_thinning`; at least :data:`MIN_KEPT_PER_STAGE` per chain). The
+chains are those of an unthinned pilot; the estimates above use the stored
+states, their autocorrelation times counted in stored states (k is far below
+the IACT, so the count of roughly independent draws is the same).
+
 References
 ----------
 Haario, H., Saksman, E. and Tamminen, J. (2001). An adaptive Metropolis algorithm. Bernoulli, 7(2), 223-242.
@@ -78,9 +85,9 @@ from sklearn.covariance import ledoit_wolf_shrinkage
 
 from . import theory
 from .checkpoint import stop_point
-from .diagnostics import iact
-from .engine import Chains, sample
+from .engine import Chains, sample, thinning_for
 from .evaluators import InProcessEvaluator
+from .shrinkage import shrunk_covariance
 
 #: One-parameter proposals per parameter and chain in a component-wise probe.
 PROBE_SWEEPS = 5
@@ -98,6 +105,14 @@ PROBE_LIMIT = 10.0
 #: this: "the change is within noise" then means "within a 2-fold slow-down". From 16 independent draws
 #: the level is below 2 in every dimension (1.8 at d = 3, 1.5 at d = 20); from 4 draws it is 2.2-9.7.
 SETTLED_NOISE = 2.0
+#: Bytes of draws one pilot keeps at most over all its stages, as much as three proof runs
+#: (:data:`walktune.stages.PROOF_DRAWS_MEMORY`): a pilot whose budget would keep more keeps every k-th state of
+#: each stage (:func:`pilot_thinning`). d = 100 at the default budget keeps every state (at most 0.33 GB);
+#: d = 300 every 22nd.
+PILOT_DRAWS_MEMORY = 3 * 2**27
+#: A thinned stage still keeps at least this many states per chain (a shorter stage: every state), so that the
+#: later half of even the first stage has enough draws for an autocorrelation time.
+MIN_KEPT_PER_STAGE = 200
 
 
 @dataclass
@@ -118,6 +133,8 @@ class PilotStage:
     #: Roughly independent draws the stage's estimate rests on, and whether that was too few to settle on.
     independent_draws: int = 0
     slow: bool = False
+    #: Steps per stored draw of this stage (1: every state kept; :func:`pilot_thinning`).
+    kept_every: int = 1
 
 
 @dataclass
@@ -135,6 +152,8 @@ class PilotResult:
     stages : list of PilotStage
     draws : ndarray of shape (chains, n, d)
         The draws pooled for the last covariance estimate.
+    all_draws : list of ndarray of shape (chains, n_i, d)
+        Each stage's stored draws, in order: every ``stages[i].kept_every``-th state.
     evaluations : int
     converged : bool
         Whether the covariance and acceptance settled before the budget ran out.
@@ -149,41 +168,6 @@ class PilotResult:
     all_draws: list = field(default_factory=list)
     evaluations: int = 0
     converged: bool = False
-
-
-def shrunk_covariance(draws: np.ndarray, reference: np.ndarray, within_chains: bool = False) -> tuple[np.ndarray, float, int]:
-    """Covariance of ``draws`` (chains, n, d), shrunk towards the shape of ``reference``.
-
-    With ``within_chains`` the pooled within-chain covariance is used: chains
-    started in separate modes must not make the proposal span the gap between
-    them (a random walk cannot jump it).
-
-    The draws are whitened by the Cholesky factor of ``reference``; the
-    Ledoit-Wolf intensity is estimated on draws thinned to about one per
-    autocorrelation time (the estimator assumes independent rows), and the
-    shrunk matrix ``(1 - s) S + s (tr S / d) I`` is mapped back.
-
-    Returns the covariance, the shrinkage intensity ``s`` and the number of
-    thinned (about independent) draws it rests on.
-    """
-    m, n, d = draws.shape
-    chol = np.linalg.cholesky(reference)
-    centre = draws.mean(axis=1, keepdims=True) if within_chains else draws.reshape(-1, d).mean(axis=0)
-    flat = (draws - centre).reshape(-1, d)
-    white = np.linalg.solve(chol, flat.T).T
-    sample_cov = np.atleast_2d(np.cov(white, rowvar=False))
-    tau = np.asarray(iact(white.reshape(m, n, d))) if n >= 20 else np.ones(1)
-    # A direction in which no chain moved has no autocorrelation time (NaN); with none
-    # known, keep one draw per chain.
-    tau = float(np.max(tau[np.isfinite(tau)])) if np.any(np.isfinite(tau)) else float(n)
-    step = max(1, int(np.ceil(tau)))
-    thinned = white.reshape(m, n, d)[:, ::step].reshape(-1, d)
-    shrinkage = float(ledoit_wolf_shrinkage(thinned, assume_centered=True)) if thinned.shape[0] > 1 else 1.0
-    shrinkage = min(max(shrinkage, 0.0), 1.0)
-    target = np.trace(sample_cov) / d * np.eye(d)
-    shrunk = (1 - shrinkage) * sample_cov + shrinkage * target
-    cov = chol @ shrunk @ chol.T
-    return 0.5 * (cov + cov.T), shrinkage, thinned.shape[0]
 
 
 def _lw_estimate(white: np.ndarray) -> np.ndarray:
@@ -342,7 +326,8 @@ def probe_components(evaluate, states: np.ndarray, log_density: np.ndarray, cova
                           sweeps * n_chains)
 
 
-def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np.ndarray) -> tuple[np.ndarray, int]:
+def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np.ndarray,
+                        overwrite: bool = False) -> tuple[np.ndarray, int]:
     """``C`` grown where ``draws`` are wider than it, and kept where they are narrower.
 
     The shrinkage estimate ``S`` of ``draws`` (:func:`shrunk_covariance`, shrunk
@@ -355,8 +340,10 @@ def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np
     ----------
     covariance, reference : ndarray of shape (d, d)
     draws : ndarray of shape (chains, n, d)
+    overwrite : bool, default=False
+        Whiten ``draws`` in place (:func:`shrunk_covariance`).
     """
-    estimate, _, n_independent = shrunk_covariance(draws, reference)
+    estimate, _, n_independent = shrunk_covariance(draws, reference, overwrite=overwrite)
     chol = np.linalg.cholesky(covariance)
     white = np.linalg.solve(chol, np.linalg.solve(chol, estimate).T)
     values, vectors = np.linalg.eigh(0.5 * (white + white.T))
@@ -365,9 +352,26 @@ def expanded_covariance(covariance: np.ndarray, draws: np.ndarray, reference: np
 
 
 def _all_since_warmup(history: list) -> np.ndarray:
-    """Every stage's draws, less the first half of the first stage (warm-up), shape (chains, n, d)."""
-    draws = np.concatenate(history, axis=1)
-    return draws[:, history[0].shape[1] // 2 :]
+    """Every stage's draws, less the first half of the first stage (warm-up), shape (chains, n, d); a new array."""
+    return np.concatenate([history[0][:, history[0].shape[1] // 2 :]] + history[1:], axis=1)
+
+
+def pilot_thinning(chains: int, steps: int, dim: int, memory: int) -> int:
+    """Steps per stored draw of every pilot stage: the least ``k`` keeping ``steps`` per chain (the whole
+    budget's) within ``memory`` bytes (:func:`walktune.engine.thinning_for`, as proof runs are thinned).
+
+    A thinned chain's draws estimate a covariance as well as the full chain's
+    when ``k`` is well below its autocorrelation time: an optimally tuned random
+    walk has an IACT of about ``d / 0.33`` steps (Roberts, Gelman and Gilks
+    1997), and the default pilot budget gives ``k ~ d^3 / 1.3 10^6`` (d = 300:
+    22 against an IACT near 900).
+    """
+    return thinning_for(chains, steps, dim, memory)
+
+
+def _stage_thinning(kept_every: int, steps: int) -> int:
+    """A stage's steps per stored draw: ``kept_every``, but keeping at least :data:`MIN_KEPT_PER_STAGE` per chain."""
+    return max(1, min(kept_every, steps // MIN_KEPT_PER_STAGE))
 
 
 def _scale_step(factor: float, acceptance: float, target: float) -> float:
@@ -422,6 +426,7 @@ def run_pilot(
     on_stage=None,
     probe: bool = True,
     extension: int = 0,
+    draws_memory: int | None = None,
 ) -> PilotResult:
     """Adapt the proposal in stages of doubling length until it settles or the budget ends.
 
@@ -450,6 +455,12 @@ def run_pilot(
         parameter (the start was poor, and the pilot needs more stages), or when
         the draws have changed the covariance, the pilot has not settled, and
         the budget would not hold the next stage.
+    draws_memory : int, optional
+        Bytes of stage draws the pilot keeps at most (default
+        :data:`PILOT_DRAWS_MEMORY`): when ``budget + extension`` evaluations
+        would keep more, every stage keeps every k-th state
+        (:func:`pilot_thinning`; ``PilotStage.kept_every``). The chains, their
+        random numbers and acceptances are those of an unthinned pilot.
     """
     n_chains, dim = states.shape
     target = theory.target_acceptance(dim)
@@ -463,6 +474,8 @@ def run_pilot(
     probe_rng = np.random.default_rng(noise_seed.spawn(1)[0])  # apart from the stages' seeds
     evaluate = evaluator if evaluator is not None else InProcessEvaluator(log_density, vectorized)
     probe_cost = PROBE_SWEEPS * dim * n_chains
+    memory = PILOT_DRAWS_MEMORY if draws_memory is None else draws_memory
+    kept_every = pilot_thinning(n_chains, (budget + extension) // n_chains, dim, max(1, memory))
     spent = 0
     stage_index = 0
     settled = 0
@@ -476,10 +489,11 @@ def run_pilot(
             break
         steps = min(steps, remaining // n_chains)
         proposal = (factor * scale) ** 2 * result.covariance
+        thin = _stage_thinning(kept_every, steps)
         chains: Chains = sample(
             log_density, result.states, proposal, steps,
             seed=seed.spawn(1)[0], vectorized=vectorized, evaluator=evaluator,
-            start_log_density=result.state_log_density,
+            start_log_density=result.state_log_density, thin=thin,
         )
         spent += chains.evaluations
         result.states = chains.last
@@ -502,7 +516,8 @@ def run_pilot(
         if growing:
             # Too few independent draws to confirm a shape: grow it from every draw so far.
             try:
-                new_cov, n_independent = expanded_covariance(result.covariance, _all_since_warmup(history), reference)
+                new_cov, n_independent = expanded_covariance(result.covariance, _all_since_warmup(history), reference,
+                                                             overwrite=True)
             except np.linalg.LinAlgError:
                 new_cov, n_independent = result.covariance, 0
             noise = noise_slowdown(dim, n_independent, noise_rng, grow_only=True)
@@ -514,7 +529,7 @@ def run_pilot(
         if adopted:
             result.covariance = new_cov
         stage = PilotStage(steps, proposal, acceptance, chains.evaluations, shrinkage, change, noise, adopted,
-                           independent_draws=int(stage_draws), slow=bool(slow))
+                           independent_draws=int(stage_draws), slow=bool(slow), kept_every=thin)
         # Probe only when a stage can follow to use (and test) a rescaled proposal.
         rescaled = False
         if probe and budget - spent >= probe_cost + n_chains * window:

@@ -29,6 +29,7 @@ from dataclasses import dataclass
 from . import theory
 from .diagnostics import IACTS_FOR_PRECISE_ESS
 from .findings import Finding
+from .pilot import PILOT_DRAWS_MEMORY
 from .proof import first_round_steps
 from .stages import Budget, _minimum_pilot, detection_reserve, minimum_budget, proof_budget_default, proof_thinning
 
@@ -99,7 +100,8 @@ class BudgetStatement:
     needed : int or None
         The least budget that would (:func:`trustworthy_budget`), when not.
     memory : int
-        Bytes of draws the job may keep at once (pilot stages and proof runs).
+        Bytes of draws the job may keep at once: the pilot stages' (at most
+        :data:`walktune.pilot.PILOT_DRAWS_MEMORY`) and the proof runs'.
     """
 
     total: int | None
@@ -160,10 +162,10 @@ def budget_statement(budget: Budget) -> BudgetStatement:
     iacts = recommended / optimal_iact(dim)
     trustworthy = iacts >= IACTS_FOR_PRECISE_ESS
     thin = proof_thinning(chains, proof // chains, dim)
-    # Pilot stages keep their draws (the mode search and its 2 d^2-point Hessian do not); the proof's runs
-    # together keep at most its evaluations' states, every thin-th.
+    # Pilot stages keep their draws (the mode search and its 2 d^2-point Hessian do not), every k-th state
+    # beyond PILOT_DRAWS_MEMORY; the proof's runs together keep at most its evaluations' states, every thin-th.
     pilot_draws = max(pilot - 2 * dim * dim, _minimum_pilot(dim, chains))
-    memory = 8 * dim * (pilot_draws + -(-proof // thin))
+    memory = min(8 * dim * pilot_draws, PILOT_DRAWS_MEMORY) + 8 * dim * -(-proof // thin)
     planned = budget.total if budget.total is not None else pilot + proof + reserve
     return BudgetStatement(budget.total, planned, pilot, proof, recommended, reserve, chains, dim, iacts, trustworthy,
                            None if trustworthy else trustworthy_budget(dim, chains), memory)

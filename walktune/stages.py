@@ -30,7 +30,7 @@ import numpy as np
 from . import theory
 from .advice import Advice
 from .diagnostics import ChainMeasures
-from .engine import Chains
+from .engine import Chains, thinning_for
 from .errors import TargetError, WalktuneError
 from .findings import Finding
 from .geometry import climb, separated, within_chain_iact
@@ -131,7 +131,7 @@ def proof_thinning(chains: int, steps: int, dim: int) -> int:
     (Roberts, Gelman and Gilks 1997), and with the default run length
     ``k ~ d^2 / 10^4`` (d = 300: 9 against an IACT near 900).
     """
-    return max(1, -(-(8 * chains * dim * steps) // PROOF_DRAWS_MEMORY))
+    return thinning_for(chains, steps, dim, PROOF_DRAWS_MEMORY)
 
 
 

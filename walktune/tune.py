@@ -220,6 +220,7 @@ class TuneResult:
             "posterior_table": self._posterior_table_payload(),
             "comparison": [row.to_dict() for row in self.comparison],
             "proof_draws_kept_every": max((getattr(run, "thin", 1) for run in self.runs.values()), default=1),
+            "pilot_draws_kept_every": [int(stage.kept_every) for stage in self.pilot.stages],
             "regions": [
                 {
                     "mode": r.mode.tolist(),
@@ -414,7 +415,7 @@ def _check_inputs(log_density, start, names, bounds, current_proposal, budget, c
 
 
 def _check_budget_fits(budget: int, dim: int, chains: int) -> None:
-    """Refuse, before any work, a budget whose draws cannot be held: the pilot stages keep every draw and
+    """Refuse, before any work, a budget whose draws cannot be held: the pilot keeps at most about 384 MiB and
     the proof runs at most about 128 MiB each (:func:`walktune.planning.budget_statement`, ``memory``), which
     must fit in the machine's physical memory."""
     from .planning import budget_statement

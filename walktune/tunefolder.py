@@ -63,6 +63,24 @@ def _recommended(folder: Path) -> str | None:
     return recommended.get("proposal") if isinstance(recommended, dict) else None
 
 
+def _refuse_thinned_pilot(folder: Path, run: str) -> None:
+    """The pilot's stages stored every k-th state (advice.json ``pilot_draws_kept_every``) with k differing
+    between stages: an IACT in stored draws would be in no one unit of steps, so they are not inspected."""
+    advice = folder / "advice.json"
+    if _key(run) != "pilot" or not advice.exists():
+        return
+    try:
+        kept = json.loads(advice.read_text()).get("pilot_draws_kept_every") or []
+    except (OSError, ValueError, AttributeError):
+        return
+    if any(k != 1 for k in kept):
+        raise WalktuneError(
+            f"the pilot's draws in {folder} were stored thinned, every {min(kept)}-th to {max(kept)}-th state by "
+            "stage (pilot_draws_kept_every in advice.json), so their IACT and ESS cannot be given in steps; "
+            "inspect a proof run instead (--run tuned-covariance)."
+        )
+
+
 def read_tune_output(path, run: str | None = None) -> tuple[ChainData, str]:
     """The draws of one run of a ``walktune tune`` folder, with the parameter names.
 
@@ -94,6 +112,7 @@ def read_tune_output(path, run: str | None = None) -> tuple[ChainData, str]:
             run = recommended if recommended is not None and _key(recommended) in runs else DEFAULT_RUN
         if _key(run) not in runs:
             raise WalktuneError(f"{draws_file} has no run {run!r}; runs: {', '.join(sorted(runs.values()))}.")
+        _refuse_thinned_pilot(draws_file.parent, run)
         draws = archive[_key(run)]
         names = [str(n) for n in archive[NAMES_KEY].reshape(-1)] if NAMES_KEY in archive.files else None
     if draws.ndim != 3 or draws.dtype.kind not in "fiu":

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .mode import ModeFit, find_mode
+from . import pilot as pilot_module
 from .pilot import PilotResult, run_pilot, shrunk_covariance
 from .posterior import SamplerSpaceEvaluator
 from .reparam import SamplingMap, TransformChoice, candidates
@@ -189,11 +190,13 @@ def run_unconstrained_pilot(counted, start: UnconstrainedStart, available: int, 
     """
     reparam = start.reparam
     seed_u, seed_theta = seed.spawn(2)
+    # The two parts keep at most PILOT_DRAWS_MEMORY of draws together, shared as their budgets are.
+    memory = pilot_module.PILOT_DRAWS_MEMORY
     pilot_u = run_pilot(
         None, start.states, start.covariance, max(int(0.6 * available), minimum), seed_u,
         evaluator=SamplerSpaceEvaluator(counted, reparam), state_log_density=start.values, within_chains=within,
         progress=lambda done, total: tracker("pilot", done, available),
-        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=False),
+        on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=False), draws_memory=int(0.6 * memory),
     )
     states, values = to_parameters(reparam, pilot_u.states, pilot_u.state_log_density)
     draws = reparam.from_sampler(pilot_u.draws)
@@ -204,17 +207,31 @@ def run_unconstrained_pilot(counted, start: UnconstrainedStart, available: int, 
         state_log_density=values, within_chains=within, probe=False,
         progress=lambda done, total: tracker("pilot", pilot_u.evaluations + done, available),
         on_stage=lambda p: tracker.pilot_stage_ended(p, estimate=True),
+        draws_memory=memory - sum(d.nbytes for d in pilot_u.all_draws),
     )
     if not any(stage.adopted for stage in pilot.stages):
         # The draws in theta agreed with the start they were given: estimate the covariance from every
         # draw after the first stage's warm-up, in both coordinates (skewed marginals need many draws).
         first_stage = pilot_u.all_draws[0]
         mapped = [first_stage[:, first_stage.shape[1] // 2 :]] + pilot_u.all_draws[1:]
-        pooled = np.concatenate([reparam.from_sampler(d) for d in mapped] + pilot.all_draws, axis=1)
-        pilot.covariance, _, _ = shrunk_covariance(pooled, pilot.covariance, within)
+        pooled = _joined_stages([reparam.from_sampler] * len(mapped) + [None] * len(pilot.all_draws),
+                                mapped + pilot.all_draws)
+        pilot.covariance, _, _ = shrunk_covariance(pooled, pilot.covariance, within, overwrite=True)
     for stage in pilot_u.stages:
         stage.coordinates = "unconstrained"
     pilot.stages = pilot_u.stages + pilot.stages
     pilot.all_draws = [reparam.from_sampler(d) for d in pilot_u.all_draws] + pilot.all_draws
     pilot.evaluations += pilot_u.evaluations
     return pilot
+
+
+def _joined_stages(maps: list, stages: list) -> np.ndarray:
+    """The stages' draws (chains, n_i, d) one after another in one new array, each through its map (None: as is),
+    mapped one stage at a time (no second copy of them all)."""
+    m, d = stages[0].shape[0], stages[0].shape[2]
+    out = np.empty((m, sum(s.shape[1] for s in stages), d))
+    at = 0
+    for to_theta, draws in zip(maps, stages):
+        out[:, at : at + draws.shape[1]] = draws if to_theta is None else to_theta(draws)
+        at += draws.shape[1]
+    return out
