@@ -90,6 +90,7 @@ def run_case(dim: int, budget) -> dict:
     stage = {"name": "setup"}
     evaluations: dict = {}
     seconds: dict = {}
+    peaks: dict = {}  # peak resident memory so far (MB) at each stage's last progress report
     last = [time.perf_counter()]
 
     def counted(x):
@@ -100,6 +101,7 @@ def run_case(dim: int, budget) -> dict:
     def progress(name, done, total):
         now = time.perf_counter()
         seconds[stage["name"]] = seconds.get(stage["name"], 0.0) + now - last[0]
+        peaks[stage["name"]] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
         last[0] = now
         # What follows a stage's end (other-mode climbs after the mode search, geometry checks after the
         # last proof run) is counted apart.
@@ -121,6 +123,7 @@ def run_case(dim: int, budget) -> dict:
         "evaluations": int(result.total_evaluations),
         "evaluations_by_stage": evaluations,
         "seconds_by_stage": {k: round(v, 2) for k, v in seconds.items()},
+        "peak_rss_mb_by_stage": {k: round(v) for k, v in peaks.items()},
         "slowdown_parameter": slow.slowest_parameter,
         "slowdown_direction": slow.slowest_direction,
         "sd_ratio_min": float(sd_ratio.min()),
