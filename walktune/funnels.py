@@ -46,7 +46,7 @@ from scipy import stats
 from .checkpoint import stop_point
 from .diagnostics import rhat
 from .findings import Finding
-from .funnel_advice import draws_finding, effect_group, fix_text, listed, narrow_end, positive_type, severity, times, wider
+from .funnel_advice import draws_finding, fix_text, listed, narrow_end, positive_type, severity, times, wider
 from .reparam import candidates, forward, inverse, log_jacobian
 
 #: The funnel detector compares spreads that differ 4-fold or more, and only
@@ -347,9 +347,7 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
     funnel as a suspicion (info) saying what would settle it. Nothing for a
     candidate where the curvature predicts less than ``sqrt(threshold)``-fold
     between the medians of the draws' fifths and the draws fill them: the
-    change it sees lies in tails the draws hardly reach; except a confirmed
-    scale of a group of effects with a location (a centred hierarchy, whose
-    neck its draws under-represent).
+    change it sees lies in tails the draws hardly reach.
 
     Parameters
     ----------
@@ -394,15 +392,9 @@ def funnel_findings_from_curvature(log_density, draws: np.ndarray, tau: float, n
                                          covariance, sd, j, affected, sign)
         confirmation["rhat"] = float(rhat(draws[:, :, j : j + 1])[0])
         small = abs(np.log(confirmation["predicted_factor_between_fifths"])) < 0.5 * np.log(threshold)
-        hierarchy = (confirmation["confirmed"] and structural
-                     and effect_group(flat, j, affected, log_ratio) is not None)
-        if small and confirmation["chains_fill_fifths"] and not hierarchy:
+        if small and confirmation["chains_fill_fifths"]:
             # Within the draws' range the curvature predicts little change: the funnel it sees lies in tails the
-            # draws (and a random walk) hardly reach, as a non-centred model's does where the data would pin the
-            # effects. Not for a scale the draws confirm setting a group of effects around a location: a centred
-            # hierarchy's neck is where its draws thin out (Papaspiliopoulos, Roberts and Skold 2007), so however
-            # small the change between the fifths' medians (the farm hierarchy of tests/test_funnel_models.py,
-            # seed 2: 1.97-fold predicted, 1.60-fold measured, 8.4-fold down to tau = 0.05), it is reported.
+            # draws (and a random walk) hardly reach, as a non-centred model's does where the data would pin the effects.
             continue
         candidate = (j, float(np.exp(sign * size)), affected, log_ratio, values, confirmation, structural)
         (confirmed if confirmation["confirmed"] else suspected).append(candidate)
