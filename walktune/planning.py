@@ -34,7 +34,7 @@ from .proof import first_round_steps
 from .stages import Budget, _minimum_pilot, detection_reserve, minimum_budget, proof_budget_default, proof_thinning
 
 
-def _planned_proof(budget: "Budget") -> int:
+def planned_proof(budget: "Budget") -> int:
     """Evaluations of the whole proof, if the pilot spends its whole share (:func:`walktune.stages.proof_budget`)."""
     if budget.total is None:
         return proof_budget_default(budget.dim, budget.chains)
@@ -55,7 +55,7 @@ def trustworthy_budget(dim: int, chains: int) -> int:
 
     def enough(cap: int) -> bool:
         plan = Budget.plan(cap, dim, chains)
-        return _recommended_share(plan, _planned_proof(plan)) >= needed
+        return _recommended_share(plan, planned_proof(plan)) >= needed
 
     low, high = minimum_budget(dim, chains), 2 * minimum_budget(dim, chains)
     while not enough(high):
@@ -67,6 +67,22 @@ def trustworthy_budget(dim: int, chains: int) -> int:
         else:
             low = middle
     return int(-(-high // 1000) * 1000)
+
+
+#: The sparsest the proof runs may keep their states, as a share of an optimally tuned proposal's IACT: a thinned
+#: chain's ESS is the full chain's only while ``k`` is well below its IACT, and a first round of
+#: ``max(200, 25 d)`` steps then keeps at least about 80 states per chain for its diagnostics.
+MAX_KEPT_EVERY_SHARE = 0.1
+
+
+def proof_kept_every(budget: "Budget") -> int:
+    """Steps per stored draw the proof runs would use under ``budget`` (their draws held near 128 MiB each)."""
+    return proof_thinning(budget.chains, planned_proof(budget) // budget.chains, budget.dim)
+
+
+def max_proof_kept_every(dim: int) -> int:
+    """The sparsest thinning of the proof runs that keeps their figures sound (:data:`MAX_KEPT_EVERY_SHARE`)."""
+    return max(1, int(MAX_KEPT_EVERY_SHARE * optimal_iact(dim)))
 
 
 def optimal_iact(dim: int) -> float:
@@ -155,7 +171,7 @@ def budget_statement(budget: Budget) -> BudgetStatement:
     trustworthy figures whatever the pilot finds.
     """
     dim, chains = budget.dim, budget.chains
-    proof = _planned_proof(budget)
+    proof = planned_proof(budget)
     recommended = _recommended_share(budget, proof)
     reserve = detection_reserve(dim, budget.total)
     pilot = budget.pilot + budget.pilot_extension

@@ -417,24 +417,40 @@ def _check_inputs(log_density, start, names, bounds, current_proposal, budget, c
 def _check_budget_fits(budget: int, dim: int, chains: int) -> None:
     """Refuse, before any work, a budget whose draws cannot be held: the pilot keeps at most about 384 MiB and
     the proof runs at most about 128 MiB each (:func:`walktune.planning.budget_statement`, ``memory``), which
-    must fit in the machine's physical memory."""
-    from .planning import budget_statement
+    must fit in the machine's physical memory; and the proof runs may keep every k-th state only while k stays
+    well below an optimally tuned proposal's IACT (:func:`walktune.planning.max_proof_kept_every`)."""
+    from .planning import budget_statement, max_proof_kept_every, planned_proof, proof_kept_every
 
     try:
         memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    except (AttributeError, ValueError, OSError):  # not on POSIX: no check
+    except (AttributeError, ValueError, OSError):  # not on POSIX: no memory check
+        memory = None
+    sparsest = max_proof_kept_every(dim)
+
+    def fits(total: int) -> bool:
+        plan = Budget.plan(total, dim, chains)
+        return proof_kept_every(plan) <= sparsest and (memory is None or budget_statement(plan).memory <= memory)
+
+    if fits(budget):
         return
-    needed = budget_statement(Budget.plan(budget, dim, chains)).memory
-    if needed > memory:
-        low, high = minimum_budget(dim, chains), budget  # the draws kept grow with the budget
-        while high - low > max(1, low // 1000):
-            middle = (low + high) // 2
-            low, high = (middle, high) if budget_statement(Budget.plan(middle, dim, chains)).memory <= memory \
-                else (low, middle)
+    low, high = minimum_budget(dim, chains), budget  # the draws kept and their thinning grow with the budget
+    while high - low > max(1, low // 1000):
+        middle = (low + high) // 2
+        low, high = (middle, high) if fits(middle) else (low, middle)
+    plan = Budget.plan(budget, dim, chains)
+    needed, kept_every = budget_statement(plan).memory, proof_kept_every(plan)
+    if memory is not None and needed > memory:
         raise WalktuneError(
             f"a budget of {budget:.3g} evaluations keeps up to {needed / 1e9:.3g} GB of draws of {dim} parameters "
             f"in memory, more than this machine's {memory / 1e9:.3g} GB; give at most --budget {low}."
         )
+    full = 8 * dim * planned_proof(plan)
+    allowed = "every state must be kept" if sparsest == 1 else f"at most every {sparsest:,}th may be kept"
+    raise WalktuneError(
+        f"a budget of {budget:.3g} evaluations would give the proof runs up to {full / 1e9:.3g} GB of draws of "
+        f"{dim} parameters; held in memory they would keep only every {kept_every:,}th state, too sparse for a "
+        f"sound ESS ({allowed} at {dim} parameters); give at most --budget {low}."
+    )
 
 
 def _check_forced_transforms(posterior, transforms, forbid_transforms) -> None:
