@@ -66,3 +66,26 @@ def rotated_gaussian(dim, condition, seed):
         return -0.5 * np.einsum("ij,jk,ik->i", z, precision, z)
 
     return log_density, cov, mean
+
+
+def correlated_gaussian(dim, seed=0):
+    """N(0, S) with S = A A^T / d + I (closed form), vectorised: (log_density, S)."""
+    rng = np.random.default_rng(seed)
+    a = rng.standard_normal((dim, dim))
+    cov = a @ a.T / dim + np.eye(dim)
+    precision = np.linalg.inv(cov)
+
+    def log_density(x):
+        x = np.atleast_2d(x)
+        return -0.5 * np.einsum("ij,jk,ik->i", x, precision, x)
+
+    return log_density, cov
+
+
+def raised_in(error: BaseException) -> list:
+    """Names of the functions an exception passed through, outermost first."""
+    frames, tb = [], error.__traceback__
+    while tb is not None:
+        frames.append(tb.tb_frame.f_code.co_name)
+        tb = tb.tb_next
+    return frames

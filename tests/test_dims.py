@@ -16,19 +16,7 @@ from walktune.diagnostics import IACTS_FOR_PRECISE_ESS, measure_chains
 from walktune.engine import sample
 from walktune.planning import budget_statement, optimal_iact
 from walktune.stages import Budget, minimum_budget, proof_thinning
-
-
-def gaussian(dim, seed=0):
-    rng = np.random.default_rng(seed)
-    a = rng.standard_normal((dim, dim))
-    cov = a @ a.T / dim + np.eye(dim)
-    precision = np.linalg.inv(cov)
-
-    def log_density(x):
-        x = np.atleast_2d(x)
-        return -0.5 * np.einsum("ij,jk,ik->i", x, precision, x)
-
-    return log_density, cov
+from conftest import correlated_gaussian, raised_in
 
 
 # --------------------------------------------------------------------------- transform scoring
@@ -92,7 +80,7 @@ def test_default_budget_statement_is_trustworthy_and_adds_up():
 
 
 def test_tune_returns_the_statement_and_keeps_to_it():
-    log_density, _ = gaussian(4)
+    log_density, _ = correlated_gaussian(4)
     budget = minimum_budget(4, 4)
     result = walktune.tune(log_density, np.ones(4), vectorized=True, seed=3, budget=budget)
     found = [f for f in result.findings if f.kind == "budget"]
@@ -139,7 +127,7 @@ def test_cli_says_the_budget_before_running(tmp_path):
 def test_stop_request_is_honoured_in_a_long_step_between_evaluations(tmp_path, stage):
     # Asked for as the stage ends: what follows (new coordinates after the pilot; the run's diagnostics and the
     # geometry checks after the last proof run) computes before any evaluation, and must stop there.
-    log_density, _ = gaussian(6)
+    log_density, _ = correlated_gaussian(6)
     checkpoint = Checkpoint(tmp_path, {"test": stage}, every=0)
     asked = {}
 
@@ -151,11 +139,7 @@ def test_stop_request_is_honoured_in_a_long_step_between_evaluations(tmp_path, s
     with pytest.raises(Interrupted) as stop:
         walktune.tune(log_density, np.ones(6), vectorized=True, seed=1, progress=progress, checkpoint=checkpoint)
     assert checkpoint.evaluations == asked["count"]  # no evaluation after the request
-    frames = []
-    tb = stop.value.__traceback__
-    while tb is not None:
-        frames.append(tb.tb_frame.f_code.co_name)
-        tb = tb.tb_next
+    frames = raised_in(stop.value)
     assert "stop_point" in frames and "evaluate" not in frames
     assert stop.value.partial is not None and stop.value.partial["partial"]
 
@@ -164,7 +148,7 @@ def test_stop_request_is_honoured_in_a_long_step_between_evaluations(tmp_path, s
 
 
 def test_thinned_run_keeps_every_kth_state_of_the_same_chain():
-    log_density, cov = gaussian(5)
+    log_density, cov = correlated_gaussian(5)
     proposal = theory.optimal_proposal(cov)
     full = sample(log_density, np.zeros((4, 5)), proposal, 1003, seed=7, vectorized=True)
     thinned = sample(log_density, np.zeros((4, 5)), proposal, 1003, seed=7, vectorized=True, thin=4)
@@ -199,7 +183,7 @@ def test_proof_pools_runs_thinned_differently_in_pieces_of_draws_kept():
     # shorter run's draws (before, pieces were counted in steps and the reshape failed at d = 300).
     from walktune.stages import Proof
 
-    log_density, cov = gaussian(3)
+    log_density, cov = correlated_gaussian(3)
     proposal = theory.optimal_proposal(cov)
     short = sample(log_density, np.zeros((4, 3)), proposal, 200, seed=1, vectorized=True)
     long = sample(log_density, np.zeros((4, 3)), proposal, 1200, seed=2, vectorized=True, thin=3)

@@ -12,6 +12,7 @@ from walktune.checkpoint import Checkpoint, Interrupted, active
 from walktune.evaluators import InProcessEvaluator
 from walktune.mode import finite_difference_hessian, find_mode
 from walktune.posterior import CountedEvaluator
+from conftest import raised_in
 
 
 def _spd(dim: int, seed: int) -> np.ndarray:
@@ -157,11 +158,7 @@ def test_stop_request_during_the_hessian_is_honoured_between_blocks(tmp_path, sm
     with active(checkpoint), pytest.raises(Interrupted) as stop:
         finite_difference_hessian(counted.scalar, np.ones(d), np.ones(d), evaluate_batch=batch)
     assert checkpoint.evaluations == asked["count"] < 2 * d * d + 1  # no evaluation after the request
-    frames = []
-    tb = stop.value.__traceback__
-    while tb is not None:
-        frames.append(tb.tb_frame.f_code.co_name)
-        tb = tb.tb_next
+    frames = raised_in(stop.value)
     assert "stop_point" in frames and "evaluate" not in frames
 
 

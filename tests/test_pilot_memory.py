@@ -18,21 +18,7 @@ from walktune.engine import thinning_for
 from walktune.cli import app
 from walktune.stages import minimum_budget
 
-from conftest import assert_one_line_error
-
-
-def correlated_gaussian(dim, seed=0):
-    """N(0, S) with S = A A^T / d + I (closed form), vectorised: (log_density, S)."""
-    rng = np.random.default_rng(seed)
-    a = rng.standard_normal((dim, dim))
-    cov = a @ a.T / dim + np.eye(dim)
-    precision = np.linalg.inv(cov)
-
-    def log_density(x):
-        x = np.atleast_2d(x)
-        return -0.5 * np.einsum("ij,jk,ik->i", x, precision, x)
-
-    return log_density, cov
+from conftest import assert_one_line_error, correlated_gaussian
 
 
 def kept_bytes(result) -> int:
